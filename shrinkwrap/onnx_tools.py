@@ -1,0 +1,26 @@
+"""ONNX Runtime helpers shared by the export and quantisation steps and by the benchmark."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+
+def session(path: str | Path, threads: int = 2):
+    import onnxruntime as ort
+
+    opts = ort.SessionOptions()
+    opts.intra_op_num_threads = threads
+    opts.inter_op_num_threads = 1
+    opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    opts.log_severity_level = 3
+    return ort.InferenceSession(str(path), sess_options=opts, providers=["CPUExecutionProvider"])
+
+
+def feed(sess, batch: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The batch arrays the graph takes, by its own input names."""
+    return {i.name: batch[i.name] for i in sess.get_inputs() if i.name in batch}
+
+
+def run_logits(sess, batch: dict[str, np.ndarray]) -> np.ndarray:
+    return sess.run(None, feed(sess, batch))[0]

@@ -1,0 +1,249 @@
+"""Walks the chain: for each step, fingerprint -> reuse or run -> benchmark -> record.
+
+Every input is checked before anything is written. Each step writes into a scratch folder that is
+renamed into place only once complete, and results.json is rewritten (atomically) after every
+step, so a crash never loses a finished step nor leaves a half-written one that looks finished.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Optional
+
+from shrinkwrap.errors import UserError
+from shrinkwrap.fingerprint import sha256_json, tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
+from shrinkwrap.recipe import Recipe
+
+STEP_FILE = "step.json"
+BENCH_FILE = "bench.json"
+RESULTS_FILE = "results.json"
+REPORT_FILE = "report.md"
+# Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
+CODE_VERSION = 1
+
+
+@dataclass
+class Step:
+    name: str
+    format: str
+    sections: tuple[str, ...]       # the recipe sections this step's output depends on
+    after: Optional[str]            # the step whose output it reads
+    run: Callable
+    enabled: Callable[[Recipe], bool] = lambda r: True
+
+
+def chain() -> list[Step]:
+    from shrinkwrap.steps import distill, export, finetune, quantize, quantize_onnx
+
+    return [
+        Step("teacher", "pytorch", ("data", "teacher"), None, finetune.run),
+        Step("student", "pytorch", ("student",), "teacher", distill.run),
+        Step("student-int8", "pytorch", ("quantize",), "student", quantize.run, lambda r: r.quantize.enabled),
+        Step("student-onnx", "onnx", ("export",), "student", export.run),
+        Step("student-onnx-int8", "onnx", ("onnx_quantize",), "student-onnx", quantize_onnx.run),
+    ]
+
+
+@dataclass
+class Context:
+    recipe: Recipe
+    run_dir: Path
+    base: str
+    tokenizer: object
+    tokenizer_fp: str
+    data: object
+    data_fingerprint: str
+    encoded: dict
+    pad_id: int
+    outputs: dict[str, Path] = field(default_factory=dict)
+    fingerprints: dict[str, str] = field(default_factory=dict)
+    quiet: bool = False
+
+    def log(self, message: str) -> None:
+        if not self.quiet:
+            print(message, file=sys.stderr, flush=True)
+
+
+def write_json_atomic(path: Path, obj) -> None:
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "w", encoding="utf-8") as f:
+            json.dump(obj, f, indent=2)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise UserError(f"{path}: cannot write — {e.strerror or e}") from None
+
+
+def write_text_atomic(path: Path, text: str) -> None:
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise UserError(f"{path}: cannot write — {e.strerror or e}") from None
+
+
+def _check_out_dir(out: Path) -> None:
+    probe = out if out.exists() else next((p for p in out.parents if p.exists()), Path("."))
+    if probe.exists() and not probe.is_dir():
+        raise UserError(f"--out {out}: {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise UserError(f"--out {out}: {probe} is not writable")
+
+
+def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
+    """Loads and checks everything the chain needs. Writes nothing."""
+    from transformers import AutoConfig
+
+    from shrinkwrap.data import encode, load_dataset
+    from shrinkwrap.models import load_tokenizer, resolve_base
+
+    where = recipe.source or "recipe"
+    _check_out_dir(out)
+    base = resolve_base(recipe.teacher.base, where)
+    try:
+        config = AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
+    except (OSError, ValueError) as e:
+        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
+                        f"({str(e).splitlines()[0]})") from None
+    n_layers = getattr(config, "num_hidden_layers", None) or getattr(config, "n_layers", None)
+    layers = recipe.student.layers
+    if layers is not None and n_layers is not None and max(layers) >= n_layers:
+        bad = next(i for i, v in enumerate(layers) if v >= n_layers)
+        raise UserError(f"{where}: student.layers[{bad}] = {layers[bad]} — the teacher has {n_layers} layers "
+                        f"(0–{n_layers - 1})")
+    if layers is None and n_layers is not None and recipe.student.num_layers > n_layers:
+        raise UserError(f"{where}: student.num_layers = {recipe.student.num_layers} — the teacher has {n_layers} layers")
+    max_pos = getattr(config, "max_position_embeddings", None)
+    if max_pos and recipe.teacher.max_length > max_pos:
+        raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
+    tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
+    data_path = recipe.resolve(recipe.data.path)
+    data = load_dataset(recipe.data, data_path, str(data_path))
+    encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
+    return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
+                   tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
+                   encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet)
+
+
+def step_fingerprint(ctx: Context, step: Step) -> str:
+    dump = ctx.recipe.model_dump(mode="json")
+    parts = {s: dump[s] for s in step.sections}
+    upstream = ctx.fingerprints[step.after] if step.after else ctx.data_fingerprint
+    return sha256_json({"step": step.name, "code": CODE_VERSION, "config": parts, "upstream": upstream,
+                        "tokenizer": ctx.tokenizer_fp})
+
+
+def _read_json(path: Path) -> Optional[dict]:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def run_step(ctx: Context, step: Step) -> dict:
+    """Reuses the step's finished output when its fingerprint matches; otherwise runs it atomically."""
+    fp = step_fingerprint(ctx, step)
+    ctx.fingerprints[step.name] = fp
+    final = ctx.run_dir / step.name
+    done = _read_json(final / STEP_FILE)
+    if done and done.get("fingerprint") == fp:
+        ctx.log(f"[{step.name}] unchanged — reusing {final}")
+        ctx.outputs[step.name] = final
+        return done
+    partial = ctx.run_dir / f".partial-{step.name}"
+    shutil.rmtree(partial, ignore_errors=True)
+    partial.mkdir(parents=True)
+    ctx.log(f"[{step.name}] running")
+    started = time.perf_counter()
+    info = step.run(ctx, partial)
+    seconds = time.perf_counter() - started
+    tok_fp = tokenizer_fingerprint_of_file(partial / "tokenizer.json")
+    if tok_fp != ctx.tokenizer_fp:
+        raise UserError(f"{step.name}: its output's tokenizer ({tok_fp[:12]}) differs from the teacher's "
+                        f"({ctx.tokenizer_fp[:12]})")
+    record = {"name": step.name, "format": step.format, "fingerprint": fp, "tokenizer_fingerprint": tok_fp,
+              "after": step.after, "seconds": round(seconds, 2), "info": info}
+    write_json_atomic(partial / STEP_FILE, record)
+    # Swap the finished folder in: the old one (if any) is moved aside first and removed last.
+    old = ctx.run_dir / f".old-{step.name}"
+    shutil.rmtree(old, ignore_errors=True)
+    if final.exists():
+        os.replace(final, old)
+    os.replace(partial, final)
+    shutil.rmtree(old, ignore_errors=True)
+    ctx.outputs[step.name] = final
+    ctx.log(f"[{step.name}] done in {seconds:.1f} s")
+    return record
+
+
+def bench_step(ctx: Context, step: Step) -> dict:
+    from shrinkwrap.bench.measure import measure
+    from shrinkwrap.data import encode
+
+    folder = ctx.outputs[step.name]
+    key = sha256_json({"bench": ctx.recipe.model_dump(mode="json")["bench"], "step": ctx.fingerprints[step.name]})
+    cached = _read_json(folder / BENCH_FILE)
+    if cached and cached.get("key") == key:
+        return cached["result"]
+    b = ctx.recipe.bench
+    timing = encode(ctx.tokenizer, ctx.data.test, b.sequence_length)
+    ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
+    result = measure(folder, ctx.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
+                     ctx.pad_id, b)
+    write_json_atomic(folder / BENCH_FILE, {"key": key, "result": result})
+    return result
+
+
+def step_entry(ctx: Context, step: Step, record: dict, bench: dict, teacher: Optional[dict]) -> dict:
+    import numpy as np
+
+    entry = {"name": step.name, "format": bench["format"], "path": str(ctx.outputs[step.name]),
+             "metrics": bench["metrics"], "latency_ms": bench["latency_ms"], "size_bytes": bench["size_bytes"],
+             "load_seconds": bench["load_seconds"], "seconds": record["seconds"],
+             "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"],
+             "predictions": bench["predictions"]}
+    ref = teacher or entry
+    entry["accuracy_drop"] = round((ref["metrics"]["accuracy"] - entry["metrics"]["accuracy"]) * 100, 4)
+    entry["agreement_with_teacher"] = float(np.mean(np.array(ref["predictions"]) == np.array(entry["predictions"])))
+    return entry
+
+
+def run_chain(recipe: Recipe, out: Path, quiet: bool = False) -> dict:
+    from shrinkwrap.bench.machine import describe
+    from shrinkwrap.report import markdown_report
+
+    ctx = prepare(recipe, out, quiet)
+    out.mkdir(parents=True, exist_ok=True)
+    for stale in out.glob(".partial-*"):
+        shutil.rmtree(stale, ignore_errors=True)  # left by a killed run; never mistaken for finished
+    results = {
+        "recipe": recipe.model_dump(mode="json"), "recipe_fingerprint": recipe.fingerprint(),
+        "machine": describe(),
+        "data": {"path": str(recipe.resolve(recipe.data.path)), "label_names": ctx.data.label_names,
+                 "sizes": {s: len(getattr(ctx.data, s)) for s in ("train", "validation", "test")},
+                 "fingerprint": ctx.data_fingerprint, "notes": ctx.data.notes},
+        "tokenizer_fingerprint": ctx.tokenizer_fp,
+        "test_labels": ctx.data.test.labels.tolist(),
+        "steps": [],
+    }
+    teacher = None
+    for step in chain():
+        if not step.enabled(recipe):
+            continue
+        record = run_step(ctx, step)
+        entry = step_entry(ctx, step, record, bench_step(ctx, step), teacher)
+        teacher = teacher or entry
+        results["steps"].append(entry)
+        write_json_atomic(out / RESULTS_FILE, results)
+    write_text_atomic(out / REPORT_FILE, markdown_report(results))
+    return results

@@ -1,0 +1,99 @@
+"""Student ONNX: export the fp32 student, fuse the transformer graph where that is faster, prove parity.
+
+The exporter is optimum's (torch.onnx underneath): it knows the text-classification task's inputs,
+outputs and dynamic batch/sequence axes for every BERT-family architecture, so the graph it writes
+is the same one we would write by hand with torch.onnx, without per-architecture code here.
+"""
+from __future__ import annotations
+
+import shutil
+import tempfile
+import warnings
+from pathlib import Path
+
+import numpy as np
+import onnx
+
+from shrinkwrap.bench.latency import summarize, time_calls
+from shrinkwrap.data import all_logits, collate, encode
+from shrinkwrap.errors import StepFailed
+from shrinkwrap.models import load_classifier
+from shrinkwrap.onnx_tools import run_logits, session
+from shrinkwrap.train import predict_logits
+
+MODEL_FILE = "model.onnx"
+
+
+def export_onnx(model, folder: Path, opset: int) -> Path:
+    from optimum.exporters.onnx import onnx_export_from_model
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        onnx_export_from_model(model, str(folder), task="text-classification", opset=opset, do_validation=False)
+    path = folder / MODEL_FILE
+    onnx.checker.check_model(str(path), full_check=True)
+    return path
+
+
+def fuse(path: Path, config, out_path: Path) -> Path:
+    """ONNX Runtime's transformer optimizer: fuses attention, LayerNorm, GELU and the embedding layer."""
+    from onnxruntime.transformers.optimizer import optimize_model
+
+    model_type = {"bert": "bert", "roberta": "bert", "distilbert": "bert", "electra": "bert"}.get(config.model_type, "bert")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        opt = optimize_model(str(path), model_type=model_type, num_heads=config.num_attention_heads,
+                             hidden_size=config.hidden_size, opt_level=1)
+    opt.save_model_to_file(str(out_path))
+    onnx.checker.check_model(str(out_path), full_check=True)
+    return out_path
+
+
+def p50_ms(path: Path, batch: dict, threads: int) -> float:
+    sess = session(path, threads)
+    return summarize(time_calls(lambda: run_logits(sess, batch), warmup=3, repeats=20, min_time_s=0.5))["p50"]
+
+
+def parity(path: Path, torch_logits: np.ndarray, examples: list[dict], pad_id: int, threads: int) -> dict:
+    sess = session(path, threads)
+    logits = all_logits(lambda b: run_logits(sess, b), examples, pad_id, torch_logits.shape[1])
+    return {"max_abs_logit_diff": float(np.abs(logits - torch_logits).max()),
+            "label_mismatches": int((logits.argmax(1) != torch_logits.argmax(1)).sum()),
+            "texts": len(examples)}
+
+
+def run(ctx, out: Path) -> dict:
+    cfg, bench = ctx.recipe.export, ctx.recipe.bench
+    model = load_classifier(str(ctx.outputs["student"]))
+    examples = ctx.encoded["test"]
+    torch_logits = predict_logits(model, examples, ctx.pad_id)
+
+    with tempfile.TemporaryDirectory(dir=out) as tmp:
+        tmp = Path(tmp)
+        plain = export_onnx(model, tmp, cfg.opset)
+        candidates = {"plain": plain}
+        if cfg.optimize != "never":
+            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx")
+
+        timing_batch = collate(encode(ctx.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
+                               ctx.pad_id, length=bench.sequence_length)
+        report = {}
+        for name, path in candidates.items():
+            report[name] = parity(path, torch_logits, examples, ctx.pad_id, bench.threads)
+            report[name]["p50_ms"] = p50_ms(path, timing_batch, bench.threads)
+            report[name]["passes"] = (report[name]["max_abs_logit_diff"] <= cfg.parity_tolerance
+                                      and report[name]["label_mismatches"] == 0)
+        passing = [n for n in candidates if report[n]["passes"]]
+        if not passing:
+            worst = min(report.values(), key=lambda r: r["max_abs_logit_diff"])
+            raise StepFailed(f"student-onnx: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
+                             f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels")
+        if cfg.optimize == "always" and "fused" in passing:
+            chosen = "fused"
+        else:
+            chosen = min(passing, key=lambda n: report[n]["p50_ms"])
+        shutil.move(str(candidates[chosen]), out / MODEL_FILE)
+    model.config.save_pretrained(out)
+    ctx.tokenizer.save_pretrained(out)
+    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
+            "parity": report[chosen]}

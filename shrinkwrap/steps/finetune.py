@@ -1,0 +1,64 @@
+"""Teacher: fine-tune a pre-trained encoder with a fresh classification head, one run per seed.
+
+Never from scratch: the encoder always comes from `teacher.base`. Runs that degenerate are stopped
+early and the next seed is tried; the best run on validation is kept.
+"""
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+from torch.nn import functional as F
+
+from shrinkwrap.errors import StepFailed
+from shrinkwrap.models import load_classifier, save_classifier
+from shrinkwrap.train import FitResult, TrainSettings, fit, seed_everything
+
+
+def settings(cfg, seed: int) -> TrainSettings:
+    return TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
+                         weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio,
+                         max_grad_norm=cfg.max_grad_norm, patience=cfg.patience, metric=cfg.metric, seed=seed,
+                         stall_steps=cfg.stall_steps, stall_fraction=cfg.stall_fraction,
+                         collapse_share=cfg.collapse_share)
+
+
+def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
+    """Inverse-frequency weights normalised to mean 1 (the `balanced` rule of scikit-learn)."""
+    counts = np.bincount(labels, minlength=n_classes).astype(float)
+    return torch.tensor(len(labels) / (n_classes * np.maximum(counts, 1)), dtype=torch.float32)
+
+
+def run(ctx, out: Path) -> dict:
+    cfg = ctx.recipe.teacher
+    train = [{"features": f, "label": int(y)} for f, y in zip(ctx.encoded["train"], ctx.data.train.labels)]
+    n_classes = len(ctx.data.label_names)
+    weight = class_weights(ctx.data.train.labels, n_classes) if cfg.class_weights else None
+
+    def loss_fn(logits, labels, _idx):
+        return F.cross_entropy(logits, labels, weight=weight)
+
+    runs, best, best_model = [], None, None
+    for seed in cfg.seeds:
+        seed_everything(seed)  # the new head's initialisation depends on the seed
+        model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
+        result: FitResult = fit(model, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
+                                settings(cfg, seed), ctx.pad_id, desc=f"teacher seed {seed}")
+        entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
+                 "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,
+                 "seconds": round(result.seconds, 2), "steps": result.steps}
+        runs.append(entry)
+        ctx.log(f"teacher seed {seed}: {result.status}"
+                + (f" — {result.reason}" if result.reason else f", validation {cfg.metric} {result.best_metric:.4f}"))
+        if result.status == "ok" and (best is None or result.best_metric > best["best_metric"]):
+            best, best_model = entry, model
+    if best is None:
+        reasons = "; ".join(f"seed {r['seed']}: {r['reason']}" for r in runs)
+        raise StepFailed(f"teacher: every seed degenerated — {reasons}. Try other seeds, a lower "
+                         f"teacher.learning_rate or more teacher.epochs")
+    for r in runs:
+        r["outcome"] = "kept" if r is best else ("degenerate" if r["status"] == "degenerate" else "worse")
+    save_classifier(best_model, ctx.tokenizer, out)
+    return {"seeds": runs, "kept_seed": best["seed"], "validation": {cfg.metric: best["best_metric"]}}

@@ -1,0 +1,169 @@
+"""One training loop for every step that trains: linear warm-up and decay, weight decay, clipping,
+evaluation each epoch, early stopping with patience, the best epoch's weights restored, and
+detection of degenerate runs (non-finite loss, stalled loss, predictions collapsed to one class).
+"""
+from __future__ import annotations
+
+import copy
+import math
+import random
+import time
+from dataclasses import dataclass, field
+from typing import Callable, Optional
+
+import numpy as np
+import torch
+from torch import nn
+from tqdm.auto import tqdm
+
+from shrinkwrap.bench.accuracy import classification_metrics
+from shrinkwrap.data import all_logits, collate
+
+
+@dataclass
+class TrainSettings:
+    epochs: int
+    learning_rate: float
+    batch_size: int
+    weight_decay: float = 0.01
+    warmup_ratio: float = 0.1
+    max_grad_norm: float = 1.0
+    patience: int = 2
+    metric: str = "accuracy"
+    seed: int = 0
+    # Degenerate-run detection (common practice: stop such runs early and try another seed).
+    stall_steps: int = 0            # 0 = off; after this many steps the loss must have fallen...
+    stall_fraction: float = 0.1     # ...by at least this share of its starting value
+    collapse_share: float = 0.95    # validation predictions this concentrated on one class = collapsed
+
+
+@dataclass
+class FitResult:
+    status: str = "ok"                     # ok | degenerate
+    reason: Optional[str] = None
+    curve: list[dict] = field(default_factory=list)   # one entry per evaluation
+    best_epoch: Optional[int] = None
+    best_metric: float = float("-inf")
+    seconds: float = 0.0
+    steps: int = 0
+
+
+LossFn = Callable[[torch.Tensor, torch.Tensor, torch.Tensor], torch.Tensor]  # (logits, labels, indices) -> loss
+
+
+def seed_everything(seed: int) -> None:
+    random.seed(seed)
+    np.random.seed(seed % 2**32)
+    torch.manual_seed(seed)
+
+
+def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:
+    return {k: torch.from_numpy(v) for k, v in batch.items()}
+
+
+@torch.no_grad()
+def predict_logits(model: nn.Module, examples: list[dict], pad_id: int, batch_size: int = 64) -> np.ndarray:
+    """Logits for every example, batched by similar length so that padding costs little."""
+    model.eval()
+    return all_logits(lambda b: model(**to_torch(b)).logits.float().numpy(), examples, pad_id,
+                      model.config.num_labels, batch_size)
+
+
+def _optimizer(model: nn.Module, s: TrainSettings) -> torch.optim.Optimizer:
+    # No weight decay on biases and LayerNorm weights (common practice since BERT).
+    decay, no_decay = [], []
+    for name, p in model.named_parameters():
+        if not p.requires_grad:
+            continue
+        (no_decay if p.ndim < 2 or "LayerNorm" in name or "layer_norm" in name else decay).append(p)
+    return torch.optim.AdamW([{"params": decay, "weight_decay": s.weight_decay},
+                              {"params": no_decay, "weight_decay": 0.0}], lr=s.learning_rate)
+
+
+def _linear_schedule(optimizer, warmup: int, total: int):
+    def factor(step: int) -> float:
+        if step < warmup:
+            return (step + 1) / max(1, warmup)
+        return max(0.0, (total - step) / max(1, total - warmup))
+    return torch.optim.lr_scheduler.LambdaLR(optimizer, factor)
+
+
+def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels: np.ndarray, loss_fn: LossFn,
+        s: TrainSettings, pad_id: int, desc: str = "training") -> FitResult:
+    """Trains `model` in place; on return it holds the weights of the best validation epoch."""
+    seed_everything(s.seed)
+    result = FitResult()
+    started = time.perf_counter()
+    steps_per_epoch = math.ceil(len(train) / s.batch_size)
+    total = steps_per_epoch * s.epochs
+    optimizer = _optimizer(model, s)
+    schedule = _linear_schedule(optimizer, int(s.warmup_ratio * total), total)
+    generator = torch.Generator().manual_seed(s.seed)
+    n_classes = model.config.num_labels
+    majority = np.bincount(val_labels, minlength=n_classes).max() / len(val_labels)
+    best_state, since_best, losses = None, 0, []
+
+    bar = tqdm(total=total, desc=desc, unit="step", leave=False, dynamic_ncols=True)
+    try:
+        for epoch in range(1, s.epochs + 1):
+            model.train()
+            order = torch.randperm(len(train), generator=generator).numpy()
+            for start in range(0, len(order), s.batch_size):
+                idx = order[start:start + s.batch_size]
+                batch = to_torch(collate([train[i]["features"] for i in idx], pad_id))
+                labels = torch.as_tensor([train[i]["label"] for i in idx])
+                logits = model(**batch).logits
+                loss = loss_fn(logits, labels, torch.as_tensor(idx))
+                value = loss.item()
+                result.steps += 1
+                if not math.isfinite(value):
+                    result.status, result.reason = "degenerate", f"loss is {value} at step {result.steps}"
+                    return result
+                losses.append(value)
+                optimizer.zero_grad(set_to_none=True)
+                loss.backward()
+                torch.nn.utils.clip_grad_norm_(model.parameters(), s.max_grad_norm)
+                optimizer.step()
+                schedule.step()
+                bar.update(1)
+                bar.set_postfix(epoch=epoch, loss=f"{value:.3f}")
+                if s.stall_steps and result.steps == s.stall_steps:
+                    window = max(1, min(10, s.stall_steps // 4))
+                    first, last = np.mean(losses[:window]), np.mean(losses[-window:])
+                    if last > first * (1 - s.stall_fraction):
+                        result.status = "degenerate"
+                        result.reason = (f"training loss stalled: {first:.3f} -> {last:.3f} after {s.stall_steps} steps "
+                                         f"(needs a fall of {s.stall_fraction:.0%})")
+                        return result
+
+            logits = predict_logits(model, validation, pad_id)
+            metrics = classification_metrics(val_labels, logits.argmax(1), n_classes)
+            preds = logits.argmax(1)
+            top_share = np.bincount(preds, minlength=n_classes).max() / len(preds)
+            entry = {"epoch": epoch, "step": result.steps, "train_loss": float(np.mean(losses[-steps_per_epoch:])),
+                     "accuracy": metrics["accuracy"], "macro_f1": metrics["macro_f1"]}
+            result.curve.append(entry)
+            if top_share >= s.collapse_share and majority < s.collapse_share:
+                result.status = "degenerate"
+                result.reason = (f"validation predictions collapsed: {top_share:.0%} in one class at epoch {epoch} "
+                                 f"(majority class is {majority:.0%})")
+                return result
+            if entry[s.metric] > result.best_metric:
+                result.best_metric, result.best_epoch, since_best = entry[s.metric], epoch, 0
+                best_state = copy.deepcopy(model.state_dict())
+            else:
+                since_best += 1
+                if since_best >= s.patience:
+                    break
+    finally:
+        bar.close()
+        result.seconds = time.perf_counter() - started
+    if best_state is not None:
+        model.load_state_dict(best_state)
+    best_accuracy = result.curve[result.best_epoch - 1]["accuracy"] if result.best_epoch else 0.0
+    if best_accuracy <= majority + 1e-9:
+        result.status = "degenerate"
+        result.reason = (f"best validation accuracy {best_accuracy:.3f} is no better than always predicting "
+                         f"the majority class ({majority:.3f})")
+    model.eval()
+    return result
