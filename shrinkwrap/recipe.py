@@ -98,7 +98,7 @@ class QuantizeConfig(_Section):
 
 
 class ExportConfig(_Section):
-    opset: int = Field(17, ge=14, le=21, description="ONNX opset")
+    opset: int = Field(18, ge=14, le=21, description="ONNX opset")
     optimize: Literal["auto", "always", "never"] = Field(
         "auto", description="ONNX Runtime transformer fusion: `auto` keeps the fused graph only if it is faster")
     parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed |logit difference| between ONNX fp32 and PyTorch")

@@ -34,7 +34,7 @@ class TrainSettings:
     # Degenerate-run detection (common practice: stop such runs early and try another seed).
     stall_steps: int = 0            # 0 = off; after this many steps the loss must have fallen...
     stall_fraction: float = 0.1     # ...by at least this share of its starting value
-    collapse_share: float = 0.95    # validation predictions this concentrated on one class = collapsed
+    collapse_share: float = 0.95    # validation predictions this concentrated on one class = collapsed (1 = off)
 
 
 @dataclass
@@ -143,7 +143,7 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
             entry = {"epoch": epoch, "step": result.steps, "train_loss": float(np.mean(losses[-steps_per_epoch:])),
                      "accuracy": metrics["accuracy"], "macro_f1": metrics["macro_f1"]}
             result.curve.append(entry)
-            if top_share >= s.collapse_share and majority < s.collapse_share:
+            if s.collapse_share < 1 and top_share >= s.collapse_share and majority < s.collapse_share:
                 result.status = "degenerate"
                 result.reason = (f"validation predictions collapsed: {top_share:.0%} in one class at epoch {epoch} "
                                  f"(majority class is {majority:.0%})")

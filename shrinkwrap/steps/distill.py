@@ -50,7 +50,7 @@ def run(ctx, out: Path) -> dict:
 
     s = TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
                       weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio, patience=cfg.patience,
-                      metric=ctx.recipe.teacher.metric, seed=cfg.seed, collapse_share=1.01)
+                      metric=ctx.recipe.teacher.metric, seed=cfg.seed, collapse_share=1.0)
     result = fit(student, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
                  desc="student")
     save_classifier(student, ctx.tokenizer, out)

@@ -16,8 +16,11 @@ from shrinkwrap.steps.export import MODEL_FILE
 
 
 def quantize(src: Path, dst: Path, per_channel: bool, op_types: list[str]) -> None:
+    import logging
+
     from onnxruntime.quantization import QuantType, quantize_dynamic
 
+    logging.getLogger().setLevel(logging.ERROR)  # its advice to pre-process is for static CNN quantisation
     quantize_dynamic(str(src), str(dst), per_channel=per_channel, weight_type=QuantType.QInt8,
                      op_types_to_quantize=list(op_types),
                      # a graph already fused by the transformer optimizer fails type inference without this
