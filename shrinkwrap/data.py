@@ -236,3 +236,24 @@ def all_logits(fn, examples: list[dict], pad_id: int, n_labels: int, batch_size:
     for idx, batch in length_batches(examples, pad_id, batch_size):
         out[idx] = fn(batch)
     return out
+
+
+def load_transfer(path: Path, column: Optional[str], where: str) -> list[str]:
+    """Unlabeled in-domain texts for distillation: a .txt file (one text per line) or a table column."""
+    if not path.exists():
+        raise UserError(f"{where}: no such file")
+    if path.suffix.lower() == ".txt":
+        try:
+            lines = path.read_text(encoding="utf-8").splitlines()
+        except UnicodeDecodeError as e:
+            raise UserError(f"{where}: not UTF-8 text — {_byte_to_line(path, e.start)}") from None
+    else:
+        df = _read_table(path, where)
+        if column not in df.columns:
+            raise UserError(f"{where}: student.transfer_column = {column!r} is not a column — columns: "
+                            f"{', '.join(map(str, df.columns))}")
+        lines = df[column].dropna().astype(str).tolist()
+    texts = [t[:MAX_CHARS] for t in lines if t.strip()]
+    if not texts:
+        raise UserError(f"{where}: no non-empty transfer texts")
+    return texts

@@ -55,18 +55,30 @@ class TeacherConfig(_Section):
     stall_steps: int = Field(100, ge=0, description="a run whose loss has not fallen by stall_fraction after this many steps is degenerate (0 = off)")
     stall_fraction: float = Field(0.1, ge=0, lt=1)
     collapse_share: float = Field(0.95, gt=0, le=1, description="validation predictions this concentrated on one class = a degenerate run")
+    checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
 
     @field_validator("seeds")
     @classmethod
     def _unique_seeds(cls, v: list[int]) -> list[int]:
         if len(set(v)) != len(v):
-            raise ValueError(f"{v} has a repeated seed")
+            raise ValueError(f"seed {next(i for i in v if v.count(i) > 1)} is repeated")
         return v
 
 
 class StudentConfig(_Section):
+    init: Literal["teacher_layers", "pretrained", "config"] = Field(
+        "teacher_layers", description="teacher_layers: copy of the teacher keeping `layers`; pretrained: the model in "
+        "`base` (its tokenizer must equal the teacher's); config: random weights of a smaller shape (needs far more data)")
     layers: Optional[list[int]] = Field(None, description="teacher layer indices kept to initialise the student (default: evenly spaced)")
-    num_layers: int = Field(3, ge=1, description="how many layers to keep when `layers` is not given")
+    num_layers: int = Field(3, ge=1, description="how many layers to keep when `layers` is not given (also the depth with init: config)")
+    base: Optional[str] = Field(None, description="with init: pretrained — a local transformers folder")
+    hidden_size: Optional[int] = Field(None, ge=8, description="with init: config — width (default: the teacher's)")
+    intermediate_size: Optional[int] = Field(None, ge=8, description="with init: config — feed-forward width (default: 4 × hidden_size)")
+    num_attention_heads: Optional[int] = Field(None, ge=1, description="with init: config — heads (default: the teacher's)")
+    hidden_weight: float = Field(0.0, ge=0, description="weight of the hidden-state MSE between mapped layers (0 = off)")
+    attention_weight: float = Field(0.0, ge=0, description="weight of the attention-distribution KL between mapped layers (0 = off)")
+    transfer_path: Optional[str] = Field(None, description="unlabeled in-domain texts the teacher labels softly: .txt (one per line), .csv, .jsonl or .parquet")
+    transfer_column: Optional[str] = Field(None, description="text column of transfer_path when it is a table (default: data.text)")
     temperature: float = Field(2.0, gt=0, description="softmax temperature of the soft-label term")
     alpha: float = Field(0.5, ge=0, le=1, description="weight of the soft-label term; 1 - alpha weighs the hard-label loss")
     epochs: int = Field(3, ge=1)
@@ -76,6 +88,21 @@ class StudentConfig(_Section):
     warmup_ratio: float = Field(0.1, ge=0, lt=1)
     patience: int = Field(2, ge=1)
     seed: int = 0
+    checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
+
+    @model_validator(mode="after")
+    def _init_keys(self) -> "StudentConfig":
+        if self.init == "pretrained" and not self.base:
+            raise ValueError("init is pretrained — set student.base to the pre-trained student's folder")
+        if self.init != "pretrained" and self.base:
+            raise ValueError(f"base is set but init is {self.init} — base goes with init: pretrained")
+        if self.init != "teacher_layers" and self.layers is not None:
+            raise ValueError(f"layers is set but init is {self.init} — layers goes with init: teacher_layers")
+        if self.init != "config" and (self.hidden_size or self.intermediate_size or self.num_attention_heads):
+            raise ValueError(f"hidden_size / intermediate_size / num_attention_heads go with init: config, not {self.init}")
+        if self.hidden_size and self.num_attention_heads and self.hidden_size % self.num_attention_heads:
+            raise ValueError(f"hidden_size {self.hidden_size} is not a multiple of num_attention_heads {self.num_attention_heads}")
+        return self
 
     @field_validator("layers")
     @classmethod
@@ -83,13 +110,13 @@ class StudentConfig(_Section):
         if v is None:
             return v
         if not v:
-            raise ValueError("[] — keep at least one layer")
+            raise ValueError("keep at least one layer")
         if any(i < 0 for i in v):
-            raise ValueError(f"{v} — layer indices start at 0")
+            raise ValueError("layer indices start at 0")
         if len(set(v)) != len(v):
-            raise ValueError(f"{v} has a repeated layer")
+            raise ValueError(f"layer {next(i for i in v if v.count(i) > 1)} is repeated")
         if sorted(v) != v:
-            raise ValueError(f"{v} — list the layers in increasing order")
+            raise ValueError("list the layers in increasing order")
         return v
 
 
@@ -116,16 +143,48 @@ class BenchConfig(_Section):
     sequence_length: int = Field(128, ge=1)
     threads: int = Field(2, ge=1)
     warmup: int = Field(5, ge=0, description="untimed runs before timing")
+    warmup_s: float = Field(0.2, ge=0, description="keep warming up until this many seconds have passed, too")
     repeats: int = Field(30, ge=3, description="timed runs, at least")
     min_time_s: float = Field(1.0, ge=0, description="keep timing until this many seconds have passed")
     eval_batch_size: int = Field(32, ge=1, description="batch size of the accuracy pass over the test split")
 
 
+class RegressionTolerance(_Section):
+    p95_percent: Optional[float] = Field(None, ge=0, description="largest rise of p95 latency over the baseline's same step, percent")
+    accuracy_points: Optional[float] = Field(None, ge=0, description="largest fall of accuracy below the baseline's same step, points")
+    size_percent: Optional[float] = Field(None, ge=0, description="largest growth of size over the baseline's same step, percent")
+
+
 class BudgetConfig(_Section):
-    latency_p95_ms: Optional[float] = Field(None, gt=0, description="largest p95 latency of the final step, ms")
-    size_mb: Optional[float] = Field(None, gt=0, description="largest size of the final step, MB (10^6 bytes)")
+    """Release limits on the gated step (the final one unless `shrinkwrap gate --step` names another)."""
+    latency_p95_ms: Optional[float] = Field(None, gt=0, description="largest p95 latency of the gated step, ms")
+    latency_p95_over_reference: Optional[float] = Field(
+        None, gt=0, description="largest p95 latency as a multiple of the reference matrix-product workload timed in "
+        "the same run (steadier across machines than ms)")
+    batch_size: Optional[int] = Field(None, ge=1, description="batch size the latency limits are meant at: the step "
+                                      "must have been measured at it")
+    sequence_length: Optional[int] = Field(None, ge=1, description="tokens per input the latency limits are meant at")
+    size_mb: Optional[float] = Field(None, gt=0, description="largest size of the gated step, MB (10^6 bytes)")
     accuracy_drop_points: Optional[float] = Field(None, ge=0, description="largest accuracy drop vs the teacher, points")
-    min_accuracy: Optional[float] = Field(None, ge=0, le=1, description="smallest accuracy of the final step, as a fraction")
+    accuracy_drop_upper_bound: bool = Field(
+        False, description="limit the upper end of the drop's 95 % bootstrap interval instead of the measured drop (stricter)")
+    min_accuracy: Optional[float] = Field(None, ge=0, le=1, description="smallest accuracy of the gated step, as a fraction")
+    regression: RegressionTolerance = Field(
+        default_factory=RegressionTolerance, description="limits against a baseline results.json (shrinkwrap gate --baseline)")
+
+    @model_validator(mode="after")
+    def _latency_shape(self) -> "BudgetConfig":
+        has_latency = self.latency_p95_ms or self.latency_p95_over_reference or self.regression.p95_percent is not None
+        if (self.batch_size or self.sequence_length) and not has_latency:
+            raise ValueError("batch_size / sequence_length say where latency is measured — set a latency limit too")
+        if self.accuracy_drop_upper_bound and self.accuracy_drop_points is None:
+            raise ValueError("accuracy_drop_upper_bound is set — set accuracy_drop_points too")
+        return self
+
+    def limits_set(self) -> bool:
+        return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
+                                           self.accuracy_drop_points, self.min_accuracy,
+                                           *self.regression.model_dump().values()))
 
 
 class Recipe(_Section):
@@ -141,6 +200,16 @@ class Recipe(_Section):
 
     # Where the recipe file lives: relative paths in it resolve against this folder.
     source: Optional[str] = Field(None, exclude=True)
+
+    @model_validator(mode="after")
+    def _budget_shape(self) -> "Recipe":
+        # Caught before the run rather than by the gate after an hour of training.
+        for key in ("batch_size", "sequence_length"):
+            want, have = getattr(self.budget, key), getattr(self.bench, key)
+            if want is not None and want != have:
+                raise ValueError(f"budget.{key} = {want} but bench.{key} = {have} — the latency limits are meant at "
+                                 f"the shape the benchmark measures; make them equal")
+        return self
 
     def resolve(self, path: str) -> Path:
         p = Path(path).expanduser()
@@ -172,14 +241,14 @@ def _dig(data: Any, loc: tuple) -> Any:
     return data
 
 
-def _explain(err: dict, raw: dict, where: str) -> str:
+def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
     loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
     place = _place(loc) or "(top level)"
     kind = err["type"]
     msg = err["msg"].removeprefix("Value error, ")
     if kind == "extra_forbidden":
         parent = _place(loc[:-1])
-        model: Any = Recipe
+        model: Any = root or Recipe
         for part in loc[:-1]:
             model = model.model_fields[part].annotation if isinstance(part, str) else model
         allowed = ", ".join(model.model_fields) if hasattr(model, "model_fields") else ""
@@ -187,6 +256,8 @@ def _explain(err: dict, raw: dict, where: str) -> str:
     if kind == "missing":
         return f"{where}: {place} is missing — it is required"
     value = _dig(raw, loc)
+    if not loc or isinstance(value, dict):  # a rule across several keys: its message names them
+        return f"{where}: {place + ' — ' if loc else ''}{msg}"
     return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'} — {msg}"
 
 
@@ -211,27 +282,44 @@ def apply_overrides(raw: dict, overrides: list[str]) -> dict:
     return raw
 
 
-def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
-    path = Path(path)
+def _read_yaml_mapping(path: Path, kind: str) -> dict:
     where = str(path)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise UserError(f"{where}: no such recipe file")
+        raise UserError(f"{where}: no such {kind} file")
     except UnicodeDecodeError as e:
         raise UserError(f"{where}: not UTF-8 text (byte {e.start})")
     except OSError as e:
         raise UserError(f"{where}: cannot read — {e.strerror}")
     try:
-        raw = yaml.safe_load(text)  # safe_load: a recipe can never construct Python objects
+        raw = yaml.safe_load(text)  # safe_load: a file we read can never construct Python objects
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         line = f" line {mark.line + 1}" if mark else ""
         raise UserError(f"{where}:{line} is not valid YAML — {getattr(e, 'problem', e)}")
     if not isinstance(raw, dict):
         raise UserError(f"{where}: expected a mapping of keys at the top level")
-    raw = apply_overrides(raw, list(overrides))
-    return validate_recipe(raw, where, source=str(path.resolve()))
+    return raw
+
+
+def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
+    path = Path(path)
+    raw = apply_overrides(_read_yaml_mapping(path, "recipe"), list(overrides))
+    return validate_recipe(raw, str(path), source=str(path.resolve()))
+
+
+def load_budget(path: str | Path) -> BudgetConfig:
+    """A budget file: YAML whose keys are those of a recipe's `budget:` section."""
+    path = Path(path)
+    return validate_budget(_read_yaml_mapping(path, "budget"), str(path))
+
+
+def validate_budget(raw: dict, where: str) -> BudgetConfig:
+    try:
+        return BudgetConfig.model_validate(raw)
+    except ValidationError as e:
+        raise UserError(_explain(e.errors()[0], raw, where, BudgetConfig)) from None
 
 
 def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None) -> Recipe:

@@ -23,6 +23,7 @@ STEP_FILE = "step.json"
 BENCH_FILE = "bench.json"
 RESULTS_FILE = "results.json"
 REPORT_FILE = "report.md"
+REPORT_HTML_FILE = "report.html"
 # Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
 CODE_VERSION = 1
 
@@ -35,6 +36,8 @@ class Step:
     after: Optional[str]            # the step whose output it reads
     run: Callable
     enabled: Callable[[Recipe], bool] = lambda r: True
+    # Inputs beyond the recipe sections and the upstream output that the step's result depends on.
+    extra: Callable[["Context"], object] = lambda ctx: None
 
 
 def chain() -> list[Step]:
@@ -42,7 +45,7 @@ def chain() -> list[Step]:
 
     return [
         Step("teacher", "pytorch", ("data", "teacher"), None, finetune.run),
-        Step("student", "pytorch", ("student",), "teacher", distill.run),
+        Step("student", "pytorch", ("student",), "teacher", distill.run, extra=lambda ctx: ctx.transfer_fingerprint),
         Step("student-int8", "pytorch", ("quantize",), "student", quantize.run, lambda r: r.quantize.enabled),
         Step("student-onnx", "onnx", ("export",), "student", export.run),
         Step("student-onnx-int8", "onnx", ("onnx_quantize",), "student-onnx", quantize_onnx.run),
@@ -63,6 +66,8 @@ class Context:
     outputs: dict[str, Path] = field(default_factory=dict)
     fingerprints: dict[str, str] = field(default_factory=dict)
     quiet: bool = False
+    transfer_fingerprint: Optional[str] = None
+    teacher_hidden_size: int = 0
 
     def log(self, message: str) -> None:
         if not self.quiet:
@@ -130,9 +135,30 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     data_path = recipe.resolve(recipe.data.path)
     data = load_dataset(recipe.data, data_path, str(data_path))
     encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
+    transfer_fp = None
+    st = recipe.student
+    if st.transfer_path:
+        from shrinkwrap.data import Split, load_transfer
+
+        path = recipe.resolve(st.transfer_path)
+        texts = load_transfer(path, st.transfer_column or recipe.data.text, str(path))
+        if recipe.data.text_pair:
+            raise UserError(f"{where}: student.transfer_path goes with single texts, but data.text_pair is set")
+        encoded["transfer"] = encode(tokenizer, Split(texts=texts, labels=None), recipe.teacher.max_length)
+        transfer_fp = sha256_json(texts)
+    if st.init == "pretrained":
+        student_tok = load_tokenizer(str(recipe.resolve(st.base)), where)
+        if tokenizer_fingerprint_of(student_tok) != tokenizer_fingerprint_of(tokenizer):
+            raise UserError(f"{where}: student.base = {st.base!r} — its tokenizer differs from the teacher's "
+                            f"(fingerprints {tokenizer_fingerprint_of(student_tok)[:12]} vs "
+                            f"{tokenizer_fingerprint_of(tokenizer)[:12]}): a student must read the teacher's tokens")
+    if st.attention_weight > 0 and st.init == "config" and st.num_attention_heads not in (None, config.num_attention_heads):
+        raise UserError(f"{where}: student.attention_weight needs as many heads as the teacher "
+                        f"({config.num_attention_heads}), not student.num_attention_heads = {st.num_attention_heads}")
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
-                   encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet)
+                   encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet,
+                   transfer_fingerprint=transfer_fp, teacher_hidden_size=config.hidden_size)
 
 
 def step_fingerprint(ctx: Context, step: Step) -> str:
@@ -140,7 +166,7 @@ def step_fingerprint(ctx: Context, step: Step) -> str:
     parts = {s: dump[s] for s in step.sections}
     upstream = ctx.fingerprints[step.after] if step.after else ctx.data_fingerprint
     return sha256_json({"step": step.name, "code": CODE_VERSION, "config": parts, "upstream": upstream,
-                        "tokenizer": ctx.tokenizer_fp})
+                        "tokenizer": ctx.tokenizer_fp, "extra": step.extra(ctx)})
 
 
 def _read_json(path: Path) -> Optional[dict]:
@@ -215,12 +241,20 @@ def step_entry(ctx: Context, step: Step, record: dict, bench: dict, teacher: Opt
     ref = teacher or entry
     entry["accuracy_drop"] = round((ref["metrics"]["accuracy"] - entry["metrics"]["accuracy"]) * 100, 4)
     entry["agreement_with_teacher"] = float(np.mean(np.array(ref["predictions"]) == np.array(entry["predictions"])))
+    if teacher is not None:
+        from shrinkwrap.bench.stats import compare_to_reference
+
+        entry.update(compare_to_reference(ctx.data.test.labels, ref["predictions"], entry["predictions"]))
     return entry
 
 
-def run_chain(recipe: Recipe, out: Path, quiet: bool = False) -> dict:
+def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[str] = None) -> dict:
+    """Runs (or reuses) every enabled step in order, stopping after `until` when given."""
+    names = [s.name for s in chain() if s.enabled(recipe)]
+    if until is not None and until not in names:
+        raise UserError(f"--until {until} — not a step of this recipe; steps: {', '.join(names)}")
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.report import markdown_report
+    from shrinkwrap.report import write_reports
 
     ctx = prepare(recipe, out, quiet)
     out.mkdir(parents=True, exist_ok=True)
@@ -245,5 +279,7 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False) -> dict:
         teacher = teacher or entry
         results["steps"].append(entry)
         write_json_atomic(out / RESULTS_FILE, results)
-    write_text_atomic(out / REPORT_FILE, markdown_report(results))
+        if step.name == until:
+            break
+    write_reports(results, out)
     return results

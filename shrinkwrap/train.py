@@ -17,6 +17,7 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from shrinkwrap.bench.accuracy import classification_metrics
+from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
 from shrinkwrap.data import all_logits, collate
 
 
@@ -48,7 +49,9 @@ class FitResult:
     steps: int = 0
 
 
-LossFn = Callable[[torch.Tensor, torch.Tensor, torch.Tensor], torch.Tensor]  # (logits, labels, indices) -> loss
+# (model, padded batch, labels, example indices) -> loss. The loss runs the model itself, so a
+# distillation loss can ask for hidden states or attentions without the loop knowing.
+LossFn = Callable[[nn.Module, dict, torch.Tensor, torch.Tensor], torch.Tensor]
 
 
 def seed_everything(seed: int) -> None:
@@ -88,9 +91,23 @@ def _linear_schedule(optimizer, warmup: int, total: int):
     return torch.optim.lr_scheduler.LambdaLR(optimizer, factor)
 
 
+def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResult):
+    model.load_state_dict(saved["model"])
+    optimizer.load_state_dict(saved["optimizer"])
+    schedule.load_state_dict(saved["schedule"])
+    set_rng_state(saved["rng"], generator)
+    result.curve, result.steps = saved["curve"], saved["steps"]
+    result.best_metric, result.best_epoch = saved["best_metric"], saved["best_epoch"]
+    order = None if saved["order"] is None else saved["order"].numpy()
+    return saved["epoch"], saved["batch"], order, saved["best_state"], saved["since_best"], saved["losses"]
+
+
 def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels: np.ndarray, loss_fn: LossFn,
-        s: TrainSettings, pad_id: int, desc: str = "training") -> FitResult:
-    """Trains `model` in place; on return it holds the weights of the best validation epoch."""
+        s: TrainSettings, pad_id: int, desc: str = "training", checkpoint: Optional[Checkpoint] = None) -> FitResult:
+    """Trains `model` in place; on return it holds the weights of the best validation epoch.
+
+    With `checkpoint`, the whole training state is saved every `checkpoint.every` steps and at each epoch
+    end, and a run that finds a saved state continues from it exactly where the killed run was."""
     seed_everything(s.seed)
     result = FitResult()
     started = time.perf_counter()
@@ -103,17 +120,37 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
     majority = np.bincount(val_labels, minlength=n_classes).max() / len(val_labels)
     best_state, since_best, losses = None, 0, []
 
-    bar = tqdm(total=total, desc=desc, unit="step", leave=False, dynamic_ncols=True)
+    def snapshot(next_epoch: int, next_batch: int, order: Optional[np.ndarray]) -> dict:
+        return {"model": model.state_dict(), "optimizer": optimizer.state_dict(), "schedule": schedule.state_dict(),
+                "rng": rng_state(generator), "epoch": next_epoch, "batch": next_batch,
+                "order": None if order is None else torch.from_numpy(order.astype(np.int64)),
+                "best_state": best_state, "best_metric": result.best_metric, "best_epoch": result.best_epoch,
+                "since_best": since_best, "curve": result.curve, "losses": losses, "steps": result.steps,
+                "seconds": time.perf_counter() - started}
+
+    first_epoch, first_batch, resumed_order = 1, 0, None
+    saved = checkpoint.load() if checkpoint else None
+    if saved:
+        first_epoch, first_batch, resumed_order, best_state, since_best, losses = _restore(
+            saved, model, optimizer, schedule, generator, result)
+        started -= saved["seconds"]
+        checkpoint.log(f"{desc}: resuming from a checkpoint at step {result.steps} (epoch {first_epoch}, "
+                       f"batch {first_batch})")
+
+    bar = tqdm(total=total, initial=result.steps, desc=desc, unit="step", leave=False, dynamic_ncols=True)
     try:
-        for epoch in range(1, s.epochs + 1):
+        for epoch in range(first_epoch, s.epochs + 1):
             model.train()
-            order = torch.randperm(len(train), generator=generator).numpy()
-            for start in range(0, len(order), s.batch_size):
+            if resumed_order is not None:  # the killed run's order for this epoch, already drawn
+                order, resumed_order = resumed_order, None
+            else:
+                order = torch.randperm(len(train), generator=generator).numpy()
+            skip, first_batch = first_batch, 0
+            for start in range(skip * s.batch_size, len(order), s.batch_size):
                 idx = order[start:start + s.batch_size]
                 batch = to_torch(collate([train[i]["features"] for i in idx], pad_id))
                 labels = torch.as_tensor([train[i]["label"] for i in idx])
-                logits = model(**batch).logits
-                loss = loss_fn(logits, labels, torch.as_tensor(idx))
+                loss = loss_fn(model, batch, labels, torch.as_tensor(idx))
                 value = loss.item()
                 result.steps += 1
                 if not math.isfinite(value):
@@ -135,6 +172,8 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
                         result.reason = (f"training loss stalled: {first:.3f} -> {last:.3f} after {s.stall_steps} steps "
                                          f"(needs a fall of {s.stall_fraction:.0%})")
                         return result
+                if checkpoint and checkpoint.due(result.steps):
+                    checkpoint.save(snapshot(epoch, start // s.batch_size + 1, order))
 
             logits = predict_logits(model, validation, pad_id)
             metrics = classification_metrics(val_labels, logits.argmax(1), n_classes)
@@ -155,6 +194,8 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
                 since_best += 1
                 if since_best >= s.patience:
                     break
+            if checkpoint and checkpoint.enabled:
+                checkpoint.save(snapshot(epoch + 1, 0, None))
     finally:
         bar.close()
         result.seconds = time.perf_counter() - started

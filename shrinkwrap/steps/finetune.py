@@ -37,8 +37,8 @@ def run(ctx, out: Path) -> dict:
     n_classes = len(ctx.data.label_names)
     weight = class_weights(ctx.data.train.labels, n_classes) if cfg.class_weights else None
 
-    def loss_fn(logits, labels, _idx):
-        return F.cross_entropy(logits, labels, weight=weight)
+    def loss_fn(model, batch, labels, _idx):
+        return F.cross_entropy(model(**batch).logits, labels, weight=weight)
 
     runs, best, best_model = [], None, None
     for seed in cfg.seeds:
