@@ -11,10 +11,12 @@ import os
 import shutil
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Optional
 
+from shrinkwrap.checkpoint import close_scratch, is_disk_full, open_scratch, write_error
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json, tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
 from shrinkwrap.recipe import Recipe
@@ -84,7 +86,7 @@ def write_json_atomic(path: Path, obj) -> None:
         os.replace(tmp, path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
-        raise UserError(f"{path}: cannot write — {e.strerror or e}") from None
+        raise write_error(path, e) from None
 
 
 def write_text_atomic(path: Path, text: str) -> None:
@@ -94,7 +96,7 @@ def write_text_atomic(path: Path, text: str) -> None:
         os.replace(tmp, path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
-        raise UserError(f"{path}: cannot write — {e.strerror or e}") from None
+        raise write_error(path, e) from None
 
 
 def _check_out_dir(out: Path) -> None:
@@ -114,7 +116,9 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
 
     where = recipe.source or "recipe"
     _check_out_dir(out)
-    base = resolve_base(recipe.teacher.base, where)
+    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    if recipe.teacher.trust_remote_code:
+        warnings.warn(f"{where}: teacher.trust_remote_code is on — Python code shipped with {base} will run")
     try:
         config = AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
     except (OSError, ValueError) as e:
@@ -133,6 +137,8 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
         raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
     tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
     data_path = recipe.resolve(recipe.data.path)
+    if not data_path.exists():
+        raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
     data = load_dataset(recipe.data, data_path, str(data_path))
     encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
     transfer_fp = None
@@ -176,6 +182,18 @@ def _read_json(path: Path) -> Optional[dict]:
         return None
 
 
+def check_output_tokenizer(ctx: Context, name: str, folder: Path) -> str:
+    """A step's output must carry the teacher's tokenizer: any other one would turn texts into other ids."""
+    path = folder / "tokenizer.json"
+    if not path.exists():
+        raise UserError(f"{path}: missing — every step's output carries the teacher's tokenizer")
+    got = tokenizer_fingerprint_of_file(path)
+    if got != ctx.tokenizer_fp:
+        raise UserError(f"{name}: the tokenizer in {folder} (fingerprint {got[:12]}) differs from the teacher's "
+                        f"tokenizer (fingerprint {ctx.tokenizer_fp[:12]}) — remove {folder} to redo the step")
+    return got
+
+
 def run_step(ctx: Context, step: Step) -> dict:
     """Reuses the step's finished output when its fingerprint matches; otherwise runs it atomically."""
     fp = step_fingerprint(ctx, step)
@@ -183,20 +201,23 @@ def run_step(ctx: Context, step: Step) -> dict:
     final = ctx.run_dir / step.name
     done = _read_json(final / STEP_FILE)
     if done and done.get("fingerprint") == fp:
+        check_output_tokenizer(ctx, step.name, final)
         ctx.log(f"[{step.name}] unchanged — reusing {final}")
         ctx.outputs[step.name] = final
         return done
     partial = ctx.run_dir / f".partial-{step.name}"
-    shutil.rmtree(partial, ignore_errors=True)
-    partial.mkdir(parents=True)
-    ctx.log(f"[{step.name}] running")
+    resumed = open_scratch(partial, fp)  # keeps a killed run's checkpoints only when made for this fingerprint
+    ctx.log(f"[{step.name}] " + ("resuming from the checkpoint a killed run left" if resumed else "running"))
     started = time.perf_counter()
-    info = step.run(ctx, partial)
+    try:
+        info = step.run(ctx, partial)
+    except Exception as e:
+        if is_disk_full(e):
+            raise write_error(getattr(e, "filename", None) or partial, e) from None
+        raise
     seconds = time.perf_counter() - started
-    tok_fp = tokenizer_fingerprint_of_file(partial / "tokenizer.json")
-    if tok_fp != ctx.tokenizer_fp:
-        raise UserError(f"{step.name}: its output's tokenizer ({tok_fp[:12]}) differs from the teacher's "
-                        f"({ctx.tokenizer_fp[:12]})")
+    close_scratch(partial)
+    tok_fp = check_output_tokenizer(ctx, step.name, partial)
     record = {"name": step.name, "format": step.format, "fingerprint": fp, "tokenizer_fingerprint": tok_fp,
               "after": step.after, "seconds": round(seconds, 2), "info": info}
     write_json_atomic(partial / STEP_FILE, record)
@@ -257,9 +278,12 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
     from shrinkwrap.report import write_reports
 
     ctx = prepare(recipe, out, quiet)
-    out.mkdir(parents=True, exist_ok=True)
-    for stale in out.glob(".partial-*"):
-        shutil.rmtree(stale, ignore_errors=True)  # left by a killed run; never mistaken for finished
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UserError(f"--out {out}: cannot create the run folder — {e.strerror or e}") from None
+    # A killed run's .partial-<step> folders are never mistaken for finished steps (those have step.json
+    # in <step>/); run_step resumes one from its checkpoint when the step's fingerprint still matches.
     results = {
         "recipe": recipe.model_dump(mode="json"), "recipe_fingerprint": recipe.fingerprint(),
         "machine": describe(),
