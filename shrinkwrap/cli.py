@@ -59,6 +59,71 @@ def cmd_report(args) -> int:
     return EXIT_OK
 
 
+def cmd_bench(args) -> int:
+    from shrinkwrap.bench.grid import bench_text, grid
+    from shrinkwrap.bench.machine import describe
+    from shrinkwrap.bench.measure import bench_target
+    from shrinkwrap.bench.testset import inputs_for, read_table
+    from shrinkwrap.recipe import BenchConfig
+    from shrinkwrap.runner import write_json_atomic
+
+    if args.out:  # checked first, so that a bad path fails before minutes of measuring
+        out = Path(args.out)
+        if out.is_dir() or not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
+            raise UserError(f"--out {out}: not a writable file path (its folder must exist)")
+    if "real" in args.sequence_length and not args.data:
+        raise UserError("--sequence-length real needs --data: real lengths come from real texts")
+    table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
+    cfg = BenchConfig(threads=args.threads, warmup=args.warmup, warmup_s=args.warmup_time, repeats=args.repeats,
+                      min_time_s=args.min_time, eval_batch_size=args.eval_batch_size)
+    log = (lambda m: None) if args.json else (lambda m: print(f"[bench] {m}", file=sys.stderr, flush=True))
+    result = bench_target(args.target, cfg, grid(args.batch_size, args.sequence_length),
+                          inputs_for(table, args.max_length), log)
+    result.pop("predictions", None)
+    result["machine"] = describe()
+    if args.out:
+        write_json_atomic(Path(args.out), result)
+    print(json.dumps(result, indent=2) if args.json else bench_text(result))
+    return EXIT_OK
+
+
+def cmd_predict(args) -> int:
+    # Only torch-free modules on this path: an artefact must run in a slim image (tests/test_predict.py).
+    from shrinkwrap.artifact import DEFAULT_BATCH_SIZE
+    from shrinkwrap.predict import run_predict
+
+    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads)
+
+
+def cmd_package(args) -> int:
+    from shrinkwrap.package import from_folder
+
+    log = (lambda m: None) if args.json else (lambda m: print(f"[package] {m}", file=sys.stderr, flush=True))
+    out = from_folder(Path(args.model_dir), Path(args.out), data=args.data and Path(args.data), text=args.text,
+                      label=args.label, max_length=args.max_length, int8=args.int8, per_channel=args.per_channel,
+                      opset=args.opset, threads=args.threads, log=log)
+    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    if args.json:
+        print(json.dumps(manifest, indent=2))
+    else:
+        m = manifest.get("metrics")
+        print(f"artefact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
+                                    f"{m['texts']} texts)" if m else ""))
+    return EXIT_OK
+
+
+def _count(text: str) -> int:
+    if not text.isdigit():
+        raise argparse.ArgumentTypeError(f"{text!r} — a whole number, 0 or more")
+    return int(text)
+
+
+def _positive_int(text: str) -> int:
+    if not text.isdigit() or int(text) < 1:
+        raise argparse.ArgumentTypeError(f"{text!r} — a whole number, 1 or more")
+    return int(text)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="shrinkwrap", description=__doc__.splitlines()[0] if __doc__ else None)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -76,7 +141,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     gate = sub.add_parser("gate", help="check a run's results against a budget: exit 0 pass, 1 a limit failed, 2 bad input",
                           description="Check one step of RESULTS (the final one by default) against the limits of a "
-                                      "budget; print a verdict per limit.")
+                                      "budget; print a verdict per limit. Exit 0: every limit met; 1: a limit "
+                                      "failed; 2: bad input (budget, results, options).")
     gate.add_argument("results", help="results.json of a run")
     gate.add_argument("--budget", metavar="FILE",
                       help="budget YAML (keys of a recipe's budget: section; default: the budget of the recipe in RESULTS)")
@@ -95,6 +161,84 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("results", help="results.json of a run")
     report.add_argument("--out", metavar="DIR", help="folder for the reports (default: beside RESULTS)")
     report.set_defaults(func=cmd_report)
+
+    from shrinkwrap.bench.grid import parse_length
+    from shrinkwrap.recipe import BenchConfig
+
+    default = {k: f.default for k, f in BenchConfig.model_fields.items()}
+    bench = sub.add_parser("bench", help="measure latency, size and memory (and accuracy with --data) of any model",
+                           description="Benchmark TARGET: a transformers classification folder, a folder with "
+                                       "model.onnx, a bare .onnx file (an encoder without a head is fine: latency "
+                                       "and size from synthetic token ids), or a shrinkwrap artefact.")
+    bench.add_argument("target", help="model folder, .onnx file or artefact folder")
+    bench.add_argument("--data", metavar="FILE", help="labelled table (.csv, .jsonl, .parquet; or a datasets folder's "
+                       "test split): every row is a test text; adds accuracy and real-text lengths")
+    bench.add_argument("--text", default="text", help="text column of --data (default: text)")
+    bench.add_argument("--text-pair", metavar="COLUMN", help="second text column of --data, for pair inputs")
+    bench.add_argument("--label", default="label", help="label column of --data, holding the model's label names "
+                       "(default: label)")
+    bench.add_argument("--max-length", type=_positive_int, metavar="N",
+                       help="cut --data texts at N tokens (default: the most the model takes, else 512)")
+    bench.add_argument("--batch-size", type=_positive_int, nargs="+", default=[default["batch_size"]], metavar="N",
+                       help=f"batch sizes to time (default: {default['batch_size']})")
+    bench.add_argument("--sequence-length", type=parse_length, nargs="+", default=[default["sequence_length"]],
+                       metavar="L", help=f"tokens per text to time; `real` = texts of --data padded to their batch's "
+                       f"longest (default: {default['sequence_length']})")
+    bench.add_argument("--threads", type=_positive_int, default=default["threads"],
+                       help=f"intra-op threads of the model and of the reference workload (default: {default['threads']})")
+    bench.add_argument("--warmup", type=int, default=default["warmup"], metavar="N",
+                       help=f"untimed runs before each row (default: {default['warmup']})")
+    bench.add_argument("--warmup-time", type=float, default=default["warmup_s"], metavar="SECONDS",
+                       help=f"and keep warming up at least this long (default: {default['warmup_s']})")
+    bench.add_argument("--repeats", type=_positive_int, default=default["repeats"], metavar="N",
+                       help=f"timed runs per row, at least (default: {default['repeats']})")
+    bench.add_argument("--min-time", type=float, default=default["min_time_s"], metavar="SECONDS",
+                       help=f"keep timing each row at least this long (default: {default['min_time_s']})")
+    bench.add_argument("--eval-batch-size", type=_positive_int, default=default["eval_batch_size"], metavar="N",
+                       help=f"batch size of the accuracy pass (default: {default['eval_batch_size']})")
+    bench.add_argument("--json", action="store_true", help="print the figures as JSON instead of the table")
+    bench.add_argument("--out", metavar="FILE.json", help="also write the figures as JSON to this file")
+    bench.set_defaults(func=cmd_bench)
+
+    predict = sub.add_parser("predict", help="classify texts with an artefact (needs only onnxruntime, tokenizers, numpy)",
+                             description="Print one JSON line {\"text\", \"label\", \"scores\"} per text. Every "
+                                         "file of ARTIFACT is checked against its manifest.json first; a modified or "
+                                         "incomplete artefact is refused (exit 2).")
+    predict.add_argument("artifact", help="artefact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
+    predict.add_argument("texts", nargs="*", metavar="TEXT",
+                         help="texts to classify (none: one per line from --file or stdin)")
+    predict.add_argument("--file", metavar="FILE", help="UTF-8 file with one text per line")
+    predict.add_argument("--batch-size", type=_positive_int, metavar="N",
+                         help="texts per model call; texts are grouped by length (default: 32, as in the chain's "
+                              "accuracy pass, which gives exactly its predictions)")
+    predict.add_argument("--threads", type=_count, default=0, metavar="N",
+                         help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    predict.set_defaults(func=cmd_predict)
+
+    package = sub.add_parser("package", help="build an artefact from a transformers classification folder",
+                             description="Build an artefact folder (model.onnx, tokenizer, labels, manifest.json with "
+                                         "hashes, model card README.md) from MODEL_DIR: a transformers classification "
+                                         "folder (exported to ONNX, parity-checked against PyTorch, int8 by default) "
+                                         "or a folder that already holds model.onnx (packaged as it is).")
+    package.add_argument("model_dir", help="transformers classification folder (safetensors) or a folder with model.onnx")
+    package.add_argument("--out", required=True, metavar="DIR", help="artefact folder to write (replaced only if it "
+                         "is an artefact or empty)")
+    package.add_argument("--data", metavar="FILE", help="labelled table (.csv, .jsonl, .parquet): accuracy on all its "
+                         "rows is measured through the artefact and recorded in manifest.json and the model card")
+    package.add_argument("--text", default="text", help="text column of --data (default: text)")
+    package.add_argument("--label", default="label", help="label column of --data, holding the model's label names "
+                         "(default: label)")
+    package.add_argument("--max-length", type=_positive_int, metavar="N",
+                         help="tokens per text after truncation (default: the model's position count, at most 512)")
+    package.add_argument("--int8", action=argparse.BooleanOptionalAction, default=True,
+                         help="quantise the exported graph to int8 with ONNX Runtime, embeddings included "
+                              "(default: on; a folder with model.onnx is packaged as it is)")
+    package.add_argument("--per-channel", action="store_true", help="int8 weights with per-channel scales")
+    package.add_argument("--opset", type=int, metavar="N", help="ONNX opset of the export (default: a recipe's "
+                         "export.opset default)")
+    package.add_argument("--threads", type=_positive_int, default=2, help="threads for the parity check (default: 2)")
+    package.add_argument("--json", action="store_true", help="print manifest.json instead of a summary line")
+    package.set_defaults(func=cmd_package)
     return p
 
 

@@ -39,7 +39,7 @@ class DataConfig(_Section):
 
 
 class TeacherConfig(_Section):
-    base: str = Field("bundled", description="`bundled` (the packaged MiniLM-L6-H384), a local transformers folder, or a hub id when online")
+    base: str = Field("bundled", description="`bundled` (the packaged MiniLM-L6-H384), a local transformers folder with safetensors weights (relative to the recipe's folder), or a hub id already in the local Hugging Face cache (nothing is downloaded)")
     epochs: int = Field(3, ge=1, description="fine-tuning epochs")
     max_length: int = Field(128, ge=8, le=4096, description="tokens per input after truncation")
     learning_rate: float = Field(5e-5, gt=0, lt=1)
@@ -131,11 +131,28 @@ class ExportConfig(_Section):
     parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed |logit difference| between ONNX fp32 and PyTorch")
 
 
+# Operator types ONNX Runtime's static (QDQ) quantiser handles among those op_types allows: it has no
+# form of the fused Attention and EmbedLayerNormalization.
+STATIC_OP_TYPES = ("MatMul", "Gather", "Gemm")
+
+
 class OnnxQuantizeConfig(_Section):
     per_channel: bool = Field(False, description="per-channel weight scales instead of one per tensor")
     op_types: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
         default_factory=lambda: ["MatMul", "Attention", "Gather", "EmbedLayerNormalization"],
-        min_length=1, description="operator types quantised (Gather/EmbedLayerNormalization = the embedding lookup)")
+        min_length=1, description="operator types quantised. The embedding lookup (about half of a small model's "
+                                  "bytes) is Gather in an unfused graph and EmbedLayerNormalization in a fused one; "
+                                  "Attention holds a fused graph's query/key/value weights")
+    static: bool = Field(False, description="also run step student-onnx-int8-static: weights and activations int8 "
+                                            "(QDQ), activation ranges calibrated on training texts")
+    static_calibration_texts: int = Field(100, ge=1, description="training texts the static step calibrates on")
+
+    @model_validator(mode="after")
+    def _static_ops(self) -> "OnnxQuantizeConfig":
+        if self.static and not set(self.op_types) & set(STATIC_OP_TYPES):
+            raise ValueError(f"op_types = {json.dumps(self.op_types)} with static: true — the static step "
+                             f"quantises only {', '.join(STATIC_OP_TYPES)}; list at least one of them")
+        return self
 
 
 class BenchConfig(_Section):
@@ -182,9 +199,9 @@ class BudgetConfig(_Section):
         return self
 
     def limits_set(self) -> bool:
+        """Whether a limit is set that needs no baseline (what `shrinkwrap run` can check at its end)."""
         return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
-                                           self.accuracy_drop_points, self.min_accuracy,
-                                           *self.regression.model_dump().values()))
+                                           self.accuracy_drop_points, self.min_accuracy))
 
 
 class Recipe(_Section):
@@ -241,8 +258,12 @@ def _dig(data: Any, loc: tuple) -> Any:
     return data
 
 
+def _loc(err: dict) -> tuple:
+    return tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
+
+
 def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
-    loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
+    loc = _loc(err)
     place = _place(loc) or "(top level)"
     kind = err["type"]
     msg = err["msg"].removeprefix("Value error, ")
@@ -267,7 +288,10 @@ def parse_override(text: str) -> tuple[list[str], Any]:
     key, value = text.split("=", 1)
     if not key or any(not p for p in key.split(".")):
         raise UserError(f"--set {text} — expected key.path=value")
-    return key.split("."), yaml.safe_load(value) if value != "" else ""
+    try:
+        return key.split("."), yaml.safe_load(value) if value != "" else ""
+    except yaml.YAMLError as e:
+        raise UserError(f"--set {text} — the value is not valid YAML ({getattr(e, 'problem', None) or e})") from None
 
 
 def apply_overrides(raw: dict, overrides: list[str]) -> dict:
@@ -289,7 +313,8 @@ def _read_yaml_mapping(path: Path, kind: str) -> dict:
     except FileNotFoundError:
         raise UserError(f"{where}: no such {kind} file")
     except UnicodeDecodeError as e:
-        raise UserError(f"{where}: not UTF-8 text (byte {e.start})")
+        line = path.read_bytes()[:e.start].count(b"\n") + 1
+        raise UserError(f"{where}: not UTF-8 text — line {line} (byte {e.start})") from None
     except OSError as e:
         raise UserError(f"{where}: cannot read — {e.strerror}")
     try:
@@ -297,7 +322,8 @@ def _read_yaml_mapping(path: Path, kind: str) -> dict:
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         line = f" line {mark.line + 1}" if mark else ""
-        raise UserError(f"{where}:{line} is not valid YAML — {getattr(e, 'problem', e)}")
+        problem = getattr(e, "problem", None) or str(e).splitlines()[0]
+        raise UserError(f"{where}:{line} is not valid YAML — {problem}") from None
     if not isinstance(raw, dict):
         raise UserError(f"{where}: expected a mapping of keys at the top level")
     return raw
@@ -306,7 +332,8 @@ def _read_yaml_mapping(path: Path, kind: str) -> dict:
 def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
     path = Path(path)
     raw = apply_overrides(_read_yaml_mapping(path, "recipe"), list(overrides))
-    return validate_recipe(raw, str(path), source=str(path.resolve()))
+    overridden = {".".join(parse_override(text)[0]): text for text in overrides}
+    return validate_recipe(raw, str(path), source=str(path.resolve()), overridden=overridden)
 
 
 def load_budget(path: str | Path) -> BudgetConfig:
@@ -322,11 +349,48 @@ def validate_budget(raw: dict, where: str) -> BudgetConfig:
         raise UserError(_explain(e.errors()[0], raw, where, BudgetConfig)) from None
 
 
-def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None) -> Recipe:
+def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None,
+                    overridden: Optional[dict[str, str]] = None) -> Recipe:
     try:
         recipe = Recipe.model_validate(raw)
     except ValidationError as e:
         # One line, the first problem: fixing one usually changes the rest.
-        raise UserError(_explain(e.errors()[0], raw, where)) from None
+        err = e.errors()[0]
+        text = (overridden or {}).get(_place(_loc(err)))
+        raise UserError(_explain(err, raw, f"{where} (--set {text})" if text else where)) from None
     recipe.source = source
     return recipe
+
+
+def key_paths(model: type[BaseModel] = Recipe, prefix: str = "") -> list[tuple[str, Any]]:
+    """(dotted key path, field info) of every leaf key of the recipe, in schema order."""
+    out = []
+    for name, info in model.model_fields.items():
+        if info.exclude:
+            continue
+        ann = info.annotation
+        if isinstance(ann, type) and issubclass(ann, BaseModel):
+            out += key_paths(ann, f"{prefix}{name}.")
+        else:
+            out.append((prefix + name, info))
+    return out
+
+
+def key_table() -> str:
+    """The recipe's keys as a Markdown table (README.md carries it; a test keeps the two in step)."""
+    from pydantic_core import PydanticUndefined
+
+    rows = ["| key | default | meaning |", "|---|---|---|"]
+    for path, info in key_paths():
+        if info.default is not PydanticUndefined:
+            default = json.dumps(info.default)
+        elif info.default_factory is not None:
+            default = json.dumps(info.default_factory())
+        else:
+            default = "required"
+        rows.append(f"| `{path}` | `{default}` | {(info.description or '').replace('|', '/')} |")
+    return "\n".join(rows)
+
+
+if __name__ == "__main__":
+    print(key_table())

@@ -42,14 +42,20 @@ class Step:
     extra: Callable[["Context"], object] = lambda ctx: None
 
 
-def chain() -> list[Step]:
+def chain(recipe: Optional[Recipe] = None) -> list[Step]:
+    """The steps in order. Each reads the output of the step named in `after`: the PyTorch steps that
+    follow the student read the last PyTorch student the recipe makes."""
     from shrinkwrap.steps import distill, export, finetune, quantize, quantize_onnx
 
+    last = "student"
     return [
         Step("teacher", "pytorch", ("data", "teacher"), None, finetune.run),
         Step("student", "pytorch", ("student",), "teacher", distill.run, extra=lambda ctx: ctx.transfer_fingerprint),
-        Step("student-int8", "pytorch", ("quantize",), "student", quantize.run, lambda r: r.quantize.enabled),
-        Step("student-onnx", "onnx", ("export",), "student", export.run),
+        Step("student-int8", "pytorch", ("quantize",), last, quantize.run, lambda r: r.quantize.enabled),
+        Step("student-onnx", "onnx", ("export",), last, export.run),
+        # Before the dynamic int8 step, so that the final step (budgets, the artefact) stays the dynamic one.
+        Step("student-onnx-int8-static", "onnx", ("export", "onnx_quantize"), last, quantize_onnx.run_static,
+             lambda r: r.onnx_quantize.static),
         Step("student-onnx-int8", "onnx", ("onnx_quantize",), "student-onnx", quantize_onnx.run),
     ]
 
@@ -210,7 +216,7 @@ def run_step(ctx: Context, step: Step) -> dict:
     ctx.log(f"[{step.name}] " + ("resuming from the checkpoint a killed run left" if resumed else "running"))
     started = time.perf_counter()
     try:
-        info = step.run(ctx, partial)
+        info = step.run(ctx, ctx.outputs[step.after] if step.after else None, partial)
     except Exception as e:
         if is_disk_full(e):
             raise write_error(getattr(e, "filename", None) or partial, e) from None
@@ -256,9 +262,11 @@ def step_entry(ctx: Context, step: Step, record: dict, bench: dict, teacher: Opt
 
     entry = {"name": step.name, "format": bench["format"], "path": str(ctx.outputs[step.name]),
              "metrics": bench["metrics"], "latency_ms": bench["latency_ms"], "size_bytes": bench["size_bytes"],
-             "load_seconds": bench["load_seconds"], "seconds": record["seconds"],
+             "load_seconds": bench["load_seconds"], "memory": bench.get("memory"), "seconds": record["seconds"],
              "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"],
              "predictions": bench["predictions"]}
+    if "agreement_with_fp32" in record["info"]:  # an int8 step against the fp32 graph it came from
+        entry["agreement_with_fp32"] = record["info"]["agreement_with_fp32"]
     ref = teacher or entry
     entry["accuracy_drop"] = round((ref["metrics"]["accuracy"] - entry["metrics"]["accuracy"]) * 100, 4)
     entry["agreement_with_teacher"] = float(np.mean(np.array(ref["predictions"]) == np.array(entry["predictions"])))
@@ -271,7 +279,7 @@ def step_entry(ctx: Context, step: Step, record: dict, bench: dict, teacher: Opt
 
 def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[str] = None) -> dict:
     """Runs (or reuses) every enabled step in order, stopping after `until` when given."""
-    names = [s.name for s in chain() if s.enabled(recipe)]
+    names = [s.name for s in chain(recipe) if s.enabled(recipe)]
     if until is not None and until not in names:
         raise UserError(f"--until {until} — not a step of this recipe; steps: {', '.join(names)}")
     from shrinkwrap.bench.machine import describe
@@ -295,7 +303,7 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         "steps": [],
     }
     teacher = None
-    for step in chain():
+    for step in chain(recipe):
         if not step.enabled(recipe):
             continue
         record = run_step(ctx, step)
@@ -305,5 +313,11 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         write_json_atomic(out / RESULTS_FILE, results)
         if step.name == until:
             break
+    if results["steps"][-1]["format"] == "onnx":
+        from shrinkwrap.package import from_run
+
+        results["artifact"] = str(from_run(results, out))
+        write_json_atomic(out / RESULTS_FILE, results)
+        ctx.log(f"[artifact] written to {results['artifact']}")
     write_reports(results, out)
     return results

@@ -18,6 +18,7 @@ import numpy as np
 import torch
 from torch import nn
 
+from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.data import length_batches
 from shrinkwrap.fingerprint import sha256_json
 from shrinkwrap.losses import attention_loss, distillation_loss, hidden_state_loss
@@ -98,9 +99,9 @@ def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], ke
             {"cache": "miss", "seconds": round(seconds, 2)})
 
 
-def run(ctx, out: Path) -> dict:
+def run(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.student
-    teacher = load_classifier(str(ctx.outputs["teacher"]))
+    teacher = load_classifier(str(src))
     student, layer_map = build_student(ctx, teacher)
     hidden, attention = cfg.hidden_weight > 0, cfg.attention_weight > 0
 
@@ -141,7 +142,8 @@ def run(ctx, out: Path) -> dict:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
         result = fit(student, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
-                     desc="student")
+                     desc="student", checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints["student"],
+                                                           cfg.checkpoint_every_steps, log=ctx.log))
     if hasattr(student, PROJECTION):
         delattr(student, PROJECTION)
     save_classifier(student, ctx.tokenizer, out)

@@ -62,38 +62,44 @@ def parity(path: Path, torch_logits: np.ndarray, examples: list[dict], pad_id: i
             "texts": len(examples)}
 
 
-def run(ctx, out: Path) -> dict:
-    cfg, bench = ctx.recipe.export, ctx.recipe.bench
-    model = load_classifier(str(ctx.outputs["student"]))
-    examples = ctx.encoded["test"]
-    torch_logits = predict_logits(model, examples, ctx.pad_id)
-
+def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict, cfg, threads: int, out: Path,
+                   what: str = "student-onnx") -> dict:
+    """Writes out/model.onnx: the fp32 export, fused when `cfg.optimize` says so (or when faster), proven
+    to give PyTorch's logits on `examples`. Raises StepFailed naming `what` when no graph passes."""
+    torch_logits = predict_logits(model, examples, pad_id)
     with tempfile.TemporaryDirectory(dir=out) as tmp:
         tmp = Path(tmp)
         plain = export_onnx(model, tmp, cfg.opset)
         candidates = {"plain": plain}
         if cfg.optimize != "never":
             candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx")
-
-        timing_batch = collate(encode(ctx.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
-                               ctx.pad_id, length=bench.sequence_length)
         report = {}
         for name, path in candidates.items():
-            report[name] = parity(path, torch_logits, examples, ctx.pad_id, bench.threads)
-            report[name]["p50_ms"] = p50_ms(path, timing_batch, bench.threads)
+            report[name] = parity(path, torch_logits, examples, pad_id, threads)
+            report[name]["p50_ms"] = p50_ms(path, timing_batch, threads)
             report[name]["passes"] = (report[name]["max_abs_logit_diff"] <= cfg.parity_tolerance
                                       and report[name]["label_mismatches"] == 0)
         passing = [n for n in candidates if report[n]["passes"]]
         if not passing:
             worst = min(report.values(), key=lambda r: r["max_abs_logit_diff"])
-            raise StepFailed(f"student-onnx: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
+            raise StepFailed(f"{what}: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
                              f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels")
         if cfg.optimize == "always" and "fused" in passing:
             chosen = "fused"
         else:
             chosen = min(passing, key=lambda n: report[n]["p50_ms"])
         shutil.move(str(candidates[chosen]), out / MODEL_FILE)
+    return {"exporter": "optimum (torch.onnx)", "precision": "fp32", "opset": cfg.opset, "graph": chosen,
+            "candidates": report,
+            "parity": report[chosen]}
+
+
+def run(ctx, src: Path, out: Path) -> dict:
+    cfg, bench = ctx.recipe.export, ctx.recipe.bench
+    model = load_classifier(str(src))
+    timing_batch = collate(encode(ctx.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
+                           ctx.pad_id, length=bench.sequence_length)
+    info = export_checked(model, ctx.encoded["test"], ctx.pad_id, timing_batch, cfg, bench.threads, out)
     model.config.save_pretrained(out)
     ctx.tokenizer.save_pretrained(out)
-    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
-            "parity": report[chosen]}
+    return info

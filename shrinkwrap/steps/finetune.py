@@ -12,6 +12,7 @@ import numpy as np
 import torch
 from torch.nn import functional as F
 
+from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.errors import StepFailed
 from shrinkwrap.models import load_classifier, save_classifier
 from shrinkwrap.train import FitResult, TrainSettings, fit, seed_everything
@@ -31,7 +32,7 @@ def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
     return torch.tensor(len(labels) / (n_classes * np.maximum(counts, 1)), dtype=torch.float32)
 
 
-def run(ctx, out: Path) -> dict:
+def run(ctx, src: None, out: Path) -> dict:
     cfg = ctx.recipe.teacher
     train = [{"features": f, "label": int(y)} for f, y in zip(ctx.encoded["train"], ctx.data.train.labels)]
     n_classes = len(ctx.data.label_names)
@@ -40,12 +41,23 @@ def run(ctx, out: Path) -> dict:
     def loss_fn(model, batch, labels, _idx):
         return F.cross_entropy(model(**batch).logits, labels, weight=weight)
 
-    runs, best, best_model = [], None, None
+    # The seeds a killed run finished, with the best one's weights, so that a resumed run skips them.
+    folder, fp, every = out / CHECKPOINT_DIR, ctx.fingerprints["teacher"], cfg.checkpoint_every_steps
+    sweep = Checkpoint(folder, fp, every, name="sweep", log=ctx.log)
+    done = sweep.load() or {"runs": [], "best_seed": None, "best_model": None}
+    runs, best, best_model = done["runs"], None, None
+    if done["best_seed"] is not None:
+        best = next(r for r in runs if r["seed"] == done["best_seed"])
+        best_model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
+        best_model.load_state_dict(done["best_model"])
     for seed in cfg.seeds:
+        if any(r["seed"] == seed for r in runs):
+            continue
         seed_everything(seed)  # the new head's initialisation depends on the seed
         model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
+        checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
         result: FitResult = fit(model, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
-                                settings(cfg, seed), ctx.pad_id, desc=f"teacher seed {seed}")
+                                settings(cfg, seed), ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
         entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
                  "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,
                  "seconds": round(result.seconds, 2), "steps": result.steps}
@@ -54,6 +66,9 @@ def run(ctx, out: Path) -> dict:
                 + (f" — {result.reason}" if result.reason else f", validation {cfg.metric} {result.best_metric:.4f}"))
         if result.status == "ok" and (best is None or result.best_metric > best["best_metric"]):
             best, best_model = entry, model
+        sweep.save({"runs": runs, "best_seed": best["seed"] if best else None,
+                    "best_model": best_model.state_dict() if best_model is not None else None})
+        checkpoint.clear()  # after the sweep records the seed: a kill in between re-runs nothing
     if best is None:
         reasons = "; ".join(f"seed {r['seed']}: {r['reason']}" for r in runs)
         raise StepFailed(f"teacher: every seed degenerated — {reasons}. Try other seeds, a lower "

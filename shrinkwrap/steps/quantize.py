@@ -9,7 +9,7 @@ from pathlib import Path
 from shrinkwrap.models import load_classifier, save_int8
 
 
-def run(ctx, out: Path) -> dict:
-    student = load_classifier(str(ctx.outputs["student"]))
+def run(ctx, src: Path, out: Path) -> dict:
+    student = load_classifier(str(src))
     save_int8(student, ctx.tokenizer, out)
     return {"method": "torch.ao dynamic int8", "modules": ["Linear"]}
