@@ -42,18 +42,18 @@ class TeacherConfig(_Section):
     base: str = Field("bundled", description="`bundled` (the packaged MiniLM-L6-H384), a local transformers folder with safetensors weights (relative to the recipe's folder), or a hub id already in the local Hugging Face cache (nothing is downloaded)")
     epochs: int = Field(3, ge=1, description="fine-tuning epochs")
     max_length: int = Field(128, ge=8, le=4096, description="tokens per input after truncation")
-    learning_rate: float = Field(5e-5, gt=0, lt=1)
-    batch_size: int = Field(16, ge=1)
-    weight_decay: float = Field(0.01, ge=0)
+    learning_rate: float = Field(5e-5, gt=0, lt=1, description="peak learning rate of AdamW (after warm-up, decays linearly to 0)")
+    batch_size: int = Field(16, ge=1, description="texts per optimizer step")
+    weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay (not on biases and LayerNorm)")
     warmup_ratio: float = Field(0.1, ge=0, lt=1, description="share of steps with linear warm-up")
-    max_grad_norm: float = Field(1.0, gt=0)
+    max_grad_norm: float = Field(1.0, gt=0, description="gradient norm clipping")
     seeds: list[int] = Field(default_factory=lambda: [0], min_length=1, description="one fine-tuning run per seed; the best on validation is kept")
     patience: int = Field(2, ge=1, description="epochs without improvement before stopping early")
     metric: Literal["accuracy", "macro_f1"] = Field("accuracy", description="validation metric for early stopping and seed choice")
     class_weights: bool = Field(False, description="weight the loss by inverse class frequency")
     trust_remote_code: bool = Field(False, description="allow code shipped with a hub model to run (off unless you trust it)")
     stall_steps: int = Field(100, ge=0, description="a run whose loss has not fallen by stall_fraction after this many steps is degenerate (0 = off)")
-    stall_fraction: float = Field(0.1, ge=0, lt=1)
+    stall_fraction: float = Field(0.1, ge=0, lt=1, description="share of the starting loss it must have lost after stall_steps")
     collapse_share: float = Field(0.95, gt=0, le=1, description="validation predictions this concentrated on one class = a degenerate run")
     checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
 
@@ -81,13 +81,13 @@ class StudentConfig(_Section):
     transfer_column: Optional[str] = Field(None, description="text column of transfer_path when it is a table (default: data.text)")
     temperature: float = Field(2.0, gt=0, description="softmax temperature of the soft-label term")
     alpha: float = Field(0.5, ge=0, le=1, description="weight of the soft-label term; 1 - alpha weighs the hard-label loss")
-    epochs: int = Field(3, ge=1)
-    learning_rate: float = Field(1e-4, gt=0, lt=1)
-    batch_size: int = Field(16, ge=1)
-    weight_decay: float = Field(0.01, ge=0)
-    warmup_ratio: float = Field(0.1, ge=0, lt=1)
-    patience: int = Field(2, ge=1)
-    seed: int = 0
+    epochs: int = Field(3, ge=1, description="distillation epochs")
+    learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
+    batch_size: int = Field(16, ge=1, description="texts per optimizer step")
+    weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay")
+    warmup_ratio: float = Field(0.1, ge=0, lt=1, description="share of steps with linear warm-up")
+    patience: int = Field(2, ge=1, description="epochs without improvement before stopping early")
+    seed: int = Field(0, description="seed of the data order (and of the weights with init: config)")
     checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
 
     @model_validator(mode="after")
@@ -128,7 +128,7 @@ class ExportConfig(_Section):
     opset: int = Field(18, ge=14, le=21, description="ONNX opset")
     optimize: Literal["auto", "always", "never"] = Field(
         "auto", description="ONNX Runtime transformer fusion: `auto` keeps the fused graph only if it is faster")
-    parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed |logit difference| between ONNX fp32 and PyTorch")
+    parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed absolute logit difference between ONNX fp32 and PyTorch")
 
 
 # Operator types ONNX Runtime's static (QDQ) quantiser handles among those op_types allows: it has no
@@ -156,9 +156,9 @@ class OnnxQuantizeConfig(_Section):
 
 
 class BenchConfig(_Section):
-    batch_size: int = Field(1, ge=1)
-    sequence_length: int = Field(128, ge=1)
-    threads: int = Field(2, ge=1)
+    batch_size: int = Field(1, ge=1, description="texts per timed call")
+    sequence_length: int = Field(128, ge=1, description="tokens per text in the timed calls (real texts padded or cut to it)")
+    threads: int = Field(2, ge=1, description="intra-op threads of PyTorch and ONNX Runtime while timing")
     warmup: int = Field(5, ge=0, description="untimed runs before timing")
     warmup_s: float = Field(0.2, ge=0, description="keep warming up until this many seconds have passed, too")
     repeats: int = Field(30, ge=3, description="timed runs, at least")
@@ -205,7 +205,8 @@ class BudgetConfig(_Section):
 
 
 class Recipe(_Section):
-    name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
+    name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$",
+                      description="the run's name: letters, digits, . _ - (default run folder: runs/<name>)")
     data: DataConfig
     teacher: TeacherConfig = Field(default_factory=TeacherConfig)
     student: StudentConfig = Field(default_factory=StudentConfig)
@@ -392,5 +393,21 @@ def key_table() -> str:
     return "\n".join(rows)
 
 
+README_BEGIN, README_END = "<!-- recipe keys: begin -->", "<!-- recipe keys: end -->"
+
+
+def with_key_table(readme: str) -> str:
+    """README text with the block between the markers replaced by the current key table."""
+    head, rest = readme.split(README_BEGIN, 1)
+    _, tail = rest.split(README_END, 1)
+    return f"{head}{README_BEGIN}\n{key_table()}\n{README_END}{tail}"
+
+
 if __name__ == "__main__":
-    print(key_table())
+    import sys
+
+    if sys.argv[1:2] == ["--write-readme"]:  # python -m shrinkwrap.recipe --write-readme README.md
+        target = Path(sys.argv[2])
+        target.write_text(with_key_table(target.read_text(encoding="utf-8")), encoding="utf-8")
+    else:
+        print(key_table())

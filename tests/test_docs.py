@@ -1,0 +1,28 @@
+"""The README documents what the code does: every recipe key, every command."""
+from pathlib import Path
+
+from shrinkwrap.recipe import key_paths, with_key_table
+
+README = Path(__file__).resolve().parents[1] / "README.md"
+
+
+def test_readme_key_table_is_current():
+    text = README.read_text(encoding="utf-8")
+    assert with_key_table(text) == text, "run: python -m shrinkwrap.recipe --write-readme README.md"
+    for path, _ in key_paths():
+        assert f"`{path}`" in text
+
+
+def test_readme_describes_every_command():
+    from shrinkwrap.cli import build_parser
+
+    parser = build_parser()
+    commands = next(a for a in parser._actions if a.dest == "command").choices
+    text = README.read_text(encoding="utf-8")
+    for name in commands:
+        assert f"### `shrinkwrap {name}" in text, name
+
+
+def test_every_recipe_key_has_a_description():
+    missing = [path for path, info in key_paths() if not info.description]
+    assert not missing, missing
