@@ -22,11 +22,15 @@ def cmd_run(args) -> int:
     recipe = load_recipe(args.recipe, args.set)
     out = Path(args.out) if args.out else Path("runs") / recipe.name
     results = run_chain(recipe, out, quiet=args.json, until=args.until)
+    if not results:  # a helper process of a distributed run: the main process reports
+        return EXIT_OK
     if args.json:
         print(json.dumps(results, indent=2))
     else:
         print(step_table(results))
         print(f"\nresults: {out / 'results.json'}\nreport:  {out / 'report.md'}, {out / 'report.html'}")
+        if "artifact" in results:
+            print(f"artefact: {results['artifact']} (run it with: shrinkwrap predict {results['artifact']} TEXT)")
     if not recipe.budget.limits_set():
         return EXIT_OK
     if args.until:
@@ -206,7 +210,7 @@ def build_parser() -> argparse.ArgumentParser:
                              description="Print one JSON line {\"text\", \"label\", \"scores\"} per text. Every "
                                          "file of ARTIFACT is checked against its manifest.json first; a modified or "
                                          "incomplete artefact is refused (exit 2).")
-    predict.add_argument("artifact", help="artefact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
+    predict.add_argument("artifact", metavar="ARTIFACT", help="artefact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
     predict.add_argument("texts", nargs="*", metavar="TEXT",
                          help="texts to classify (none: one per line from --file or stdin)")
     predict.add_argument("--file", metavar="FILE", help="UTF-8 file with one text per line")
@@ -222,7 +226,7 @@ def build_parser() -> argparse.ArgumentParser:
                                          "hashes, model card README.md) from MODEL_DIR: a transformers classification "
                                          "folder (exported to ONNX, parity-checked against PyTorch, int8 by default) "
                                          "or a folder that already holds model.onnx (packaged as it is).")
-    package.add_argument("model_dir", help="transformers classification folder (safetensors) or a folder with model.onnx")
+    package.add_argument("model_dir", metavar="MODEL_DIR", help="transformers classification folder (safetensors) or a folder with model.onnx")
     package.add_argument("--out", required=True, metavar="DIR", help="artefact folder to write (replaced only if it "
                          "is an artefact or empty)")
     package.add_argument("--data", metavar="FILE", help="labelled table (.csv, .jsonl, .parquet): accuracy on all its "
@@ -238,7 +242,8 @@ def build_parser() -> argparse.ArgumentParser:
     package.add_argument("--per-channel", action="store_true", help="int8 weights with per-channel scales")
     package.add_argument("--opset", type=int, metavar="N", help="ONNX opset of the export (default: a recipe's "
                          "export.opset default)")
-    package.add_argument("--threads", type=_positive_int, default=2, help="threads for the parity check (default: 2)")
+    package.add_argument("--threads", type=_positive_int, default=2, metavar="N",
+                         help="ONNX Runtime threads for the parity check and the accuracy pass (default: 2)")
     package.add_argument("--json", action="store_true", help="print manifest.json instead of a summary line")
     package.set_defaults(func=cmd_package)
     return p

@@ -51,6 +51,8 @@ def _read_table(path: Path, where: str):
     import pandas as pd
 
     suffix = path.suffix.lower()
+    if suffix in (".csv", ".jsonl", ".ndjson", ".json"):
+        _check_text_file(path, where, lines=suffix in (".jsonl", ".ndjson"))
     try:
         if suffix == ".csv":
             return pd.read_csv(path, encoding="utf-8", keep_default_na=False, na_values=[""], dtype=str)
@@ -63,10 +65,37 @@ def _read_table(path: Path, where: str):
     except UnicodeDecodeError as e:
         raise UserError(f"{where}: not UTF-8 text — {_byte_to_line(path, e.start)}") from None
     except ValueError as e:
-        raise UserError(f"{where}: cannot parse — {str(e).splitlines()[0]}") from None
+        raise UserError(f"{where}: cannot parse — {str(e).splitlines()[0] if str(e) else type(e).__name__}") from None
     except Exception as e:  # pandas / pyarrow raise many kinds for a broken file
         raise UserError(f"{where}: cannot parse — {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}") from None
     raise UserError(f"{where}: unsupported file type {suffix!r} — use .csv, .jsonl, .parquet or a datasets folder")
+
+
+def _check_text_file(path: Path, where: str, lines: bool) -> None:
+    """Catches what the table readers report badly: an empty file, a non-UTF-8 byte (pandas reads in
+    chunks, so its byte offsets are not the file's), and a JSON Lines line that does not parse."""
+    import json
+
+    try:
+        f = open(path, "rb")
+    except OSError as e:
+        raise UserError(f"{where}: cannot read — {e.strerror or e}") from None
+    with f:
+        seen_any = False
+        for number, raw in enumerate(f, 1):
+            try:
+                line = raw.decode("utf-8")
+            except UnicodeDecodeError as e:
+                raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line "
+                                f"(0x{raw[e.start]:02x}); save the file as UTF-8") from None
+            seen_any = seen_any or bool(line.strip())
+            if lines and line.strip():
+                try:
+                    json.loads(line)
+                except ValueError as e:
+                    raise UserError(f"{where}: line {number} is not a JSON object — {e.msg} at column {e.colno}") from None
+    if not seen_any:
+        raise UserError(f"{where}: the file is empty")
 
 
 def _byte_to_line(path: Path, offset: int) -> str:
@@ -84,7 +113,8 @@ def _read_splits(path: Path, where: str) -> dict:
         try:
             loaded = datasets.load_from_disk(str(path))
         except Exception as e:
-            raise UserError(f"{where}: not a datasets folder saved with save_to_disk — {e}") from None
+            raise UserError(f"{where}: not a datasets folder saved with save_to_disk — "
+                            f"{str(e).splitlines()[0] if str(e) else type(e).__name__}") from None
         if isinstance(loaded, datasets.DatasetDict):
             frames = {k: v.to_pandas() for k, v in loaded.items()}
             if "train" not in frames:
@@ -96,6 +126,8 @@ def _read_splits(path: Path, where: str) -> dict:
         return {"all": loaded.to_pandas()}
     if not path.exists():
         raise UserError(f"{where}: no such file")
+    if not path.is_file():
+        raise UserError(f"{where}: not a regular file — give a .csv, .jsonl or .parquet file or a datasets folder")
     return {"all": _read_table(path, where)}
 
 
@@ -109,19 +141,21 @@ def _clean(df, cfg: DataConfig, where: str, notes: list[str]):
     missing = labels.isna() | labels.astype(str).str.strip().eq("")
     if missing.any():
         rows = np.flatnonzero(missing.to_numpy())
-        raise UserError(f"{where}: {len(rows)} rows have no label in column {cfg.label!r} (first at data row {rows[0] + 1})")
+        raise UserError(f"{where}: {_count(rows)} no label (empty, null or NaN) in column {cfg.label!r} "
+                        f"(data rows {_rows(rows)}; row 1 is the first after the header)")
     text_cols = [cfg.text] + ([cfg.text_pair] if cfg.text_pair else [])
-    for col in text_cols:
+    empty_any = np.zeros(len(df), dtype=bool)
+    for col in text_cols:  # positions in the file as read, before anything is dropped
         values = df[col]
-        empty = values.isna() | values.astype(str).str.strip().eq("")
+        empty = (values.isna() | values.astype(str).str.strip().eq("")).to_numpy()
         if empty.any():
-            rows = np.flatnonzero(empty.to_numpy())
-            shown = ", ".join(str(r + 1) for r in rows[:5]) + (" ..." if len(rows) > 5 else "")
+            rows = np.flatnonzero(empty)
             if not cfg.drop_empty:
-                raise UserError(f"{where}: {len(rows)} rows have an empty {col!r} (data rows {shown}) — "
-                                f"fix them or set data.drop_empty: true")
-            notes.append(f"dropped {len(rows)} rows with an empty {col!r} (data rows {shown})")
-            df = df[~empty.to_numpy()]
+                raise UserError(f"{where}: {_count(rows)} an empty or whitespace-only {col!r} "
+                                f"(data rows {_rows(rows)}) — fix them or set data.drop_empty: true")
+            notes.append(f"dropped {len(rows)} rows with an empty {col!r} (data rows {_rows(rows)})")
+        empty_any |= empty
+    df = df[~empty_any]
     if len(df) == 0:
         raise UserError(f"{where}: no rows left after dropping empty texts")
     df = df.copy()
@@ -129,10 +163,20 @@ def _clean(df, cfg: DataConfig, where: str, notes: list[str]):
         df[col] = df[col].astype(str)
         long = df[col].str.len() > MAX_CHARS
         if long.any():
-            notes.append(f"{int(long.sum())} texts in {col!r} longer than {MAX_CHARS:,} characters were cut to that length")
+            note = f"{int(long.sum())} texts in {col!r} longer than {MAX_CHARS:,} characters were cut to that length"
+            notes.append(note)
+            warnings.warn(f"{where}: {note}")
             df.loc[long, col] = df.loc[long, col].str.slice(0, MAX_CHARS)
     df[cfg.label] = df[cfg.label].astype(str).str.strip()
     return df
+
+
+def _count(rows: np.ndarray) -> str:
+    return "1 row has" if len(rows) == 1 else f"{len(rows)} rows have"
+
+
+def _rows(rows: np.ndarray) -> str:
+    return ", ".join(str(r + 1) for r in rows[:5]) + (f" and {len(rows) - 5} more" if len(rows) > 5 else "")
 
 
 def _to_split(df, cfg: DataConfig, index: dict[str, int]) -> Split:
@@ -183,7 +227,9 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
     for name in ("validation", "test"):
         unseen = sorted(set(frames[name][cfg.label]) - train_labels)
         if unseen:
-            raise UserError(f"{where}: label {unseen[0]!r} appears in the {name} split but never in train")
+            count = int(frames[name][cfg.label].isin(unseen).sum())
+            raise UserError(f"{where}: label {unseen[0]!r} appears in the {name} split but never in train "
+                            f"({count} {name} row{'s' if count != 1 else ''} with labels unseen in train: {', '.join(map(repr, unseen[:5]))})")
     label_names = sorted(train_labels)
     index = {name: i for i, name in enumerate(label_names)}
 
@@ -193,7 +239,7 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
     if dup:
         note = f"{dup} test rows also appear in train (same text): test accuracy is optimistic"
         notes.append(note)
-        warnings.warn(note)
+        warnings.warn(f"{where}: {note}")
 
     return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
 

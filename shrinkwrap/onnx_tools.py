@@ -6,7 +6,9 @@ from pathlib import Path
 import numpy as np
 
 
-def session(path: str | Path, threads: int = 2):
+def session(path: str | Path | bytes, threads: int = 2, spin: bool = True):
+    """A CPU session with `threads` intra-op threads; `path` may also be a serialised model.
+    spin=False stops its idle threads from busy-waiting (they would take CPU from other work)."""
     import onnxruntime as ort
 
     opts = ort.SessionOptions()
@@ -14,7 +16,10 @@ def session(path: str | Path, threads: int = 2):
     opts.inter_op_num_threads = 1
     opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     opts.log_severity_level = 3
-    return ort.InferenceSession(str(path), sess_options=opts, providers=["CPUExecutionProvider"])
+    if not spin:
+        opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    model = path if isinstance(path, bytes) else str(path)
+    return ort.InferenceSession(model, sess_options=opts, providers=["CPUExecutionProvider"])
 
 
 def feed(sess, batch: dict[str, np.ndarray]) -> dict[str, np.ndarray]:

@@ -120,6 +120,39 @@ class StudentConfig(_Section):
         return v
 
 
+class PruneConfig(_Section):
+    """Step student-pruned (off by default): structured pruning of the student, then a short distillation."""
+    enabled: bool = Field(False, description="run step student-pruned: remove the least important attention heads and "
+                          "feed-forward neurons of every student layer, then distil briefly to recover")
+    heads_removed: int = Field(0, ge=0, description="attention heads removed from every layer, least important first "
+                               "(importance: mean size of the loss's gradient with respect to a head mask, Michel, Levy & Neubig 2019)")
+    neurons_removed_share: float = Field(0.0, ge=0, lt=1, description="share of the feed-forward neurons removed from "
+                                         "every layer, least important first (importance: gradient × activation)")
+    importance_texts: int = Field(512, ge=1, description="training texts the importance is measured on (the first ones)")
+    epochs: int = Field(2, ge=0, description="distillation epochs after pruning, on the teacher's cached outputs (0 = none)")
+    learning_rate: float = Field(5e-5, gt=0, lt=1, description="learning rate of that distillation (the rest as in student)")
+
+    @model_validator(mode="after")
+    def _something_to_remove(self) -> "PruneConfig":
+        if self.enabled and self.heads_removed == 0 and self.neurons_removed_share == 0:
+            raise ValueError("enabled is true but nothing is removed — set heads_removed or neurons_removed_share")
+        return self
+
+
+class TrimVocabConfig(_Section):
+    """Step student-trimmed (off by default): the vocabulary cut to the pieces the training texts use."""
+    enabled: bool = Field(False, description="run step student-trimmed: keep only the vocabulary pieces (and special "
+                          "tokens) that the training and transfer texts are split into, with their embedding rows; "
+                          "the tokenizer becomes a smaller one that splits those texts exactly as before")
+
+
+class TrainConfig(_Section):
+    precision: Literal["fp32", "bf16", "fp16"] = Field(
+        "fp32", description="training precision on a GPU (bf16/fp16 mixed precision); a CPU always trains in fp32, with a notice")
+    gradient_accumulation_steps: int = Field(
+        1, ge=1, description="batches whose gradients add up before one optimizer step (effective batch = batch_size × this × processes)")
+
+
 class QuantizeConfig(_Section):
     enabled: bool = Field(True, description="run PyTorch dynamic int8 on the student")
 
@@ -210,6 +243,9 @@ class Recipe(_Section):
     data: DataConfig
     teacher: TeacherConfig = Field(default_factory=TeacherConfig)
     student: StudentConfig = Field(default_factory=StudentConfig)
+    train: TrainConfig = Field(default_factory=TrainConfig)
+    prune: PruneConfig = Field(default_factory=PruneConfig)
+    trim_vocab: TrimVocabConfig = Field(default_factory=TrimVocabConfig)
     quantize: QuantizeConfig = Field(default_factory=QuantizeConfig)
     export: ExportConfig = Field(default_factory=ExportConfig)
     onnx_quantize: OnnxQuantizeConfig = Field(default_factory=OnnxQuantizeConfig)
@@ -273,7 +309,8 @@ def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
         model: Any = root or Recipe
         for part in loc[:-1]:
             model = model.model_fields[part].annotation if isinstance(part, str) else model
-        allowed = ", ".join(model.model_fields) if hasattr(model, "model_fields") else ""
+        allowed = (", ".join(k for k, f in model.model_fields.items() if not f.exclude)
+                   if hasattr(model, "model_fields") else "")
         return f"{where}: unknown key {place!s}" + (f" — allowed keys in {parent or 'the top level'}: {allowed}" if allowed else "")
     if kind == "missing":
         return f"{where}: {place} is missing — it is required"

@@ -104,12 +104,21 @@ def setup_lines(results: dict) -> list[str]:
     ]
 
 
+def int8_agreement_lines(results: dict) -> list[str]:
+    """One line per int8 ONNX step: how often it predicts what the fp32 graph it came from predicts."""
+    return [f"- `{s['name']}` predicts the same label as the fp32 ONNX graph it was quantised from on "
+            f"{s['agreement_with_fp32'] * 100:.1f} % of the test texts."
+            for s in results["steps"] if "agreement_with_fp32" in s]
+
+
 def markdown_report(results: dict) -> str:
+    agreement = int8_agreement_lines(results)
     lines = [
         f"# shrinkwrap report — {results['recipe']['name']}",
         "",
         step_table(results),
         "",
+        *(agreement + [""] if agreement else []),
         "## Per-class recall (test split)",
         "",
         per_class_table(results),

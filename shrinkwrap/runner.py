@@ -16,7 +16,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.checkpoint import close_scratch, is_disk_full, open_scratch, write_error
+from shrinkwrap.checkpoint import close_scratch, is_disk_full, open_scratch, write_atomic, write_error
+from shrinkwrap import distributed
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json, tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
 from shrinkwrap.recipe import Recipe
@@ -40,17 +41,30 @@ class Step:
     enabled: Callable[[Recipe], bool] = lambda r: True
     # Inputs beyond the recipe sections and the upstream output that the step's result depends on.
     extra: Callable[["Context"], object] = lambda ctx: None
+    # A step that writes a tokenizer of its own (derived from its source's); every other step's output
+    # carries exactly the tokenizer of the step it read.
+    changes_tokenizer: bool = False
+    # A step that trains: under several processes (accelerate launch, torchrun) all take part in it;
+    # every other step runs in the main process alone.
+    trains: bool = False
 
 
 def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     """The steps in order. Each reads the output of the step named in `after`: the PyTorch steps that
     follow the student read the last PyTorch student the recipe makes."""
-    from shrinkwrap.steps import distill, export, finetune, quantize, quantize_onnx
+    from shrinkwrap.steps import distill, export, finetune, prune, quantize, quantize_onnx, trim_vocab
 
-    last = "student"
+    pruned = recipe is not None and recipe.prune.enabled
+    trimmed = recipe is not None and recipe.trim_vocab.enabled
+    last = "student-trimmed" if trimmed else "student-pruned" if pruned else "student"
     return [
-        Step("teacher", "pytorch", ("data", "teacher"), None, finetune.run),
-        Step("student", "pytorch", ("student",), "teacher", distill.run, extra=lambda ctx: ctx.transfer_fingerprint),
+        Step("teacher", "pytorch", ("data", "teacher", "train"), None, finetune.run, trains=True),
+        Step("student", "pytorch", ("student", "train"), "teacher", distill.run, extra=lambda ctx: ctx.transfer_fingerprint,
+             trains=True),
+        Step("student-pruned", "pytorch", ("prune", "train"), "student", prune.run, lambda r: r.prune.enabled,
+             trains=True),
+        Step("student-trimmed", "pytorch", ("trim_vocab",), "student-pruned" if pruned else "student", trim_vocab.run,
+             lambda r: r.trim_vocab.enabled, changes_tokenizer=True),
         Step("student-int8", "pytorch", ("quantize",), last, quantize.run, lambda r: r.quantize.enabled),
         Step("student-onnx", "onnx", ("export",), last, export.run),
         # Before the dynamic int8 step, so that the final step (budgets, the artefact) stays the dynamic one.
@@ -76,33 +90,48 @@ class Context:
     quiet: bool = False
     transfer_fingerprint: Optional[str] = None
     teacher_hidden_size: int = 0
+    transfer_texts: list[str] = field(default_factory=list)
+    tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
+    _tokens: dict[str, "Tokens"] = field(default_factory=dict)
 
     def log(self, message: str) -> None:
         if not self.quiet:
             print(message, file=sys.stderr, flush=True)
 
+    def tokens_of(self, folder: Path) -> "Tokens":
+        """The tokenizer a step's output carries and the splits encoded with it: the teacher's own
+        encodings, unless a step on the way changed the tokenizer (then encoded once, and kept)."""
+        fp = tokenizer_fingerprint_of_file(Path(folder) / "tokenizer.json")
+        if fp == self.tokenizer_fp:
+            return Tokens(self.tokenizer, fp, self.encoded, self.pad_id)
+        if fp not in self._tokens:
+            from shrinkwrap.data import Split, encode
+            from shrinkwrap.models import load_tokenizer
+
+            tok = load_tokenizer(str(folder), str(folder))
+            n = self.recipe.teacher.max_length
+            encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
+            if self.transfer_texts:
+                encoded["transfer"] = encode(tok, Split(texts=self.transfer_texts, labels=None), n)
+            self._tokens[fp] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
+        return self._tokens[fp]
+
+
+@dataclass
+class Tokens:
+    """A tokenizer, its fingerprint, the splits encoded with it (as Context.encoded) and its pad id."""
+    tokenizer: object
+    fingerprint: str
+    encoded: dict
+    pad_id: int
+
 
 def write_json_atomic(path: Path, obj) -> None:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as f:
-            json.dump(obj, f, indent=2)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as e:
-        tmp.unlink(missing_ok=True)
-        raise write_error(path, e) from None
+    write_atomic(path, json.dumps(obj, indent=2).encode("utf-8"))
 
 
 def write_text_atomic(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except OSError as e:
-        tmp.unlink(missing_ok=True)
-        raise write_error(path, e) from None
+    write_atomic(path, text.encode("utf-8"))
 
 
 def _check_out_dir(out: Path) -> None:
@@ -141,13 +170,20 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     max_pos = getattr(config, "max_position_embeddings", None)
     if max_pos and recipe.teacher.max_length > max_pos:
         raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
+    from shrinkwrap.pruning import check_prune
+
+    check_prune(recipe, config, where)
     tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
+    if recipe.trim_vocab.enabled:
+        from shrinkwrap.vocab import check_trim
+
+        check_trim(tokenizer, where)
     data_path = recipe.resolve(recipe.data.path)
     if not data_path.exists():
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
     data = load_dataset(recipe.data, data_path, str(data_path))
     encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
-    transfer_fp = None
+    transfer_fp, transfer_texts = None, []
     st = recipe.student
     if st.transfer_path:
         from shrinkwrap.data import Split, load_transfer
@@ -157,7 +193,7 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
         if recipe.data.text_pair:
             raise UserError(f"{where}: student.transfer_path goes with single texts, but data.text_pair is set")
         encoded["transfer"] = encode(tokenizer, Split(texts=texts, labels=None), recipe.teacher.max_length)
-        transfer_fp = sha256_json(texts)
+        transfer_fp, transfer_texts = sha256_json(texts), texts
     if st.init == "pretrained":
         student_tok = load_tokenizer(str(recipe.resolve(st.base)), where)
         if tokenizer_fingerprint_of(student_tok) != tokenizer_fingerprint_of(tokenizer):
@@ -169,8 +205,9 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
                         f"({config.num_attention_heads}), not student.num_attention_heads = {st.num_attention_heads}")
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
-                   encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet,
-                   transfer_fingerprint=transfer_fp, teacher_hidden_size=config.hidden_size)
+                   encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
+                   transfer_fingerprint=transfer_fp, teacher_hidden_size=config.hidden_size,
+                   transfer_texts=transfer_texts)
 
 
 def step_fingerprint(ctx: Context, step: Step) -> str:
@@ -188,16 +225,38 @@ def _read_json(path: Path) -> Optional[dict]:
         return None
 
 
-def check_output_tokenizer(ctx: Context, name: str, folder: Path) -> str:
-    """A step's output must carry the teacher's tokenizer: any other one would turn texts into other ids."""
+def check_output_tokenizer(ctx: Context, step: Step, folder: Path, recorded: Optional[dict] = None) -> str:
+    """A step's output must carry the tokenizer of the step it read (the teacher's base tokenizer for the
+    first step): any other one would turn texts into other ids. A step that changes the tokenizer may
+    write a new one; reused, its output must still hold the tokenizer its step.json `recorded`."""
     path = folder / "tokenizer.json"
     if not path.exists():
-        raise UserError(f"{path}: missing — every step's output carries the teacher's tokenizer")
+        raise UserError(f"{path}: missing — every step's output carries its tokenizer")
     got = tokenizer_fingerprint_of_file(path)
-    if got != ctx.tokenizer_fp:
-        raise UserError(f"{name}: the tokenizer in {folder} (fingerprint {got[:12]}) differs from the teacher's "
-                        f"tokenizer (fingerprint {ctx.tokenizer_fp[:12]}) — remove {folder} to redo the step")
+    source = ctx.tokenizer_fps[step.after] if step.after else ctx.tokenizer_fp
+    if step.changes_tokenizer:
+        want = recorded.get("tokenizer_fingerprint") if recorded else got
+        derived = recorded.get("tokenizer_derived_from") if recorded else source
+        if got != want or derived != source:
+            raise UserError(f"{step.name}: the tokenizer in {folder} (fingerprint {got[:12]}) is not the one the step "
+                            f"wrote (fingerprint {str(want)[:12]}, derived from {str(derived)[:12]}; its source's is "
+                            f"{source[:12]}) — remove {folder} to redo the step")
+    elif got != source:
+        raise UserError(f"{step.name}: the tokenizer in {folder} (fingerprint {got[:12]}) differs from the "
+                        f"{step.after or 'teacher'}'s tokenizer (fingerprint {source[:12]}) — remove {folder} to "
+                        f"redo the step")
+    ctx.tokenizer_fps[step.name] = got
     return got
+
+
+def swap_in(partial: Path, final: Path) -> None:
+    """Renames a finished scratch folder into place: the old one (if any) is moved aside first and removed last."""
+    old = final.parent / f".old-{final.name}"
+    shutil.rmtree(old, ignore_errors=True)
+    if final.exists():
+        os.replace(final, old)
+    os.replace(partial, final)
+    shutil.rmtree(old, ignore_errors=True)
 
 
 def run_step(ctx: Context, step: Step) -> dict:
@@ -207,33 +266,38 @@ def run_step(ctx: Context, step: Step) -> dict:
     final = ctx.run_dir / step.name
     done = _read_json(final / STEP_FILE)
     if done and done.get("fingerprint") == fp:
-        check_output_tokenizer(ctx, step.name, final)
+        check_output_tokenizer(ctx, step, final, done)
         ctx.log(f"[{step.name}] unchanged — reusing {final}")
         ctx.outputs[step.name] = final
         return done
     partial = ctx.run_dir / f".partial-{step.name}"
-    resumed = open_scratch(partial, fp)  # keeps a killed run's checkpoints only when made for this fingerprint
-    ctx.log(f"[{step.name}] " + ("resuming from the checkpoint a killed run left" if resumed else "running"))
+    main = distributed.is_main()
+    if main:
+        resumed = open_scratch(partial, fp)  # keeps a killed run's checkpoints only when made for this fingerprint
+        ctx.log(f"[{step.name}] " + ("resuming from the checkpoint a killed run left" if resumed else "running"))
+    distributed.barrier()  # the scratch folder (and any checkpoint in it) is ready before anyone trains
     started = time.perf_counter()
-    try:
-        info = step.run(ctx, ctx.outputs[step.after] if step.after else None, partial)
-    except Exception as e:
-        if is_disk_full(e):
-            raise write_error(getattr(e, "filename", None) or partial, e) from None
-        raise
+    if main or step.trains:
+        try:
+            info = step.run(ctx, ctx.outputs[step.after] if step.after else None, partial)
+        except Exception as e:
+            if is_disk_full(e):
+                raise write_error(getattr(e, "filename", None) or partial, e) from None
+            raise
+    if not main:  # a helper process: the main one finishes the step and swaps it in
+        distributed.barrier()
+        ctx.outputs[step.name] = final
+        return {}
     seconds = time.perf_counter() - started
     close_scratch(partial)
-    tok_fp = check_output_tokenizer(ctx, step.name, partial)
+    tok_fp = check_output_tokenizer(ctx, step, partial)
     record = {"name": step.name, "format": step.format, "fingerprint": fp, "tokenizer_fingerprint": tok_fp,
               "after": step.after, "seconds": round(seconds, 2), "info": info}
+    if step.changes_tokenizer:
+        record["tokenizer_derived_from"] = ctx.tokenizer_fps[step.after] if step.after else ctx.tokenizer_fp
     write_json_atomic(partial / STEP_FILE, record)
-    # Swap the finished folder in: the old one (if any) is moved aside first and removed last.
-    old = ctx.run_dir / f".old-{step.name}"
-    shutil.rmtree(old, ignore_errors=True)
-    if final.exists():
-        os.replace(final, old)
-    os.replace(partial, final)
-    shutil.rmtree(old, ignore_errors=True)
+    swap_in(partial, final)
+    distributed.barrier()
     ctx.outputs[step.name] = final
     ctx.log(f"[{step.name}] done in {seconds:.1f} s")
     return record
@@ -249,10 +313,11 @@ def bench_step(ctx: Context, step: Step) -> dict:
     if cached and cached.get("key") == key:
         return cached["result"]
     b = ctx.recipe.bench
-    timing = encode(ctx.tokenizer, ctx.data.test, b.sequence_length)
+    tokens = ctx.tokens_of(folder)  # a step after one that changed the tokenizer reads texts with its own
+    timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length)
     ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
-    result = measure(folder, ctx.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
-                     ctx.pad_id, b)
+    result = measure(folder, tokens.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
+                     tokens.pad_id, b)
     write_json_atomic(folder / BENCH_FILE, {"key": key, "result": result})
     return result
 
@@ -307,12 +372,18 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         if not step.enabled(recipe):
             continue
         record = run_step(ctx, step)
+        if not distributed.is_main():  # benchmarks, results and reports are the main process's
+            if step.name == until:
+                break
+            continue
         entry = step_entry(ctx, step, record, bench_step(ctx, step), teacher)
         teacher = teacher or entry
         results["steps"].append(entry)
         write_json_atomic(out / RESULTS_FILE, results)
         if step.name == until:
             break
+    if not distributed.is_main():
+        return {}
     if results["steps"][-1]["format"] == "onnx":
         from shrinkwrap.package import from_run
 

@@ -4,6 +4,7 @@ detection of degenerate runs (non-finite loss, stalled loss, predictions collaps
 """
 from __future__ import annotations
 
+import contextlib
 import copy
 import math
 import random
@@ -16,6 +17,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
+from shrinkwrap import distributed
 from shrinkwrap.bench.accuracy import classification_metrics
 from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
 from shrinkwrap.data import all_logits, collate
@@ -36,6 +38,8 @@ class TrainSettings:
     stall_steps: int = 0            # 0 = off; after this many steps the loss must have fallen...
     stall_fraction: float = 0.1     # ...by at least this share of its starting value
     collapse_share: float = 0.95    # validation predictions this concentrated on one class = collapsed (1 = off)
+    gradient_accumulation_steps: int = 1   # batches whose gradients add up before one optimizer step
+    precision: str = "fp32"                # bf16 / fp16 on a GPU; fp32 on a CPU whatever is asked
 
 
 @dataclass
@@ -68,8 +72,12 @@ def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:
 def predict_logits(model: nn.Module, examples: list[dict], pad_id: int, batch_size: int = 64) -> np.ndarray:
     """Logits for every example, batched by similar length so that padding costs little."""
     model.eval()
-    return all_logits(lambda b: model(**to_torch(b)).logits.float().numpy(), examples, pad_id,
-                      model.config.num_labels, batch_size)
+    device = next(model.parameters()).device
+
+    def logits(b):
+        return model(**{k: v.to(device) for k, v in to_torch(b).items()}).logits.float().cpu().numpy()
+
+    return all_logits(logits, examples, pad_id, model.config.num_labels, batch_size)
 
 
 def _optimizer(model: nn.Module, s: TrainSettings) -> torch.optim.Optimizer:
@@ -112,8 +120,15 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
     result = FitResult()
     started = time.perf_counter()
     steps_per_epoch = math.ceil(len(train) / s.batch_size)
-    total = steps_per_epoch * s.epochs
+    accumulate = s.gradient_accumulation_steps
+    total = math.ceil(steps_per_epoch / accumulate) * s.epochs   # optimizer steps, for the schedule
+    log = checkpoint.log if checkpoint else (lambda message: None)
+    accelerator = distributed.accelerator(s.precision, log)
+    rank, world = distributed.rank(), distributed.world_size()
     optimizer = _optimizer(model, s)
+    # Accelerate wraps the model for data parallelism when several processes were launched (the
+    # wrapper averages gradients across them) and moves it to the GPU when there is one.
+    wrapped, optimizer = accelerator.prepare(model, optimizer)
     schedule = _linear_schedule(optimizer, int(s.warmup_ratio * total), total)
     generator = torch.Generator().manual_seed(s.seed)
     n_classes = model.config.num_labels
@@ -137,7 +152,8 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
         checkpoint.log(f"{desc}: resuming from a checkpoint at step {result.steps} (epoch {first_epoch}, "
                        f"batch {first_batch})")
 
-    bar = tqdm(total=total, initial=result.steps, desc=desc, unit="step", leave=False, dynamic_ncols=True)
+    bar = tqdm(total=steps_per_epoch * s.epochs, initial=result.steps, desc=desc, unit="batch", leave=False,
+               dynamic_ncols=True, disable=not distributed.is_main())
     try:
         for epoch in range(first_epoch, s.epochs + 1):
             model.train()
@@ -147,21 +163,28 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
                 order = torch.randperm(len(train), generator=generator).numpy()
             skip, first_batch = first_batch, 0
             for start in range(skip * s.batch_size, len(order), s.batch_size):
-                idx = order[start:start + s.batch_size]
+                # Every process draws the same order; each takes its share of the batch, so N
+                # processes with batch size B train like one process with B.
+                idx = order[start:start + s.batch_size][rank::world]
                 batch = to_torch(collate([train[i]["features"] for i in idx], pad_id))
-                labels = torch.as_tensor([train[i]["label"] for i in idx])
-                loss = loss_fn(model, batch, labels, torch.as_tensor(idx))
-                value = loss.item()
-                result.steps += 1
-                if not math.isfinite(value):
-                    result.status, result.reason = "degenerate", f"loss is {value} at step {result.steps}"
-                    return result
-                losses.append(value)
-                optimizer.zero_grad(set_to_none=True)
-                loss.backward()
-                torch.nn.utils.clip_grad_norm_(model.parameters(), s.max_grad_norm)
-                optimizer.step()
-                schedule.step()
+                batch = {k: v.to(accelerator.device) for k, v in batch.items()}
+                labels = torch.as_tensor([train[i]["label"] for i in idx], device=accelerator.device)
+                position = start // s.batch_size
+                step_now = (position + 1) % accumulate == 0 or start + s.batch_size >= len(order)
+                with accelerator.autocast(), (contextlib.nullcontext() if step_now else accelerator.no_sync(wrapped)):
+                    loss = loss_fn(wrapped, batch, labels, torch.as_tensor(idx))
+                    value = loss.item()
+                    result.steps += 1
+                    if not math.isfinite(value):
+                        result.status, result.reason = "degenerate", f"loss is {value} at step {result.steps}"
+                        return result
+                    losses.append(value)
+                    accelerator.backward(loss / accumulate)
+                if step_now:
+                    accelerator.clip_grad_norm_(wrapped.parameters(), s.max_grad_norm)
+                    optimizer.step()
+                    schedule.step()
+                    optimizer.zero_grad(set_to_none=True)
                 bar.update(1)
                 bar.set_postfix(epoch=epoch, loss=f"{value:.3f}")
                 if s.stall_steps and result.steps == s.stall_steps:
@@ -172,7 +195,7 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
                         result.reason = (f"training loss stalled: {first:.3f} -> {last:.3f} after {s.stall_steps} steps "
                                          f"(needs a fall of {s.stall_fraction:.0%})")
                         return result
-                if checkpoint and checkpoint.due(result.steps):
+                if checkpoint and checkpoint.due(result.steps) and step_now and distributed.is_main():
                     checkpoint.save(snapshot(epoch, start // s.batch_size + 1, order))
 
             logits = predict_logits(model, validation, pad_id)
@@ -194,7 +217,7 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
                 since_best += 1
                 if since_best >= s.patience:
                     break
-            if checkpoint and checkpoint.enabled:
+            if checkpoint and checkpoint.enabled and distributed.is_main():
                 checkpoint.save(snapshot(epoch + 1, 0, None))
     finally:
         bar.close()

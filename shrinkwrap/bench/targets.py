@@ -1,16 +1,18 @@
 """Anything the benchmark can measure, behind one interface: `logits(batch) -> array`.
 
 A target is a transformers classification folder (fp32 safetensors or a shrinkwrap int8 folder),
-a folder holding model.onnx, or a bare .onnx file.
+a folder holding model.onnx, a bare .onnx file, or an artefact (shrinkwrap.artifact; verified first).
 """
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Optional
 
 import numpy as np
 
+from shrinkwrap.artifact import is_artifact
 from shrinkwrap.errors import UserError
 
 ONNX_FILE = "model.onnx"
@@ -25,19 +27,92 @@ class Target:
     input_names: list[str]
     tokenizer_dir: Optional[Path] = None
     extra: dict = field(default_factory=dict)
+    label_names: Optional[list[str]] = None     # class names by id; None for an encoder without a head
+    max_length: Optional[int] = None            # longest input in tokens the model takes, when known
 
     @property
     def size_bytes(self) -> int:
         return sum(f.stat().st_size for f in self.weight_files)
 
+    def _read_graph(self) -> None:
+        # Only when asked: parsing a large graph again would add to every load.
+        if self.format == "onnx" and "vocab_size" not in self.extra:
+            self.extra["vocab_size"], self.extra["graph_positions"] = onnx_embedding_rows(self.path)
 
-def _pytorch(folder: Path, threads: int) -> Target:
+    def vocab_size(self) -> Optional[int]:
+        """Token ids must stay below this (synthetic inputs need it); None when it cannot be told."""
+        self._read_graph()
+        return self.extra.get("vocab_size")
+
+    def token_limit(self) -> Optional[int]:
+        """The longest input in tokens: `max_length`, else the graph's position table; None if unknown."""
+        if self.max_length is None:
+            self._read_graph()
+            return self.extra.get("graph_positions")
+        return self.max_length
+
+    def release(self) -> None:
+        """Drops the model or session, so its memory and its thread pool are gone before the next
+        measurement (onnxruntime's threads keep spinning after a run and would steal CPU from it)."""
+        self.logits = None
+        self.extra.clear()
+
+
+def _config_labels(config: dict) -> Optional[list[str]]:
+    id2label = config.get("id2label")
+    if not id2label:
+        return None
+    return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
+
+
+# Ops that pass token ids through unchanged on their way to the embedding lookup.
+_PASS_THROUGH = {"Cast", "Identity", "Unsqueeze", "Reshape", "Flatten", "Squeeze"}
+
+
+def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
+    """(vocabulary size, position count) read from the graph: the rows of the embedding tables that
+    input_ids (and, in a fused graph, positions) index. None where the graph does not tell."""
+    import onnx
+
+    graph = onnx.load(str(path), load_external_data=False).graph
+    dims = {i.name: list(i.dims) for i in graph.initializer}
+    made_by = {o: n for n in graph.node for o in n.output}
+
+    def table_rows(name: str) -> Optional[int]:
+        # A quantised table reaches the lookup through DequantizeLinear.
+        node = made_by.get(name)
+        if name not in dims and node is not None and node.op_type == "DequantizeLinear":
+            name = node.input[0]
+        return dims[name][0] if dims.get(name) else None
+
+    names = {i.name for i in graph.input if "input_ids" in i.name}
+    for _ in range(8):  # follow the ids through a few pass-through ops at most
+        nxt = set()
+        for node in graph.node:
+            used = [k for k, x in enumerate(node.input) if x in names]
+            if not used:
+                continue
+            if node.op_type == "Gather" and used == [1]:
+                return table_rows(node.input[0]), None
+            if node.op_type.endswith("EmbedLayerNormalization") and used[0] == 0:
+                return table_rows(node.input[2]), table_rows(node.input[3])
+            if node.op_type in _PASS_THROUGH:
+                nxt.update(node.output)
+        if not nxt:
+            break
+        names = nxt
+    return None, None
+
+
+def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     import torch
+    import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
 
     from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8
     from shrinkwrap.train import to_torch
 
     torch.set_num_threads(threads)
+    ready()
     if (folder / INT8_WEIGHTS).exists():
         model, files = load_int8(folder), [folder / INT8_WEIGHTS]
     else:
@@ -48,26 +123,62 @@ def _pytorch(folder: Path, threads: int) -> Target:
         return model(**to_torch(batch)).logits.float().numpy()
 
     names = ["input_ids", "attention_mask"] + (["token_type_ids"] if getattr(model.config, "type_vocab_size", 0) else [])
-    return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder)
+    return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder,
+                  extra={"vocab_size": getattr(model.config, "vocab_size", None)},
+                  label_names=_config_labels(model.config.to_dict()),
+                  max_length=getattr(model.config, "max_position_embeddings", None))
 
 
-def _onnx(path: Path, threads: int) -> Target:
+def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
+    import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
+    import onnxruntime  # noqa: F401
+
     from shrinkwrap.onnx_tools import run_logits, session
 
+    ready()
     sess = session(path, threads)
     files = [path] + [p for p in path.parent.glob(path.name + "*.data")]
     tok = path.parent if (path.parent / "tokenizer.json").exists() else None
+    # A graph written by the chain has its model's config.json beside it: label names and positions.
+    try:
+        config = json.loads((path.parent / "config.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        config = {}
+    outputs = sess.get_outputs()
+    has_head = len(outputs[0].shape) == 2   # [batch, classes]; an encoder gives [batch, tokens, hidden]
     return Target("onnx", path, files, lambda b: run_logits(sess, b), [i.name for i in sess.get_inputs()],
-                  tokenizer_dir=tok, extra={"session": sess})
+                  tokenizer_dir=tok, extra={"session": sess},
+                  label_names=_config_labels(config) if has_head else None,
+                  max_length=config.get("max_position_embeddings"))
 
 
-def load_target(path: str | Path, threads: int = 2) -> Target:
+def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
+    """An artefact: its hashes are checked before anything is loaded; labels and max length are its own."""
+    from shrinkwrap.artifact import MODEL_FILE, read_labels, verify
+
+    manifest = verify(folder)
+    target = _onnx(folder / MODEL_FILE, threads, ready)
+    target.label_names = read_labels(folder)
+    target.max_length = manifest["tokenizer"]["max_length"]
+    target.extra["manifest"] = manifest
+    return target
+
+
+def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = lambda: None) -> Target:
+    """Loads the target at `path`. `ready` is called once the runtime's libraries are imported and
+    before the model is read, so that load time and memory measured from there are the model's own,
+    not the one-off cost of a first import in this process."""
     path = Path(path)
+    if not path.exists():
+        raise UserError(f"{path}: no such file or folder — expected a transformers folder, a folder with "
+                        f"{ONNX_FILE}, or a .onnx file")
     if path.is_file() and path.suffix == ".onnx":
-        return _onnx(path, threads)
+        return _onnx(path, threads, ready)
+    if path.is_dir() and is_artifact(path):
+        return _artifact(path, threads, ready)
     if path.is_dir() and (path / ONNX_FILE).exists():
-        return _onnx(path / ONNX_FILE, threads)
+        return _onnx(path / ONNX_FILE, threads, ready)
     if path.is_dir() and (path / "config.json").exists():
-        return _pytorch(path, threads)
+        return _pytorch(path, threads, ready)
     raise UserError(f"{path}: not a benchmark target — expected a transformers folder, a folder with {ONNX_FILE}, "
                     f"or a .onnx file")

@@ -18,6 +18,7 @@ import numpy as np
 import torch
 from torch import nn
 
+from shrinkwrap import distributed
 from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.data import length_batches
 from shrinkwrap.fingerprint import sha256_json
@@ -56,29 +57,42 @@ def build_student(ctx, teacher) -> tuple[nn.Module, list[int]]:
 def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], key: str, hidden: bool,
                     attention: bool) -> tuple[dict, dict]:
     """Logits (and, only when asked, the mapped layers' hidden states / attentions) of the teacher on
-    `examples`, computed in one pass and kept on disk as memory-mapped arrays keyed by `key`."""
+    `examples`, computed in one pass and kept on disk as memory-mapped arrays keyed by `key`.
+    Under several processes each computes its share of the texts and the main process merges them."""
     folder = ctx.run_dir / "cache" / f"teacher-outputs-{key[:16]}"
     names = ["logits"] + (["hidden"] if hidden else []) + (["attention"] if attention else [])
-    if all((folder / f"{n}.npy").exists() for n in names) and (folder / "meta.json").exists():
+
+    def cached():
+        if all((folder / f"{n}.npy").exists() for n in names) and (folder / "meta.json").exists():
+            return {n: np.load(folder / f"{n}.npy", mmap_mode="r") for n in names}
+        return None
+
+    if (found := cached()) is not None:
         meta = json.loads((folder / "meta.json").read_text())
-        return ({n: np.load(folder / f"{n}.npy", mmap_mode="r") for n in names},
-                {"cache": "hit", "seconds": 0.0, "seconds_when_computed": meta["seconds"]})
+        return found, {"cache": "hit", "seconds": 0.0, "seconds_when_computed": meta["seconds"]}
     started = time.perf_counter()
     scratch = folder.with_name(folder.name + ".partial")
-    scratch.mkdir(parents=True, exist_ok=True)
-    n, length = len(examples), ctx.recipe.teacher.max_length
-    c = teacher.config
-    arrays = {"logits": np.lib.format.open_memmap(scratch / "logits.npy", "w+", np.float32, (n, c.num_labels))}
-    if hidden:  # embeddings output plus each mapped layer's output, float16 to halve the disk cost
-        arrays["hidden"] = np.lib.format.open_memmap(scratch / "hidden.npy", "w+", np.float16,
-                                                     (n, len(layer_map) + 1, length, c.hidden_size))
-    if attention:
-        arrays["attention"] = np.lib.format.open_memmap(scratch / "attention.npy", "w+", np.float16,
-                                                        (n, len(layer_map), c.num_attention_heads, length, length))
+    rank, world = distributed.rank(), distributed.world_size()
+    if distributed.is_main():
+        shutil.rmtree(scratch, ignore_errors=True)
+        scratch.mkdir(parents=True)
+    distributed.barrier()
+    share = np.arange(len(examples))[rank::world]
+    length, c = ctx.recipe.teacher.max_length, teacher.config
+    shapes = {"logits": ((c.num_labels,), np.float32),
+              # embeddings output plus each mapped layer's output, float16 to halve the disk cost
+              "hidden": ((len(layer_map) + 1, length, c.hidden_size), np.float16),
+              "attention": ((len(layer_map), c.num_attention_heads, length, length), np.float16)}
+
+    def shard_file(name: str, r: int) -> Path:
+        return scratch / (f"{name}.npy" if world == 1 else f"{name}.rank{r}.npy")
+
+    arrays = {n: np.lib.format.open_memmap(shard_file(n, rank), "w+", shapes[n][1], (len(share), *shapes[n][0]))
+              for n in names}
     teacher.eval()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        for idx, batch in length_batches(examples, ctx.pad_id, 64):
+        for idx, batch in length_batches([examples[i] for i in share], ctx.pad_id, 64):
             out = teacher(**to_torch(batch), output_hidden_states=hidden, output_attentions=attention)
             arrays["logits"][idx] = out.logits.numpy()
             width = batch["input_ids"].shape[1]
@@ -91,28 +105,44 @@ def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], ke
     for a in arrays.values():
         a.flush()
     del arrays
+    distributed.barrier()
     seconds = time.perf_counter() - started
-    (scratch / "meta.json").write_text(json.dumps({"seconds": seconds, "texts": n, "outputs": names}))
-    shutil.rmtree(folder, ignore_errors=True)
-    scratch.replace(folder)
-    return ({n: np.load(folder / f"{n}.npy", mmap_mode="r") for n in names},
-            {"cache": "miss", "seconds": round(seconds, 2)})
+    if distributed.is_main():
+        if world > 1:  # merge the shares into one array per output, rows back in the texts' order
+            for n in names:
+                merged = np.lib.format.open_memmap(scratch / f"{n}.npy", "w+", shapes[n][1],
+                                                   (len(examples), *shapes[n][0]))
+                for r in range(world):
+                    merged[np.arange(len(examples))[r::world]] = np.load(shard_file(n, r), mmap_mode="r")
+                    shard_file(n, r).unlink()
+                merged.flush()
+                del merged
+        (scratch / "meta.json").write_text(json.dumps({"seconds": seconds, "texts": len(examples),
+                                                       "outputs": names, "processes": world}))
+        shutil.rmtree(folder, ignore_errors=True)
+        scratch.replace(folder)
+    distributed.barrier()
+    return cached(), {"cache": "miss", "seconds": round(seconds, 2)}
 
 
-def run(ctx, src: Path, out: Path) -> dict:
-    cfg = ctx.recipe.student
-    teacher = load_classifier(str(src))
-    student, layer_map = build_student(ctx, teacher)
-    hidden, attention = cfg.hidden_weight > 0, cfg.attention_weight > 0
-
-    # Labelled training texts first, then the transfer texts (label -1: soft targets only).
+def soft_targets(ctx, teacher, layer_map: list[int], hidden: bool, attention: bool):
+    """(examples, labels, teacher outputs, cache info) to distil on: the labelled training texts first,
+    then the transfer texts (label -1: soft targets only), with the teacher's outputs on them."""
     examples = ctx.encoded["train"] + ctx.encoded.get("transfer", [])
     labels = list(ctx.data.train.labels) + [-1] * len(ctx.encoded.get("transfer", []))
     key = sha256_json({"teacher": ctx.fingerprints["teacher"], "data": ctx.data_fingerprint,
                        "transfer": ctx.transfer_fingerprint, "layers": layer_map if (hidden or attention) else None})
     targets, cache_info = teacher_outputs(ctx, teacher, examples, layer_map, key, hidden, attention)
-    del teacher
+    return examples, labels, targets, cache_info
 
+
+def fit_to_teacher(ctx, student, examples: list[dict], labels: list[int], targets: dict, layer_map: list[int],
+                   s: TrainSettings, hidden_weight: float, attention_weight: float, out: Path, step: str,
+                   checkpoint_every: int):
+    """Trains `student` in place on the teacher's `targets` (student.temperature and student.alpha; the
+    hidden-state and attention terms when their weights are above 0), resumable from out/checkpoint."""
+    cfg = ctx.recipe.student
+    hidden, attention = hidden_weight > 0, attention_weight > 0
     if hidden and student.config.hidden_size != ctx.teacher_hidden_size:
         # A learned linear map from the student's width to the teacher's (TinyBERT, Jiao et al. 2020).
         student.add_module(PROJECTION, nn.Linear(student.config.hidden_size, ctx.teacher_hidden_size))
@@ -120,32 +150,49 @@ def run(ctx, src: Path, out: Path) -> dict:
     def loss_fn(model, batch, batch_labels, idx):
         idx = idx.numpy()
         o = model(**batch, output_hidden_states=hidden, output_attentions=attention)
-        loss = distillation_loss(o.logits, torch.from_numpy(np.asarray(targets["logits"][idx])), batch_labels,
-                                 cfg.temperature, cfg.alpha)
+        device = o.logits.device
+        loss = distillation_loss(o.logits, torch.from_numpy(np.asarray(targets["logits"][idx])).to(device),
+                                 batch_labels, cfg.temperature, cfg.alpha)
         width, mask = batch["input_ids"].shape[1], batch["attention_mask"]
         if hidden:
-            t = torch.from_numpy(np.asarray(targets["hidden"][idx, :, :width], dtype=np.float32))
-            project = getattr(model, PROJECTION, nn.Identity())
+            t = torch.from_numpy(np.asarray(targets["hidden"][idx, :, :width], dtype=np.float32)).to(device)
+            # under several processes `model` is Accelerate's wrapper; the projection sits on the module
+            project = getattr(getattr(model, "module", model), PROJECTION, nn.Identity())
             s = [o.hidden_states[0]] + [o.hidden_states[i + 1] for i in range(len(layer_map))]
-            loss = loss + cfg.hidden_weight * sum(hidden_state_loss(project(h), t[:, j], mask)
-                                                  for j, h in enumerate(s)) / len(s)
+            loss = loss + hidden_weight * sum(hidden_state_loss(project(h), t[:, j], mask)
+                                              for j, h in enumerate(s)) / len(s)
         if attention:
-            t = torch.from_numpy(np.asarray(targets["attention"][idx, :, :, :width, :width], dtype=np.float32))
-            loss = loss + cfg.attention_weight * sum(attention_loss(a, t[:, j], mask)
-                                                     for j, a in enumerate(o.attentions)) / len(o.attentions)
+            t = torch.from_numpy(np.asarray(targets["attention"][idx, :, :, :width, :width],
+                                            dtype=np.float32)).to(device)
+            loss = loss + attention_weight * sum(attention_loss(a, t[:, j], mask)
+                                                 for j, a in enumerate(o.attentions)) / len(o.attentions)
         return loss
 
     train = [{"features": f, "label": int(y)} for f, y in zip(examples, labels)]
-    s = TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
-                      weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio, patience=cfg.patience,
-                      metric=ctx.recipe.teacher.metric, seed=cfg.seed, collapse_share=1.0)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
         result = fit(student, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
-                     desc="student", checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints["student"],
-                                                           cfg.checkpoint_every_steps, log=ctx.log))
+                     desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
+                                                      checkpoint_every, log=ctx.log))
     if hasattr(student, PROJECTION):
         delattr(student, PROJECTION)
+    return result
+
+
+def run(ctx, src: Path, out: Path) -> dict:
+    cfg = ctx.recipe.student
+    teacher = load_classifier(str(src))
+    student, layer_map = build_student(ctx, teacher)
+    examples, labels, targets, cache_info = soft_targets(ctx, teacher, layer_map, cfg.hidden_weight > 0,
+                                                         cfg.attention_weight > 0)
+    del teacher
+    s = TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
+                      weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio, patience=cfg.patience,
+                      metric=ctx.recipe.teacher.metric, seed=cfg.seed, collapse_share=1.0,
+                      gradient_accumulation_steps=ctx.recipe.train.gradient_accumulation_steps,
+                      precision=ctx.recipe.train.precision)
+    result = fit_to_teacher(ctx, student, examples, labels, targets, layer_map, s, cfg.hidden_weight,
+                            cfg.attention_weight, out, "student", cfg.checkpoint_every_steps)
     save_classifier(student, ctx.tokenizer, out)
     epochs_run = result.curve[-1]["epoch"] if result.curve else 0
     # Without the cache, every epoch would run the teacher over the same texts again.

@@ -89,17 +89,17 @@ def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict,
         else:
             chosen = min(passing, key=lambda n: report[n]["p50_ms"])
         shutil.move(str(candidates[chosen]), out / MODEL_FILE)
-    return {"exporter": "optimum (torch.onnx)", "precision": "fp32", "opset": cfg.opset, "graph": chosen,
-            "candidates": report,
+    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
             "parity": report[chosen]}
 
 
 def run(ctx, src: Path, out: Path) -> dict:
     cfg, bench = ctx.recipe.export, ctx.recipe.bench
     model = load_classifier(str(src))
-    timing_batch = collate(encode(ctx.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
-                           ctx.pad_id, length=bench.sequence_length)
-    info = export_checked(model, ctx.encoded["test"], ctx.pad_id, timing_batch, cfg, bench.threads, out)
+    tokens = ctx.tokens_of(src)  # the student's own tokenizer (a trimmed one when the vocabulary was cut)
+    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
+                           tokens.pad_id, length=bench.sequence_length)
+    info = export_checked(model, tokens.encoded["test"], tokens.pad_id, timing_batch, cfg, bench.threads, out)
     model.config.save_pretrained(out)
-    ctx.tokenizer.save_pretrained(out)
+    tokens.tokenizer.save_pretrained(out)
     return info

@@ -18,8 +18,9 @@ from shrinkwrap.models import load_classifier, save_classifier
 from shrinkwrap.train import FitResult, TrainSettings, fit, seed_everything
 
 
-def settings(cfg, seed: int) -> TrainSettings:
-    return TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
+def settings(cfg, seed: int, train) -> TrainSettings:
+    return TrainSettings(gradient_accumulation_steps=train.gradient_accumulation_steps, precision=train.precision,
+                         epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
                          weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio,
                          max_grad_norm=cfg.max_grad_norm, patience=cfg.patience, metric=cfg.metric, seed=seed,
                          stall_steps=cfg.stall_steps, stall_fraction=cfg.stall_fraction,
@@ -57,7 +58,7 @@ def run(ctx, src: None, out: Path) -> dict:
         model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
         checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
         result: FitResult = fit(model, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
-                                settings(cfg, seed), ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
+                                settings(cfg, seed, ctx.recipe.train), ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
         entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
                  "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,
                  "seconds": round(result.seconds, 2), "steps": result.steps}

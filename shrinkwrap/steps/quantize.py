@@ -11,5 +11,5 @@ from shrinkwrap.models import load_classifier, save_int8
 
 def run(ctx, src: Path, out: Path) -> dict:
     student = load_classifier(str(src))
-    save_int8(student, ctx.tokenizer, out)
+    save_int8(student, ctx.tokens_of(src).tokenizer, out)
     return {"method": "torch.ao dynamic int8", "modules": ["Linear"]}

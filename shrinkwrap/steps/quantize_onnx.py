@@ -81,7 +81,8 @@ def int8_summary(path: Path, vocab_size: int | None) -> dict:
             "int8_nodes": int8_ops}
 
 
-def _vocab_size(folder: Path) -> int | None:
+def vocab_size_of(folder: Path) -> int | None:
+    """The vocabulary size in the folder's config.json; None without one."""
     import json
 
     try:
@@ -102,13 +103,14 @@ def agreement(fp32_path: Path, int8_path: Path, examples: list[dict], pad_id: in
 def run(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.onnx_quantize
     src_dir = src
+    tokens = ctx.tokens_of(src)
     quantize(src_dir / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.op_types)
     for f in src_dir.iterdir():  # tokenizer and config travel with the model
         if f.is_file() and f.name not in (MODEL_FILE, "step.json", "bench.json"):
             (out / f.name).write_bytes(f.read_bytes())
-    return {"method": "ONNX Runtime dynamic int8", "precision": "int8", "per_channel": cfg.per_channel,
-            "op_types": list(cfg.op_types), **int8_summary(out / MODEL_FILE, _vocab_size(out)),
-            **agreement(src_dir / MODEL_FILE, out / MODEL_FILE, ctx.encoded["test"], ctx.pad_id,
+    return {"method": "ONNX Runtime dynamic int8", "per_channel": cfg.per_channel,
+            "op_types": list(cfg.op_types), **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
+            **agreement(src_dir / MODEL_FILE, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id,
                         len(ctx.data.label_names), ctx.recipe.bench.threads)}
 
 
@@ -118,16 +120,17 @@ def run_static(ctx, src: Path, out: Path) -> dict:
 
     cfg = ctx.recipe.onnx_quantize
     op_types = [t for t in cfg.op_types if t in STATIC_OP_TYPES]
-    calibration = ctx.encoded["train"][: cfg.static_calibration_texts]
+    tokens = ctx.tokens_of(src)
+    calibration = tokens.encoded["train"][: cfg.static_calibration_texts]
     model = load_classifier(str(src))
     with tempfile.TemporaryDirectory(dir=out) as tmp:
         plain = export_onnx(model, Path(tmp), ctx.recipe.export.opset)
-        quantize_static_qdq(plain, out / MODEL_FILE, calibration, ctx.pad_id, cfg.per_channel, op_types)
-        agrees = agreement(plain, out / MODEL_FILE, ctx.encoded["test"], ctx.pad_id, len(ctx.data.label_names),
+        quantize_static_qdq(plain, out / MODEL_FILE, calibration, tokens.pad_id, cfg.per_channel, op_types)
+        agrees = agreement(plain, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id, len(ctx.data.label_names),
                            ctx.recipe.bench.threads)
     model.config.save_pretrained(out)
-    ctx.tokenizer.save_pretrained(out)
-    return {"method": "ONNX Runtime static int8 (QDQ)", "precision": "int8", "graph": "plain",
+    tokens.tokenizer.save_pretrained(out)
+    return {"method": "ONNX Runtime static int8 (QDQ)", "graph": "plain",
             "per_channel": cfg.per_channel,
             "op_types": op_types, "calibration_texts": len(calibration), "calibration": "MinMax",
             "activations": "uint8", "weights": "int8",

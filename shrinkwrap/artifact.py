@@ -1,0 +1,201 @@
+"""The artefact: one folder a service runs with onnxruntime, tokenizers and numpy alone.
+
+    model.onnx        the graph
+    tokenizer.json    (and the other tokenizer files) the tokenizer the model was trained with
+    labels.json       class names by id
+    README.md         the model card
+    config.json       the transformers config, for tools that want it
+    manifest.json     sha256 and size of every other file, opset, inputs and outputs, tokenizer
+                      fingerprint, max sequence length, metrics at export, versions
+
+This module reads and checks artefacts; building them (which needs torch) is in shrinkwrap.package.
+It imports nothing beyond the standard library, numpy, onnxruntime, tokenizers and shrinkwrap's
+fingerprint/errors/onnx_tools modules: keep it that way (tests/test_predict.py checks).
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional
+
+import numpy as np
+
+from shrinkwrap.errors import UserError
+from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
+
+FORMAT = "shrinkwrap-artifact"
+FORMAT_VERSION = 1
+MANIFEST_FILE = "manifest.json"
+MODEL_FILE = "model.onnx"
+TOKENIZER_FILE = "tokenizer.json"
+# Label names live in their own file rather than in the manifest: the manifest cannot hash itself,
+# so anything in it could be edited unnoticed, while labels.json is covered by its hash.
+LABELS_FILE = "labels.json"
+CARD_FILE = "README.md"
+REQUIRED_FILES = (MODEL_FILE, TOKENIZER_FILE, LABELS_FILE)
+# The same default as the chain's accuracy pass (bench.eval_batch_size): with the same length-sorted
+# batches, predict gives exactly the logits the chain recorded.
+DEFAULT_BATCH_SIZE = 32
+
+
+def is_artifact(path: str | Path) -> bool:
+    return Path(path).is_dir() and (Path(path) / MANIFEST_FILE).is_file()
+
+
+def file_entries(folder: Path, names: list[str]) -> dict[str, dict]:
+    return {n: {"sha256": sha256_file(folder / n), "bytes": (folder / n).stat().st_size} for n in sorted(names)}
+
+
+def read_manifest(folder: Path) -> dict:
+    path = folder / MANIFEST_FILE
+    if not folder.is_dir():
+        raise UserError(f"{folder}: no such artefact folder")
+    if not path.is_file():
+        raise UserError(f"{folder}: no {MANIFEST_FILE} — not a shrinkwrap artefact (build one with "
+                        f"`shrinkwrap package` or `shrinkwrap run`)")
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise UserError(f"{path}: not valid JSON ({str(e).splitlines()[0]}) — rebuild the artefact") from None
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        raise UserError(f"{path}: not a shrinkwrap artefact manifest (format must be {FORMAT!r})")
+    if manifest.get("format_version") != FORMAT_VERSION:
+        raise UserError(f"{path}: format_version = {manifest.get('format_version')!r} — this shrinkwrap reads "
+                        f"version {FORMAT_VERSION}")
+    if not isinstance(manifest.get("files"), dict):
+        raise UserError(f"{path}: no `files` table — rebuild the artefact")
+    return manifest
+
+
+def verify(folder: str | Path) -> dict:
+    """The manifest, once every file it lists is present with its recorded size and sha256; a
+    one-line UserError otherwise. Nothing is loaded before this passes."""
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    files = manifest["files"]
+    for name in REQUIRED_FILES:
+        if name not in files:
+            raise UserError(f"{folder}: incomplete artefact — its manifest does not list {name}")
+    for name, entry in files.items():
+        # Names are plain file names: a manifest must never point outside its folder.
+        if not isinstance(name, str) or Path(name).name != name or name in (".", "..", MANIFEST_FILE):
+            raise UserError(f"{folder / MANIFEST_FILE}: file name {name!r} — only plain file names of the folder")
+        if not isinstance(entry, dict) or not isinstance(entry.get("sha256"), str) or \
+                not isinstance(entry.get("bytes"), int):
+            raise UserError(f"{folder / MANIFEST_FILE}: files[{name!r}] = {json.dumps(entry)} — expected "
+                            f"{{\"sha256\": ..., \"bytes\": ...}}")
+        path = folder / name
+        if not path.is_file():
+            raise UserError(f"{path}: missing — the artefact's manifest lists it; the artefact is incomplete")
+        size = path.stat().st_size
+        if size != entry["bytes"]:
+            raise UserError(f"{path}: {size} bytes where the manifest records {entry['bytes']} — modified after "
+                            f"packaging; rebuild the artefact")
+        digest = sha256_file(path)
+        if digest != entry["sha256"]:
+            raise UserError(f"{path}: sha256 {digest[:16]}… differs from the manifest's {entry['sha256'][:16]}… — "
+                            f"modified after packaging; rebuild the artefact")
+    expected = (manifest.get("tokenizer") or {}).get("fingerprint")
+    got = tokenizer_fingerprint_of_file(folder / TOKENIZER_FILE)
+    if expected != got:
+        raise UserError(f"{folder / TOKENIZER_FILE}: tokenizer fingerprint {got[:12]} differs from the manifest's "
+                        f"{str(expected)[:12]} — rebuild the artefact")
+    return manifest
+
+
+def softmax(logits: np.ndarray) -> np.ndarray:
+    z = logits - logits.max(axis=1, keepdims=True)
+    e = np.exp(z)
+    return e / e.sum(axis=1, keepdims=True)
+
+
+@dataclass
+class Artifact:
+    folder: Path
+    manifest: dict
+    labels: list[str]
+    session: object
+    tokenizer: object
+
+    @property
+    def max_length(self) -> int:
+        return int(self.manifest["tokenizer"]["max_length"])
+
+    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
+        """Logits of every text, in order. Texts are grouped by token length so that padding costs
+        little (the same grouping as the chain's accuracy pass)."""
+        from shrinkwrap.onnx_tools import feed
+
+        encodings = self.tokenizer.encode_batch(list(texts))
+        lengths = [len(e.ids) for e in encodings]
+        order = np.argsort(lengths, kind="stable")
+        pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
+        out = np.zeros((len(texts), len(self.labels)), dtype=np.float32)
+        for start in range(0, len(order), batch_size):
+            idx = order[start:start + batch_size]
+            width = max(lengths[i] for i in idx)
+            batch = {"input_ids": np.full((len(idx), width), pad_id, dtype=np.int64),
+                     "attention_mask": np.zeros((len(idx), width), dtype=np.int64),
+                     "token_type_ids": np.zeros((len(idx), width), dtype=np.int64)}
+            for row, i in enumerate(idx):
+                e = encodings[i]
+                batch["input_ids"][row, :lengths[i]] = e.ids
+                batch["attention_mask"][row, :lengths[i]] = e.attention_mask
+                batch["token_type_ids"][row, :lengths[i]] = e.type_ids
+            out[idx] = self.session.run(None, feed(self.session, batch))[0]
+        return out
+
+    def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> list[dict]:
+        """{"text", "label", "scores": {label: probability}} for each text, in order."""
+        probs = softmax(self.logits(texts, batch_size))
+        return [{"text": t, "label": self.labels[int(p.argmax())],
+                 "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)}}
+                for t, p in zip(texts, probs)]
+
+
+def read_labels(folder: Path) -> list[str]:
+    path = folder / LABELS_FILE
+    try:
+        labels = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise UserError(f"{path}: not valid JSON ({str(e).splitlines()[0]})") from None
+    if not isinstance(labels, list) or not labels or not all(isinstance(x, str) for x in labels):
+        raise UserError(f"{path}: expected a non-empty list of label names")
+    return labels
+
+
+def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None) -> Artifact:
+    """Verifies the artefact (unless `verified` is the manifest `verify` just returned), then loads it.
+    threads = 0 lets ONNX Runtime choose."""
+    folder = Path(folder)
+    manifest = verified if verified is not None else verify(folder)
+    return open_folder(folder, manifest, read_labels(folder), threads)
+
+
+def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 0) -> Artifact:
+    """Loads model and tokenizer without checking hashes: for `load`, and for the packager measuring
+    the artefact it is building through this very code path."""
+    from tokenizers import Tokenizer
+
+    from shrinkwrap.onnx_tools import session
+
+    tok_info = manifest.get("tokenizer") or {}
+    if not isinstance(tok_info.get("max_length"), int) or tok_info["max_length"] < 1:
+        raise UserError(f"{folder / MANIFEST_FILE}: tokenizer.max_length = {tok_info.get('max_length')!r} — "
+                        f"expected a whole number of tokens")
+    try:
+        tokenizer = Tokenizer.from_file(str(folder / TOKENIZER_FILE))
+    except Exception as e:  # the Rust library raises plain Exception for a file it cannot parse
+        raise UserError(f"{folder / TOKENIZER_FILE}: cannot load — {str(e).splitlines()[0]}") from None
+    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours.
+    tokenizer.no_padding()
+    tokenizer.enable_truncation(tok_info["max_length"])
+    try:
+        sess = session(folder / MODEL_FILE, threads)
+    except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
+        raise UserError(f"{folder / MODEL_FILE}: ONNX Runtime cannot load it — {str(e).splitlines()[0]}") from None
+    n_out = sess.get_outputs()[0].shape[-1]
+    if isinstance(n_out, int) and n_out != len(labels):
+        raise UserError(f"{folder / LABELS_FILE}: {len(labels)} labels but the model outputs {n_out} scores")
+    return Artifact(folder=folder, manifest=manifest, labels=labels, session=sess, tokenizer=tokenizer)

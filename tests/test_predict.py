@@ -1,0 +1,141 @@
+"""`shrinkwrap predict`: the chain's own predictions, no torch, and a refusal of any modified artefact."""
+import json
+import shutil
+import subprocess
+import sys
+
+import pytest
+
+from conftest import ROOT
+
+
+def _predict(*args, stdin=None):
+    return subprocess.run([sys.executable, "-m", "shrinkwrap", "predict", *map(str, args)], capture_output=True,
+                          text=True, input=stdin)
+
+
+def _test_texts(run_dir):
+    """The run's test split, rebuilt from its recipe exactly as the chain built it."""
+    from shrinkwrap.data import load_dataset
+    from shrinkwrap.recipe import load_recipe
+
+    recipe = load_recipe(run_dir.parent / "recipe.yaml")
+    return load_dataset(recipe.data, recipe.resolve(recipe.data.path), "test").test.texts
+
+
+def test_predict_equals_the_chains_recorded_predictions(tiny_run, tmp_path):
+    results = json.loads((tiny_run / "results.json").read_text())
+    texts = _test_texts(tiny_run)
+    assert len(texts) == len(results["test_labels"])
+    file = tmp_path / "texts.txt"
+    file.write_text("\n".join(texts) + "\n", encoding="utf-8")
+    proc = _predict(tiny_run / "artifact", "--file", file)
+    assert proc.returncode == 0, proc.stderr
+    rows = [json.loads(line) for line in proc.stdout.splitlines()]
+    names = results["data"]["label_names"]
+    assert [r["text"] for r in rows] == texts
+    assert [r["label"] for r in rows] == [names[i] for i in results["steps"][-1]["predictions"]]
+    for r in rows:
+        assert set(r["scores"]) == set(names) and abs(sum(r["scores"].values()) - 1) < 1e-4
+        assert r["label"] == max(r["scores"], key=r["scores"].get)
+
+
+def test_arguments_stdin_and_file_give_the_same_lines(tiny_run, tmp_path):
+    texts = ["my router is offline again", "please refund the double charge", "locked out of my account"]
+    by_args = _predict(tiny_run / "artifact", *texts)
+    by_stdin = _predict(tiny_run / "artifact", stdin="\n".join(texts))
+    (tmp_path / "t.txt").write_text("\n".join(texts) + "\n")
+    by_file = _predict(tiny_run / "artifact", "--file", tmp_path / "t.txt", "--batch-size", "2")
+    assert by_args.returncode == by_stdin.returncode == by_file.returncode == 0
+    assert len(by_args.stdout.splitlines()) == 3
+    assert by_args.stdout == by_stdin.stdout
+    assert [json.loads(x)["label"] for x in by_file.stdout.splitlines()] == \
+           [json.loads(x)["label"] for x in by_args.stdout.splitlines()]
+
+
+# Run in a fresh interpreter: torch and transformers are made unimportable (a None entry in
+# sys.modules makes `import` raise), then the imported third-party packages are listed.
+_PROBE = """
+import json, sys
+for name in ("torch", "transformers", "optimum", "onnx", "pydantic", "pandas", "sklearn", "scipy"):
+    sys.modules[name] = None
+from shrinkwrap.predict import run_predict
+code = run_predict(sys.argv[1], ["my router is offline"], None, 32, 1, stdout=sys.stderr)
+third_party = sorted({m.split(".")[0] for m, v in sys.modules.items() if v is not None}
+                     - set(sys.stdlib_module_names) - {"__main__"})
+print(json.dumps({"code": code, "modules": third_party}))
+"""
+
+
+def test_predict_path_imports_only_onnxruntime_tokenizers_numpy(tiny_run):
+    proc = subprocess.run([sys.executable, "-c", _PROBE, str(tiny_run / "artifact")], capture_output=True, text=True,
+                          cwd=ROOT)
+    assert proc.returncode == 0, proc.stderr
+    out = json.loads(proc.stdout)
+    assert out["code"] == 0 and json.loads(proc.stderr.splitlines()[-1])["label"]
+    # Whatever the packaging machinery (editable-install finder, setuptools' shim) adds is not a dependency.
+    allowed = {"numpy", "onnxruntime", "tokenizers", "shrinkwrap"}
+    assert {m for m in out["modules"] if not m.startswith("_")} <= allowed, out["modules"]
+
+
+def test_cli_predict_never_imports_torch(tiny_run):
+    code = ("import sys\nfrom shrinkwrap.cli import main\nrc = main(['predict', sys.argv[1], 'hello'])\n"
+            "print('TORCH' if 'torch' in sys.modules or 'transformers' in sys.modules else 'CLEAN', rc, file=sys.stderr)")
+    proc = subprocess.run([sys.executable, "-c", code, str(tiny_run / "artifact")], capture_output=True, text=True)
+    assert proc.stderr.strip().splitlines()[-1] == "CLEAN 0", proc.stderr
+
+
+def _flip_one_byte(path, offset):
+    data = bytearray(path.read_bytes())
+    data[offset] ^= 0x01
+    path.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("tamper", ["model-byte", "tokenizer-byte", "missing-file", "missing-manifest",
+                                    "unlisted-model"])
+def test_modified_or_incomplete_artifact_is_refused(tamper, tiny_run, tmp_path):
+    art = tmp_path / "art"
+    shutil.copytree(tiny_run / "artifact", art)
+    if tamper == "model-byte":
+        _flip_one_byte(art / "model.onnx", (art / "model.onnx").stat().st_size // 2)
+        where = "model.onnx"
+    elif tamper == "tokenizer-byte":
+        text = (art / "tokenizer.json").read_bytes()
+        _flip_one_byte(art / "tokenizer.json", text.index(b'"[UNK]"') + 2)  # same size, one letter changed
+        where = "tokenizer.json"
+    elif tamper == "missing-file":
+        (art / "tokenizer.json").unlink()
+        where = "tokenizer.json"
+    elif tamper == "missing-manifest":
+        (art / "manifest.json").unlink()
+        where = "manifest.json"
+    else:
+        manifest = json.loads((art / "manifest.json").read_text())
+        del manifest["files"]["model.onnx"]
+        (art / "manifest.json").write_text(json.dumps(manifest))
+        where = "model.onnx"
+    proc = _predict(art, "my router is offline")
+    assert proc.returncode == 2
+    assert proc.stdout == ""
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error:") and where in lines[0], proc.stderr
+
+
+@pytest.mark.parametrize("case", ["empty-line", "no-such-file", "args-and-file", "empty-argument"])
+def test_bad_text_input_exits_2_with_one_line(case, tiny_run, tmp_path):
+    args = []
+    if case == "empty-line":
+        (tmp_path / "t.txt").write_text("first\n\nthird\n")
+        args = ["--file", tmp_path / "t.txt"]
+    elif case == "no-such-file":
+        args = ["--file", tmp_path / "nope.txt"]
+    elif case == "args-and-file":
+        (tmp_path / "t.txt").write_text("first\n")
+        args = ["a text", "--file", tmp_path / "t.txt"]
+    else:
+        args = ["fine", "  "]
+    proc = _predict(tiny_run / "artifact", *args)
+    assert proc.returncode == 2 and proc.stdout == ""
+    assert len(proc.stderr.strip().splitlines()) == 1, proc.stderr
+    if case == "empty-line":
+        assert "line 2" in proc.stderr
