@@ -179,6 +179,16 @@ def fit_to_teacher(ctx, student, examples: list[dict], labels: list[int], target
     return result
 
 
+def student_settings(ctx, epochs: int, learning_rate: float) -> TrainSettings:
+    """Training settings of a distillation run: the student section's, with its own epochs and rate."""
+    st, train = ctx.recipe.student, ctx.recipe.train
+    # collapse_share 1 = off: a student that mimics a teacher is not judged against the majority class
+    return TrainSettings(epochs=epochs, learning_rate=learning_rate, batch_size=st.batch_size,
+                         weight_decay=st.weight_decay, warmup_ratio=st.warmup_ratio, patience=st.patience,
+                         metric=ctx.recipe.teacher.metric, seed=st.seed, collapse_share=1.0,
+                         gradient_accumulation_steps=train.gradient_accumulation_steps, precision=train.precision)
+
+
 def run(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.student
     teacher = load_classifier(str(src))
@@ -186,11 +196,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     examples, labels, targets, cache_info = soft_targets(ctx, teacher, layer_map, cfg.hidden_weight > 0,
                                                          cfg.attention_weight > 0)
     del teacher
-    s = TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
-                      weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio, patience=cfg.patience,
-                      metric=ctx.recipe.teacher.metric, seed=cfg.seed, collapse_share=1.0,
-                      gradient_accumulation_steps=ctx.recipe.train.gradient_accumulation_steps,
-                      precision=ctx.recipe.train.precision)
+    s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
     result = fit_to_teacher(ctx, student, examples, labels, targets, layer_map, s, cfg.hidden_weight,
                             cfg.attention_weight, out, "student", cfg.checkpoint_every_steps)
     save_classifier(student, ctx.tokenizer, out)

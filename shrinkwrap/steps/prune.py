@@ -12,8 +12,7 @@ from pathlib import Path
 
 from shrinkwrap.models import encoder_layers, load_classifier, save_classifier
 from shrinkwrap.pruning import (importance, least_important, neurons_to_remove, remove_heads, remove_neurons)
-from shrinkwrap.steps.distill import fit_to_teacher, soft_targets
-from shrinkwrap.train import TrainSettings
+from shrinkwrap.steps.distill import fit_to_teacher, soft_targets, student_settings
 
 
 def _shape(model) -> dict:
@@ -49,11 +48,7 @@ def run(ctx, src: Path, out: Path) -> dict:
         teacher = load_classifier(str(ctx.outputs["teacher"]))
         examples, labels, targets, cache_info = soft_targets(ctx, teacher, [], False, False)
         del teacher
-        s = TrainSettings(epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=st.batch_size,
-                          weight_decay=st.weight_decay, warmup_ratio=st.warmup_ratio, patience=st.patience,
-                          metric=ctx.recipe.teacher.metric, seed=st.seed, collapse_share=1.0,
-                          gradient_accumulation_steps=ctx.recipe.train.gradient_accumulation_steps,
-                          precision=ctx.recipe.train.precision)
+        s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
         result = fit_to_teacher(ctx, model, examples, labels, targets, [], s, 0.0, 0.0, out, "student-pruned",
                                 st.checkpoint_every_steps)
         info["recovery"] = {"epochs": cfg.epochs, "curve": result.curve, "best_epoch": result.best_epoch,
