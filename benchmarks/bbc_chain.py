@@ -66,11 +66,12 @@ def measure_all(ctx, targets: dict[str, Path]) -> dict[str, dict]:
     from shrinkwrap.data import encode
 
     cfg = ctx.recipe.bench.model_copy(update={"repeats": 50, "min_time_s": 2.0})
-    timing = encode(ctx.tokenizer, ctx.data.test, 128)
-    inputs = Inputs(timing=timing, pad_id=ctx.pad_id, test=ctx.encoded["test"], labels=ctx.data.test.labels,
-                    n_labels=len(ctx.data.label_names))
     out = {}
     for name, path in targets.items():
+        # each target reads the texts with its own tokenizer (a trimmed vocabulary has other ids)
+        tokens = ctx.tokens_of(path if Path(path).is_dir() else Path(path).parent)
+        inputs = Inputs(timing=encode(tokens.tokenizer, ctx.data.test, 128), pad_id=tokens.pad_id,
+                        test=tokens.encoded["test"], labels=ctx.data.test.labels, n_labels=len(ctx.data.label_names))
         print(f"measuring {name}", file=sys.stderr, flush=True)
         out[name] = bench_target(path, cfg, [Point(b, n) for b, n in POINTS], lambda t: inputs)
     return out
