@@ -268,38 +268,57 @@ def collate(examples: list[dict[str, list[int]]], pad_id: int, length: Optional[
     return out
 
 
-def length_batches(examples: list[dict], pad_id: int, batch_size: int):
-    """Yields (indices, padded batch) over all examples, grouped by length so that padding costs little."""
-    order = np.argsort([len(e["input_ids"]) for e in examples], kind="stable")
+def take(examples, idx) -> list[dict]:
+    """The encoded examples at `idx`, from a list or from a table on disk (transfer.ArrowExamples)."""
+    if isinstance(examples, list):
+        return [examples[i] for i in idx]
+    return examples.take(idx)
+
+
+def lengths(examples) -> np.ndarray:
+    if isinstance(examples, list):
+        return np.array([len(e["input_ids"]) for e in examples], dtype=np.int64)
+    return examples.lengths()
+
+
+class Joined:
+    """Several runs of encoded examples read as one: the labelled ones in memory, then the transfer
+    texts on disk. Index i of the whole is found in the part it falls into."""
+
+    def __init__(self, *parts):
+        self.parts = [p for p in parts if len(p)]
+        self.starts = np.cumsum([0] + [len(p) for p in self.parts])
+
+    def __len__(self) -> int:
+        return int(self.starts[-1])
+
+    def lengths(self) -> np.ndarray:
+        return np.concatenate([lengths(p) for p in self.parts]) if self.parts else np.zeros(0, np.int64)
+
+    def take(self, idx) -> list[dict]:
+        idx = np.asarray(idx, dtype=np.int64)
+        part = np.searchsorted(self.starts, idx, side="right") - 1
+        out: list = [None] * len(idx)
+        for p in np.unique(part):
+            where = np.flatnonzero(part == p)
+            for j, row in zip(where, take(self.parts[p], idx[where] - self.starts[p])):
+                out[j] = row
+        return out
+
+
+def length_batches(examples, pad_id: int, batch_size: int, rows: Optional[np.ndarray] = None):
+    """Yields (positions, padded batch) over the examples (or over `rows` of them, positions counted in
+    `rows`), grouped by length so that padding costs little."""
+    rows = np.arange(len(examples)) if rows is None else np.asarray(rows)
+    order = np.argsort(lengths(examples)[rows], kind="stable")
     for start in range(0, len(order), batch_size):
         idx = order[start:start + batch_size]
-        yield idx, collate([examples[i] for i in idx], pad_id)
+        yield idx, collate(take(examples, rows[idx]), pad_id)
 
 
-def all_logits(fn, examples: list[dict], pad_id: int, n_labels: int, batch_size: int = 64) -> np.ndarray:
+def all_logits(fn, examples, pad_id: int, n_labels: int, batch_size: int = 64) -> np.ndarray:
     """Logits of every example from `fn(batch) -> array`, in the examples' order."""
     out = np.zeros((len(examples), n_labels), dtype=np.float32)
     for idx, batch in length_batches(examples, pad_id, batch_size):
         out[idx] = fn(batch)
     return out
-
-
-def load_transfer(path: Path, column: Optional[str], where: str) -> list[str]:
-    """Unlabeled in-domain texts for distillation: a .txt file (one text per line) or a table column."""
-    if not path.exists():
-        raise UserError(f"{where}: no such file")
-    if path.suffix.lower() == ".txt":
-        try:
-            lines = path.read_text(encoding="utf-8").splitlines()
-        except UnicodeDecodeError as e:
-            raise UserError(f"{where}: not UTF-8 text — {_byte_to_line(path, e.start)}") from None
-    else:
-        df = _read_table(path, where)
-        if column not in df.columns:
-            raise UserError(f"{where}: student.transfer_column = {column!r} is not a column — columns: "
-                            f"{', '.join(map(str, df.columns))}")
-        lines = df[column].dropna().astype(str).tolist()
-    texts = [t[:MAX_CHARS] for t in lines if t.strip()]
-    if not texts:
-        raise UserError(f"{where}: no non-empty transfer texts")
-    return texts

@@ -90,7 +90,7 @@ class Context:
     quiet: bool = False
     transfer_fingerprint: Optional[str] = None
     teacher_hidden_size: int = 0
-    transfer_texts: list[str] = field(default_factory=list)
+    transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[str, "Tokens"] = field(default_factory=dict)
 
@@ -105,16 +105,26 @@ class Context:
         if fp == self.tokenizer_fp:
             return Tokens(self.tokenizer, fp, self.encoded, self.pad_id)
         if fp not in self._tokens:
-            from shrinkwrap.data import Split, encode
+            from shrinkwrap.data import encode
             from shrinkwrap.models import load_tokenizer
 
             tok = load_tokenizer(str(folder), str(folder))
             n = self.recipe.teacher.max_length
             encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
-            if self.transfer_texts:
-                encoded["transfer"] = encode(tok, Split(texts=self.transfer_texts, labels=None), n)
             self._tokens[fp] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
         return self._tokens[fp]
+
+    def transfer_examples(self) -> list:
+        """The transfer texts encoded with the teacher's tokenizer (rows on disk), or none."""
+        if self.transfer is None:
+            return []
+        return self.transfer.encoded(self.run_dir / "cache", self.tokenizer, self.tokenizer_fp,
+                                     self.recipe.teacher.max_length, quiet=self.quiet)
+
+    def transfer_batches(self, size: int = 1024):
+        """The transfer texts a batch at a time."""
+        if self.transfer is not None:
+            yield from self.transfer.batches(self.run_dir / "cache", size)
 
 
 @dataclass
@@ -183,17 +193,15 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
     data = load_dataset(recipe.data, data_path, str(data_path))
     encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
-    transfer_fp, transfer_texts = None, []
+    transfer = None
     st = recipe.student
     if st.transfer_path:
-        from shrinkwrap.data import Split, load_transfer
+        from shrinkwrap import transfer as transfer_file
 
-        path = recipe.resolve(st.transfer_path)
-        texts = load_transfer(path, st.transfer_column or recipe.data.text, str(path))
         if recipe.data.text_pair:
             raise UserError(f"{where}: student.transfer_path goes with single texts, but data.text_pair is set")
-        encoded["transfer"] = encode(tokenizer, Split(texts=texts, labels=None), recipe.teacher.max_length)
-        transfer_fp, transfer_texts = sha256_json(texts), texts
+        path = recipe.resolve(st.transfer_path)
+        transfer = transfer_file.check(path, st.transfer_column or recipe.data.text, str(path))
     if st.init == "pretrained":
         student_tok = load_tokenizer(str(recipe.resolve(st.base)), where)
         if tokenizer_fingerprint_of(student_tok) != tokenizer_fingerprint_of(tokenizer):
@@ -206,8 +214,8 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
-                   transfer_fingerprint=transfer_fp, teacher_hidden_size=config.hidden_size,
-                   transfer_texts=transfer_texts)
+                   transfer_fingerprint=transfer.fingerprint if transfer else None,
+                   teacher_hidden_size=config.hidden_size, transfer=transfer)
 
 
 def step_fingerprint(ctx: Context, step: Step) -> str:

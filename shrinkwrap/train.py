@@ -20,7 +20,7 @@ from tqdm.auto import tqdm
 from shrinkwrap import distributed
 from shrinkwrap.bench.accuracy import classification_metrics
 from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
-from shrinkwrap.data import all_logits, collate
+from shrinkwrap.data import all_logits, collate, take
 
 
 @dataclass
@@ -110,21 +110,30 @@ def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResu
     return saved["epoch"], saved["batch"], order, saved["best_state"], saved["since_best"], saved["losses"]
 
 
-def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels: np.ndarray, loss_fn: LossFn,
-        s: TrainSettings, pad_id: int, desc: str = "training", checkpoint: Optional[Checkpoint] = None) -> FitResult:
+def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict], val_labels: np.ndarray,
+        loss_fn: LossFn, s: TrainSettings, pad_id: int, desc: str = "training",
+        checkpoint: Optional[Checkpoint] = None) -> FitResult:
     """Trains `model` in place; on return it holds the weights of the best validation epoch.
+
+    `train` holds encoded examples (a list, or rows on disk read a batch at a time: see data.take);
+    `train_labels` their class ids, -1 where an example has none (a distillation transfer text).
 
     With `checkpoint`, the whole training state is saved every `checkpoint.every` steps and at each epoch
     end, and a run that finds a saved state continues from it exactly where the killed run was."""
     seed_everything(s.seed)
     result = FitResult()
     started = time.perf_counter()
-    steps_per_epoch = math.ceil(len(train) / s.batch_size)
+    rank, world = distributed.rank(), distributed.world_size()
+    # Under N processes every batch must give each one at least one example (they all join each
+    # gradient exchange), so a last batch smaller than N is left out of that epoch; the order is
+    # drawn afresh each epoch, so no example is left out for good.
+    tail = len(train) % s.batch_size
+    stop = len(train) - (tail if 0 < tail < world else 0)
+    steps_per_epoch = math.ceil(stop / s.batch_size)
     accumulate = s.gradient_accumulation_steps
     total = math.ceil(steps_per_epoch / accumulate) * s.epochs   # optimizer steps, for the schedule
     log = checkpoint.log if checkpoint else (lambda message: None)
     accelerator = distributed.accelerator(s.precision, log)
-    rank, world = distributed.rank(), distributed.world_size()
     optimizer = _optimizer(model, s)
     # Accelerate wraps the model for data parallelism when several processes were launched (the
     # wrapper averages gradients across them) and moves it to the GPU when there is one.
@@ -162,15 +171,15 @@ def fit(model: nn.Module, train: list[dict], validation: list[dict], val_labels:
             else:
                 order = torch.randperm(len(train), generator=generator).numpy()
             skip, first_batch = first_batch, 0
-            for start in range(skip * s.batch_size, len(order), s.batch_size):
+            for start in range(skip * s.batch_size, stop, s.batch_size):
                 # Every process draws the same order; each takes its share of the batch, so N
                 # processes with batch size B train like one process with B.
                 idx = order[start:start + s.batch_size][rank::world]
-                batch = to_torch(collate([train[i]["features"] for i in idx], pad_id))
+                batch = to_torch(collate(take(train, idx), pad_id))
                 batch = {k: v.to(accelerator.device) for k, v in batch.items()}
-                labels = torch.as_tensor([train[i]["label"] for i in idx], device=accelerator.device)
+                labels = torch.as_tensor(train_labels[idx], dtype=torch.long, device=accelerator.device)
                 position = start // s.batch_size
-                step_now = (position + 1) % accumulate == 0 or start + s.batch_size >= len(order)
+                step_now = (position + 1) % accumulate == 0 or start + s.batch_size >= stop
                 with accelerator.autocast(), (contextlib.nullcontext() if step_now else accelerator.no_sync(wrapped)):
                     loss = loss_fn(wrapped, batch, labels, torch.as_tensor(idx))
                     value = loss.item()

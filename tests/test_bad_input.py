@@ -271,6 +271,37 @@ def case_data_bad_jsonl_line(tmp, base, data):
     return _with(tmp, base, path, "data", "path", str(path)), [], [str(path), "line 3 is not a JSON object"]
 
 
+def case_transfer_missing(tmp, base, data):
+    return (_with(tmp, base, data, "student", "transfer_path", "more.txt"), [], [str(tmp / "more.txt"), "no such file"])
+
+
+def case_transfer_not_utf8(tmp, base, data):
+    path = _data_file(tmp, "more.txt", b"router offline\n" * 20_000 + b"caf\xe9 refund\n")
+    return (_with(tmp, base, data, "student", "transfer_path", str(path)), [],
+            [str(path), "not UTF-8 text — line 20001"])
+
+
+def case_transfer_blank(tmp, base, data):
+    path = _data_file(tmp, "more.txt", b"\n  \n\n")
+    return (_with(tmp, base, data, "student", "transfer_path", str(path)), [], [str(path), "no non-empty transfer texts"])
+
+
+def case_transfer_column_missing(tmp, base, data):
+    path = _data_file(tmp, "more.csv", b"body\nrouter offline\n")
+    return (_with(tmp, base, data, "student", "transfer_path", str(path)), [],
+            [str(path), "student.transfer_column = 'text' is not a column", "columns: body"])
+
+
+def case_transfer_jsonl_row_without_the_field(tmp, base, data):
+    path = _data_file(tmp, "more.jsonl", b'{"text": "router offline"}\n{"body": "locked out"}\n')
+    return (_with(tmp, base, data, "student", "transfer_path", str(path)), [], [str(path), "line 2 has no 'text' field"])
+
+
+def case_transfer_unsupported_type(tmp, base, data):
+    path = _data_file(tmp, "more.xlsx", b"not a table")
+    return (_with(tmp, base, data, "student", "transfer_path", str(path)), [], [str(path), "unsupported file type '.xlsx'"])
+
+
 def case_text_column_missing(tmp, base, data):
     return (_with(tmp, base, data, "data", "text", "body"), [],
             [str(data), "data.text = 'body' is not a column", "columns: text, label"])

@@ -50,3 +50,25 @@ def test_precision_is_ignored_on_cpu_with_a_notice(tmp_path, tiny_base, keyword_
                            "--until", "teacher"], capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert "train.precision = bf16 is for GPUs: training in fp32 on this CPU" in proc.stderr
+
+
+def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_base, keyword_csv, tiny_run_copy):
+    from conftest import keyword_rows
+
+    transfer = tmp_path / "more.txt"
+    transfer.write_text("\n".join(t for t, _ in keyword_rows(300, seed=5)) + "\n", encoding="utf-8")
+    recipe = write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv,
+                                                            student={"transfer_path": str(transfer)}))
+    proc = subprocess.run(
+        [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", "2", "--master_addr", "127.0.0.1",
+         "--master_port", str(_free_port()), "-m", "shrinkwrap", "run", str(recipe), "--out", str(tiny_run_copy),
+         "--until", "student"],
+        capture_output=True, text=True, env=dict(os.environ, MASTER_ADDR="127.0.0.1"), timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    student = json.loads((tiny_run_copy / "results.json").read_text())["steps"][1]
+    assert student["info"]["transfer_texts"] == 300
+    assert student["metrics"]["accuracy"] >= 0.8
+    tables = list((tiny_run_copy / "cache").glob("transfer-*"))
+    assert len(tables) == 1 and (tables[0] / "texts" / "dataset_info.json").exists()
+    assert len(list(tables[0].glob("tokens-*.arrow"))) == 1
+    assert not list((tiny_run_copy / "cache").rglob("*.partial"))

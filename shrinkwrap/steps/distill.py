@@ -20,7 +20,7 @@ from torch import nn
 
 from shrinkwrap import distributed
 from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
-from shrinkwrap.data import length_batches
+from shrinkwrap.data import Joined, length_batches
 from shrinkwrap.fingerprint import sha256_json
 from shrinkwrap.losses import attention_loss, distillation_loss, hidden_state_loss
 from shrinkwrap.models import evenly_spaced, keep_layers, load_classifier, num_layers, save_classifier
@@ -54,7 +54,7 @@ def build_student(ctx, teacher) -> tuple[nn.Module, list[int]]:
 
 
 @torch.no_grad()
-def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], key: str, hidden: bool,
+def teacher_outputs(ctx, teacher, examples, layer_map: list[int], key: str, hidden: bool,
                     attention: bool) -> tuple[dict, dict]:
     """Logits (and, only when asked, the mapped layers' hidden states / attentions) of the teacher on
     `examples`, computed in one pass and kept on disk as memory-mapped arrays keyed by `key`.
@@ -92,7 +92,7 @@ def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], ke
     teacher.eval()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        for idx, batch in length_batches([examples[i] for i in share], ctx.pad_id, 64):
+        for idx, batch in length_batches(examples, ctx.pad_id, 64, rows=share):
             out = teacher(**to_torch(batch), output_hidden_states=hidden, output_attentions=attention)
             arrays["logits"][idx] = out.logits.numpy()
             width = batch["input_ids"].shape[1]
@@ -128,15 +128,16 @@ def teacher_outputs(ctx, teacher, examples: list[dict], layer_map: list[int], ke
 def soft_targets(ctx, teacher, layer_map: list[int], hidden: bool, attention: bool):
     """(examples, labels, teacher outputs, cache info) to distil on: the labelled training texts first,
     then the transfer texts (label -1: soft targets only), with the teacher's outputs on them."""
-    examples = ctx.encoded["train"] + ctx.encoded.get("transfer", [])
-    labels = list(ctx.data.train.labels) + [-1] * len(ctx.encoded.get("transfer", []))
+    transfer = ctx.transfer_examples()
+    examples = Joined(ctx.encoded["train"], transfer)
+    labels = np.concatenate([ctx.data.train.labels, np.full(len(transfer), -1, dtype=np.int64)])
     key = sha256_json({"teacher": ctx.fingerprints["teacher"], "data": ctx.data_fingerprint,
                        "transfer": ctx.transfer_fingerprint, "layers": layer_map if (hidden or attention) else None})
     targets, cache_info = teacher_outputs(ctx, teacher, examples, layer_map, key, hidden, attention)
     return examples, labels, targets, cache_info
 
 
-def fit_to_teacher(ctx, student, examples: list[dict], labels: list[int], targets: dict, layer_map: list[int],
+def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, layer_map: list[int],
                    s: TrainSettings, hidden_weight: float, attention_weight: float, out: Path, step: str,
                    checkpoint_every: int):
     """Trains `student` in place on the teacher's `targets` (student.temperature and student.alpha; the
@@ -168,10 +169,9 @@ def fit_to_teacher(ctx, student, examples: list[dict], labels: list[int], target
                                                  for j, a in enumerate(o.attentions)) / len(o.attentions)
         return loss
 
-    train = [{"features": f, "label": int(y)} for f, y in zip(examples, labels)]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
-        result = fit(student, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
+        result = fit(student, examples, labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
                      desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
                                                       checkpoint_every, log=ctx.log))
     if hasattr(student, PROJECTION):
@@ -205,6 +205,6 @@ def run(ctx, src: Path, out: Path) -> dict:
     per_pass = cache_info.get("seconds_when_computed", cache_info["seconds"])
     saved = per_pass * (epochs_run - 1 if cache_info["cache"] == "miss" else epochs_run)
     return {"init": cfg.init, "layer_map": layer_map, "curve": result.curve, "best_epoch": result.best_epoch,
-            "seconds": round(result.seconds, 2), "transfer_texts": len(ctx.encoded.get("transfer", [])),
+            "seconds": round(result.seconds, 2), "transfer_texts": len(ctx.transfer or ()),
             "teacher_outputs": cache_info | {"seconds_saved_by_cache": round(max(0.0, saved), 2)},
             "status": result.status, "reason": result.reason}

@@ -35,7 +35,6 @@ def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
 
 def run(ctx, src: None, out: Path) -> dict:
     cfg = ctx.recipe.teacher
-    train = [{"features": f, "label": int(y)} for f, y in zip(ctx.encoded["train"], ctx.data.train.labels)]
     n_classes = len(ctx.data.label_names)
     weight = class_weights(ctx.data.train.labels, n_classes) if cfg.class_weights else None
 
@@ -57,7 +56,7 @@ def run(ctx, src: None, out: Path) -> dict:
         seed_everything(seed)  # the new head's initialisation depends on the seed
         model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
         checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
-        result: FitResult = fit(model, train, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
+        result: FitResult = fit(model, ctx.encoded["train"], ctx.data.train.labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
                                 settings(cfg, seed, ctx.recipe.train), ctx.pad_id, desc=f"teacher seed {seed}",
                                 checkpoint=checkpoint)
         entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,

@@ -15,31 +15,35 @@ from shrinkwrap.models import load_classifier, save_classifier
 from shrinkwrap.vocab import oov_rate, plain_backend, special_ids, trim_embeddings, trimmed_tokenizer, used_ids
 
 
-def training_texts(ctx) -> list[str]:
-    """The texts whose pieces are kept: training texts (both sides of a pair) and transfer texts."""
+def text_batches(ctx, size: int = 1024):
+    """The texts whose pieces are kept, a batch at a time: training texts (both sides of a pair) and
+    transfer texts (read from disk: there can be millions)."""
     train = ctx.data.train
-    return list(train.texts) + list(train.pairs or []) + list(ctx.transfer_texts)
+    labelled = list(train.texts) + list(train.pairs or [])
+    for start in range(0, len(labelled), size):
+        yield labelled[start:start + size]
+    yield from ctx.transfer_batches(size)
 
 
 def run(ctx, src: Path, out: Path) -> dict:
     tokens = ctx.tokens_of(src)
     tokenizer = tokens.tokenizer
-    texts = training_texts(ctx)
     special = special_ids(tokenizer)
-    kept = sorted(used_ids(tokenizer, texts) | special)
+    kept = sorted(set().union(*(used_ids(tokenizer, batch) for batch in text_batches(ctx))) | special)
     kept_set = set(kept)
     small = trimmed_tokenizer(tokenizer, kept)
 
     # The promise of this step, checked on every text it was built from: the same pieces, renumbered.
     new_id = {old: new for new, old in enumerate(kept)}
     full, trimmed = plain_backend(tokenizer), plain_backend(small)
-    for start in range(0, len(texts), 1024):
-        batch = texts[start:start + 1024]
+    checked = 0
+    for batch in text_batches(ctx):
         before, after = full.encode_batch(batch), trimmed.encode_batch(batch)
         for i, (b, a) in enumerate(zip(before, after)):
             if a.ids != [new_id[t] for t in b.ids]:
-                raise StepFailed(f"student-trimmed: the trimmed tokenizer splits training text {start + i + 1} "
+                raise StepFailed(f"student-trimmed: the trimmed tokenizer splits training text {checked + i + 1} "
                                  f"differently ({b.tokens[:8]}… vs {a.tokens[:8]}…)")
+        checked += len(batch)
 
     model = load_classifier(str(src))
     vocab_before = model.config.vocab_size
@@ -49,7 +53,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     save_classifier(model, small, out)
     rate, test_tokens = oov_rate(tokens.encoded["test"], kept_set, special)
     return {"vocab_size_before": vocab_before, "vocab_size": len(kept), "special_tokens": len(special),
-            "texts": len(texts), "embedding_bytes_before": vocab_before * width * element,
+            "texts": checked, "embedding_bytes_before": vocab_before * width * element,
             "embedding_bytes": len(kept) * width * element,
             # under the original tokenizer, the tokens the model reads (cut at teacher.max_length), specials excluded
             "test_oov_rate": round(rate, 6), "test_tokens": test_tokens}
