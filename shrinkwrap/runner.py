@@ -124,7 +124,7 @@ class Context:
     def transfer_batches(self, size: int = 1024):
         """The transfer texts a batch at a time."""
         if self.transfer is not None:
-            yield from self.transfer.batches(self.run_dir / "cache", size)
+            yield from self.transfer.batches(self.run_dir / "cache", size, quiet=self.quiet)
 
 
 @dataclass

@@ -142,8 +142,8 @@ class TransferTexts:
             self._texts = datasets.load_from_disk(str(table))
         return self._texts
 
-    def batches(self, cache_root: Path, size: int = 1024) -> Iterator[list[str]]:
-        for rows in self.texts(cache_root).iter(batch_size=size):
+    def batches(self, cache_root: Path, size: int = 1024, quiet: bool = True) -> Iterator[list[str]]:
+        for rows in self.texts(cache_root, quiet).iter(batch_size=size):
             yield rows["text"]
 
     def encoded(self, cache_root: Path, tokenizer, tokenizer_fp: str, max_length: int,

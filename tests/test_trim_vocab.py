@@ -201,3 +201,25 @@ def test_trimming_a_tokenizer_that_is_not_wordpiece_is_refused_before_anything_r
     with pytest.raises(UserError, match=r"trim_vocab.enabled — the teacher's tokenizer is WordLevel"):
         prepare(recipe, tmp_path / "run")
     assert not (tmp_path / "run").exists()
+
+
+def test_transfer_texts_keep_their_pieces_too(tmp_path, tiny_base, keyword_csv):
+    """The transfer texts are read from their table on disk, a batch at a time, and their pieces kept."""
+    from transformers import AutoTokenizer
+
+    from shrinkwrap.runner import run_chain
+
+    extra = ["the zeppelin hangar flooded", "quokka sightings near the router"] * 700   # more than one batch
+    (tmp_path / "more.txt").write_text("\n".join(extra) + "\n")
+    recipe = _recipe(tmp_path, tiny_base, keyword_csv, trim_vocab={"enabled": True},
+                     student={"transfer_path": str(tmp_path / "more.txt"), "epochs": 1})
+    results = run_chain(recipe, tmp_path / "run", quiet=True, until="student-trimmed")
+    original = AutoTokenizer.from_pretrained(tmp_path / "run" / "student")
+    small = AutoTokenizer.from_pretrained(tmp_path / "run" / "student-trimmed")
+    for text in extra[:2]:
+        assert small.tokenize(text) == original.tokenize(text)
+        assert small.unk_token not in small.tokenize(text)
+    info = next(s for s in results["steps"] if s["name"] == "student-trimmed")["info"]
+    from shrinkwrap.runner import prepare
+
+    assert info["texts"] == len(extra) + len(prepare(recipe, tmp_path / "run", quiet=True).data.train)
