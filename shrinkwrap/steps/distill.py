@@ -171,8 +171,8 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
-        result = fit(student, examples, labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s, ctx.pad_id,
-                     desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
+        result = fit(student, examples, labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s,
+                     ctx.pad_id, desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
                                                       checkpoint_every, log=ctx.log))
     if hasattr(student, PROJECTION):
         delattr(student, PROJECTION)

@@ -56,9 +56,9 @@ def run(ctx, src: None, out: Path) -> dict:
         seed_everything(seed)  # the new head's initialisation depends on the seed
         model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
         checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
-        result: FitResult = fit(model, ctx.encoded["train"], ctx.data.train.labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn,
-                                settings(cfg, seed, ctx.recipe.train), ctx.pad_id, desc=f"teacher seed {seed}",
-                                checkpoint=checkpoint)
+        result: FitResult = fit(model, ctx.encoded["train"], ctx.data.train.labels, ctx.encoded["validation"],
+                                ctx.data.validation.labels, loss_fn, settings(cfg, seed, ctx.recipe.train),
+                                ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
         entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
                  "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,
                  "seconds": round(result.seconds, 2), "steps": result.steps}
