@@ -56,6 +56,8 @@ def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_bas
     from conftest import keyword_rows
 
     transfer = tmp_path / "more.txt"
+    # 117 labelled + 300 transfer texts = 26 batches of 16 and 1 left over: fewer than the 2 processes,
+    # so that last one is left out of the epoch (a process with no rows would stall the gradient exchange)
     transfer.write_text("\n".join(t for t, _ in keyword_rows(300, seed=5)) + "\n", encoding="utf-8")
     recipe = write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv,
                                                             student={"transfer_path": str(transfer)}))
