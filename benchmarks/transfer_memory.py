@@ -5,7 +5,7 @@ Arrow table tokenised with `datasets.map`, the way `shrinkwrap run` reads studen
 
 Transfer texts: invented support-desk messages from recipes/data/make_demo_data.py (seeded; ~150
 characters, ~35 WordPiece tokens each), one per line. For each size, each of these runs in a process
-of its own, and its peak resident memory is read from the kernel when it ends (wait4 ru_maxrss):
+of its own, and its peak resident memory is read from the kernel as it exits (VmHWM):
 
   baseline   import torch, transformers, datasets and shrinkwrap's chain: the fixed cost of any run
   memory     read every line into a list and tokenise them all with data.encode (token id lists in
@@ -66,12 +66,32 @@ print(len(examples), int(examples.lengths().sum()))
 """
 
 
+# Runs a module (-m NAME) or code (-c CODE) and, at exit, writes the process's peak RSS (VmHWM: the
+# kernel's high-water mark for this program, counted from its exec, not from the process it was forked from).
+PEAK = """
+import atexit, runpy, sys
+out, mode, target = sys.argv[1:4]
+def peak():
+    status = open("/proc/self/status").read()
+    open(out, "w").write(next(line.split()[1] for line in status.splitlines() if line.startswith("VmHWM")))
+atexit.register(peak)
+sys.argv = [target] + sys.argv[4:]
+if mode == "-m":
+    runpy.run_module(target, run_name="__main__", alter_sys=True)
+else:
+    exec(compile(target, "<benchmark>", "exec"), {"__name__": "__main__"})
+"""
+
+
 def measure(argv: list[str], log: Path) -> dict:
-    """Runs argv to its end; its peak RSS (exact, from wait4) and peak anonymous RSS (sampled)."""
+    """Runs `python -m NAME ...` or `python -c CODE ...` to its end: its peak RSS (exact, VmHWM at exit)
+    and peak anonymous RSS (sampled)."""
     started = time.perf_counter()
+    peak_file = log.with_suffix(".peak")
+    peak_file.unlink(missing_ok=True)
     with open(log, "w") as out:
-        proc = subprocess.Popen(argv, stdout=out, stderr=subprocess.STDOUT, cwd=ROOT,
-                                env=os.environ | {"TOKENIZERS_PARALLELISM": "false"})
+        proc = subprocess.Popen([argv[0], "-c", PEAK, str(peak_file), *argv[1:]], stdout=out,
+                                stderr=subprocess.STDOUT, cwd=ROOT, env=os.environ | {"TOKENIZERS_PARALLELISM": "false"})
         peak_anon, done = [0], threading.Event()
 
         def sample():
@@ -86,13 +106,12 @@ def measure(argv: list[str], log: Path) -> dict:
 
         sampler = threading.Thread(target=sample, daemon=True)
         sampler.start()
-        _, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
+        proc.wait()
         done.set()
         sampler.join()
     if proc.returncode != 0:
         raise SystemExit(f"{' '.join(argv[:4])}… failed (exit {proc.returncode}); see {log}")
-    return {"peak_rss_mb": round(usage.ru_maxrss / 1024, 1), "peak_anon_mb": round(peak_anon[0] / 1024, 1),
+    return {"peak_rss_mb": round(int(peak_file.read_text()) / 1024, 1), "peak_anon_mb": round(peak_anon[0] / 1024, 1),
             "seconds": round(time.perf_counter() - started, 1)}
 
 
