@@ -119,14 +119,15 @@ class TransferTexts:
         return cache_root / f"transfer-{self.fingerprint[:16]}"
 
     def texts(self, cache_root: Path, quiet: bool = True):
-        """The texts as a memory-mapped `datasets.Dataset` with one column, "text"."""
+        """The texts as a memory-mapped `datasets.Dataset` with one column, "text"; built on first use.
+        Called by one process at a time (under several, `encoded` lets the main process build it)."""
         if self._texts is None:
             import datasets
 
             if quiet:
                 datasets.disable_progress_bars()
             table = self.folder(cache_root) / "texts"
-            if distributed.is_main() and not (table / "dataset_info.json").exists():
+            if not (table / "dataset_info.json").exists():
                 scratch = table.with_name("texts.partial")
                 shutil.rmtree(scratch, ignore_errors=True)
                 built = datasets.Dataset.from_generator(
@@ -138,7 +139,6 @@ class TransferTexts:
                 shutil.rmtree(table, ignore_errors=True)
                 (scratch / "table").replace(table)
                 shutil.rmtree(scratch, ignore_errors=True)
-            distributed.barrier()
             self._texts = datasets.load_from_disk(str(table))
         return self._texts
 
@@ -148,10 +148,10 @@ class TransferTexts:
 
     def encoded(self, cache_root: Path, tokenizer, tokenizer_fp: str, max_length: int,
                 quiet: bool = True) -> "ArrowExamples":
-        """The texts' token ids under `tokenizer`, computed once with `Dataset.map` and cached."""
+        """The texts' token ids under `tokenizer`, computed once with `Dataset.map` and cached. Under
+        several processes every one calls this; the main process builds the tables, the others wait."""
         import datasets
 
-        texts = self.texts(cache_root, quiet)
         # the same keys as data.encode gives the labelled texts, so that both go into one batch
         keys = [k for k in ("attention_mask", "token_type_ids") if k in tokenizer(["a"], truncation=True)]
 
@@ -168,10 +168,11 @@ class TransferTexts:
 
         target = self.folder(cache_root) / f"tokens-{tokenizer_fp[:16]}-{max_length}.arrow"
         if distributed.is_main():
-            texts.map(tokenize, batched=True, batch_size=1000, remove_columns=["text"],
-                      features=datasets.Features({"input_ids": datasets.List(datasets.Value("int32")),
-                                                  "length": datasets.Value("int32")}),
-                      cache_file_name=str(target), desc="tokenising transfer texts")
+            self.texts(cache_root, quiet).map(
+                tokenize, batched=True, batch_size=1000, remove_columns=["text"],
+                features=datasets.Features({"input_ids": datasets.List(datasets.Value("int32")),
+                                            "length": datasets.Value("int32")}),
+                cache_file_name=str(target), desc="tokenising transfer texts")
         distributed.barrier()
         return ArrowExamples(datasets.Dataset.from_file(str(target)), keys)
 

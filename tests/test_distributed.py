@@ -59,13 +59,17 @@ def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_bas
     # 117 labelled + 300 transfer texts = 26 batches of 16 and 1 left over: fewer than the 2 processes,
     # so that last one is left out of the epoch (a process with no rows would stall the gradient exchange)
     transfer.write_text("\n".join(t for t, _ in keyword_rows(300, seed=5)) + "\n", encoding="utf-8")
-    recipe = write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv,
-                                                            student={"transfer_path": str(transfer)}))
-    proc = subprocess.run(
-        [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", "2", "--master_addr", "127.0.0.1",
-         "--master_port", str(_free_port()), "-m", "shrinkwrap", "run", str(recipe), "--out", str(tiny_run_copy),
-         "--until", "student"],
-        capture_output=True, text=True, env=dict(os.environ, MASTER_ADDR="127.0.0.1"), timeout=600)
+    recipe = tiny_recipe(tiny_base, keyword_csv, student={"transfer_path": str(transfer)})
+
+    def run(until: str, timeout: int):
+        path = write_recipe(tmp_path / "r.yaml", recipe)
+        return subprocess.run(
+            [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", "2", "--master_addr", "127.0.0.1",
+             "--master_port", str(_free_port()), "-m", "shrinkwrap", "run", str(path), "--out", str(tiny_run_copy),
+             "--until", until],
+            capture_output=True, text=True, env=dict(os.environ, MASTER_ADDR="127.0.0.1"), timeout=timeout)
+
+    proc = run("student", 600)
     assert proc.returncode == 0, proc.stderr[-3000:]
     student = json.loads((tiny_run_copy / "results.json").read_text())["steps"][1]
     assert student["info"]["transfer_texts"] == 300
@@ -74,3 +78,12 @@ def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_bas
     assert len(tables) == 1 and (tables[0] / "texts" / "dataset_info.json").exists()
     assert len(list(tables[0].glob("tokens-*.arrow"))) == 1
     assert not list((tiny_run_copy / "cache").rglob("*.partial"))
+
+    # A step that does not train runs in the main process alone, the other waiting: vocabulary trimming
+    # reads the transfer table there, in a new run that reuses the student (no one else joins a wait).
+    recipe["trim_vocab"] = {"enabled": True}
+    proc = run("student-trimmed", 300)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    steps = json.loads((tiny_run_copy / "results.json").read_text())["steps"]
+    trimmed = next(s for s in steps if s["name"] == "student-trimmed")
+    assert trimmed["info"]["texts"] == 117 + 300
