@@ -8,8 +8,8 @@ characters, ~35 WordPiece tokens each), one per line. For each size, each of the
 of its own, and its peak resident memory is read from the kernel as it exits (VmHWM):
 
   baseline   import torch, transformers, datasets and shrinkwrap's chain: the fixed cost of any run
-  memory     read every line into a list and tokenise them all with data.encode (token id lists in
-             Python objects, as the labelled splits are): what holding the transfer texts costs
+  memory     read every line into a list and tokenise them all in one call, keeping one dict of id
+             lists per text: what `shrinkwrap run` did before transfer texts were kept on disk
   disk       transfer.check (one pass over the file), then the Arrow table and its token ids (map)
   run        `shrinkwrap run --until student`: teacher fine-tuned on the demo tickets, its outputs on
              every transfer text, one epoch of distillation (batches of 128) reading a batch of rows at a time
@@ -43,13 +43,16 @@ import shrinkwrap.runner
 shrinkwrap.runner.chain()
 """
 
+# What `shrinkwrap run` did with a transfer file before it was kept on disk: every line in a list,
+# tokenised in one call, one dict of id lists per text.
 IN_MEMORY = """
 import sys
-from shrinkwrap.data import Split, encode
 from shrinkwrap.models import load_tokenizer
 path, base, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
 texts = [t for t in open(path, encoding="utf-8").read().splitlines() if t.strip()]
-encoded = encode(load_tokenizer(base, "bench"), Split(texts=texts, labels=None), n)
+enc = load_tokenizer(base, "bench")(texts, truncation=True, max_length=n)
+keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
+encoded = [{k: enc[k][i] for k in keys} for i in range(len(texts))]
 print(len(encoded), sum(len(e["input_ids"]) for e in encoded))
 """
 

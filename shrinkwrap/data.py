@@ -244,14 +244,20 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
     return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
 
 
-def encode(tokenizer, split: Split, max_length: int) -> list[dict[str, list[int]]]:
-    """Token ids of every example, unpadded: batches are padded to their own longest example."""
-    if split.pairs is not None:
-        enc = tokenizer(split.texts, split.pairs, truncation=True, max_length=max_length)
-    else:
-        enc = tokenizer(split.texts, truncation=True, max_length=max_length)
-    keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
-    return [{k: enc[k][i] for k in keys} for i in range(len(split))]
+def encode(tokenizer, split: Split, max_length: int, chunk: int = 4096) -> list[dict[str, list[int]]]:
+    """Token ids of every example, unpadded: batches are padded to their own longest example.
+    Tokenised `chunk` texts at a time: the tokenizer's own output objects are many times the size of
+    the ids kept, and would otherwise all be alive at once."""
+    out: list[dict[str, list[int]]] = []
+    for start in range(0, len(split), chunk):
+        texts = split.texts[start:start + chunk]
+        if split.pairs is not None:
+            enc = tokenizer(texts, split.pairs[start:start + chunk], truncation=True, max_length=max_length)
+        else:
+            enc = tokenizer(texts, truncation=True, max_length=max_length)
+        keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
+        out.extend({k: enc[k][i] for k in keys} for i in range(len(texts)))
+    return out
 
 
 def collate(examples: list[dict[str, list[int]]], pad_id: int, length: Optional[int] = None) -> dict[str, np.ndarray]:

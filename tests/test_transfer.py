@@ -101,3 +101,14 @@ def test_joined_reads_like_the_concatenated_list(tmp_path, tiny_base):
 def test_a_folder_is_refused(tmp_path):
     with pytest.raises(UserError, match="is a folder"):
         check(tmp_path, "text", str(tmp_path))
+
+
+def test_encoding_in_chunks_equals_one_tokenizer_call(tiny_base):
+    """Reference: the transformers tokenizer called once on all the texts (and pairs)."""
+    tok = load_tokenizer(str(tiny_base), "test")
+    texts, pairs = TEXTS * 3, [t.upper() for t in TEXTS] * 3
+    for split in (Split(texts=texts, labels=None), Split(texts=texts, labels=None, pairs=pairs)):
+        whole = tok(split.texts, split.pairs, truncation=True, max_length=12) if split.pairs else \
+            tok(split.texts, truncation=True, max_length=12)
+        expected = [{k: whole[k][i] for k in whole} for i in range(len(texts))]
+        assert encode(tok, split, 12, chunk=4) == expected
