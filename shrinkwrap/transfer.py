@@ -23,7 +23,6 @@ from shrinkwrap.data import MAX_CHARS, _check_text_file
 from shrinkwrap.errors import StepFailed, UserError
 
 CHUNK = 10_000          # rows read, checked and written at a time
-SUFFIXES = (".txt", ".csv", ".jsonl", ".ndjson", ".parquet", ".pq")
 
 
 def _rows(path: Path, column: Optional[str], where: str) -> Iterator[str]:
