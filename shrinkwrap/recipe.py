@@ -160,7 +160,8 @@ class QuantizeConfig(_Section):
 class ExportConfig(_Section):
     opset: int = Field(18, ge=14, le=21, description="ONNX opset")
     optimize: Literal["auto", "always", "never"] = Field(
-        "auto", description="ONNX Runtime transformer fusion: `auto` keeps the fused graph only if it is faster")
+        "auto", description="ONNX Runtime transformer fusion: `auto` ships the fused graph when it passes the parity check, "
+                            "else the plain export; `always` fails the step instead; `never` ships the plain export")
     parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed absolute logit difference between ONNX fp32 and PyTorch")
 
 

@@ -66,7 +66,7 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
         Step("student-trimmed", "pytorch", ("trim_vocab",), "student-pruned" if pruned else "student", trim_vocab.run,
              lambda r: r.trim_vocab.enabled, changes_tokenizer=True),
         Step("student-int8", "pytorch", ("quantize",), last, quantize.run, lambda r: r.quantize.enabled),
-        Step("student-onnx", "onnx", ("export",), last, export.run),
+        Step("student-onnx", "onnx", ("export",), last, export.run, extra=lambda ctx: export.GRAPH_RULE),
         # Before the dynamic int8 step, so that the final step (budgets, the artefact) stays the dynamic one.
         Step("student-onnx-int8-static", "onnx", ("export", "onnx_quantize"), last, quantize_onnx.run_static,
              lambda r: r.onnx_quantize.static),
