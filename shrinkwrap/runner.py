@@ -88,11 +88,14 @@ class Context:
     outputs: dict[str, Path] = field(default_factory=dict)
     fingerprints: dict[str, str] = field(default_factory=dict)
     quiet: bool = False
-    transfer_fingerprint: Optional[str] = None
     teacher_hidden_size: int = 0
     transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[str, "Tokens"] = field(default_factory=dict)
+
+    @property
+    def transfer_fingerprint(self) -> Optional[str]:
+        return self.transfer.fingerprint if self.transfer else None
 
     def log(self, message: str) -> None:
         if not self.quiet:
@@ -214,7 +217,6 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
-                   transfer_fingerprint=transfer.fingerprint if transfer else None,
                    teacher_hidden_size=config.hidden_size, transfer=transfer)
 
 
