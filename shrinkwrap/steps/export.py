@@ -88,12 +88,10 @@ def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict,
             report[name]["p50_ms"] = p50_ms(path, timing_batch, threads)
             report[name]["passes"] = (report[name]["max_abs_logit_diff"] <= cfg.parity_tolerance
                                       and report[name]["label_mismatches"] == 0)
-        passing = [n for n in candidates if report[n]["passes"]]
-        if cfg.optimize == "always":
-            passing = [n for n in passing if n == "fused"]
+        shippable = ["fused"] if cfg.optimize == "always" else list(candidates)
+        passing = [n for n in shippable if report[n]["passes"]]
         if not passing:
-            worst = min((report[n] for n in candidates if cfg.optimize != "always" or n == "fused"),
-                        key=lambda r: r["max_abs_logit_diff"])
+            worst = min((report[n] for n in shippable), key=lambda r: r["max_abs_logit_diff"])
             raise StepFailed(f"{what}: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
                              f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels"
                              + (" (export.optimize = always: the fused graph)" if cfg.optimize == "always" else ""))
