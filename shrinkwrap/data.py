@@ -74,28 +74,38 @@ def _read_table(path: Path, where: str):
 def _check_text_file(path: Path, where: str, lines: bool) -> None:
     """Catches what the table readers report badly: an empty file, a non-UTF-8 byte (pandas reads in
     chunks, so its byte offsets are not the file's), and a JSON Lines line that does not parse."""
-    import json
-
     try:
         f = open(path, "rb")
     except OSError as e:
         raise UserError(f"{where}: cannot read — {e.strerror or e}") from None
     with f:
         seen_any = False
-        for number, raw in enumerate(f, 1):
-            try:
-                line = raw.decode("utf-8")
-            except UnicodeDecodeError as e:
-                raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line "
-                                f"(0x{raw[e.start]:02x}); save the file as UTF-8") from None
+        for number, line in utf8_lines(f, where):
             seen_any = seen_any or bool(line.strip())
             if lines and line.strip():
-                try:
-                    json.loads(line)
-                except ValueError as e:
-                    raise UserError(f"{where}: line {number} is not a JSON object — {e.msg} at column {e.colno}") from None
+                json_line(line, number, where)
     if not seen_any:
         raise UserError(f"{where}: the file is empty")
+
+
+def utf8_lines(f, where: str):
+    """(line number, text) of every line of the binary file `f`; a byte that is not UTF-8 stops it with
+    one line naming the line."""
+    for number, raw in enumerate(f, 1):
+        try:
+            yield number, raw.decode("utf-8")
+        except UnicodeDecodeError as e:
+            raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line "
+                            f"(0x{raw[e.start]:02x}); save the file as UTF-8") from None
+
+
+def json_line(line: str, number: int, where: str):
+    import json
+
+    try:
+        return json.loads(line)
+    except ValueError as e:
+        raise UserError(f"{where}: line {number} is not a JSON object — {e.msg} at column {e.colno}") from None
 
 
 def _byte_to_line(path: Path, offset: int) -> str:

@@ -19,7 +19,7 @@ from typing import Iterator, Optional
 import numpy as np
 
 from shrinkwrap import distributed
-from shrinkwrap.data import MAX_CHARS, _check_text_file
+from shrinkwrap.data import MAX_CHARS, _check_text_file, json_line, utf8_lines
 from shrinkwrap.errors import StepFailed, UserError
 
 CHUNK = 10_000          # rows read, checked and written at a time
@@ -30,26 +30,17 @@ def _rows(path: Path, column: Optional[str], where: str) -> Iterator[str]:
     suffix = path.suffix.lower()
     if suffix == ".txt":
         with open(path, "rb") as f:
-            for number, raw in enumerate(f, 1):
-                try:
-                    line = raw.decode("utf-8").rstrip("\r\n")
-                except UnicodeDecodeError as e:
-                    raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line "
-                                    f"(0x{raw[e.start]:02x}); save the file as UTF-8") from None
+            for _, line in utf8_lines(f, where):
+                line = line.rstrip("\r\n")
                 if line.strip():
                     yield line[:MAX_CHARS]
         return
     if suffix in (".jsonl", ".ndjson"):
         with open(path, "rb") as f:
-            for number, raw in enumerate(f, 1):
-                if not raw.strip():
+            for number, line in utf8_lines(f, where):
+                if not line.strip():
                     continue
-                try:
-                    row = json.loads(raw.decode("utf-8"))
-                except UnicodeDecodeError as e:
-                    raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line") from None
-                except ValueError as e:
-                    raise UserError(f"{where}: line {number} is not a JSON object — {e.msg} at column {e.colno}") from None
+                row = json_line(line, number, where)
                 if not isinstance(row, dict) or column not in row:
                     raise UserError(f"{where}: line {number} has no {column!r} field (student.transfer_column)")
                 text = row[column]
