@@ -29,7 +29,10 @@ def run(ctx, src: Path, out: Path) -> dict:
     tokens = ctx.tokens_of(src)
     tokenizer = tokens.tokenizer
     special = special_ids(tokenizer)
-    kept = sorted(set().union(*(used_ids(tokenizer, batch) for batch in text_batches(ctx))) | special)
+    used = set(special)
+    for batch in text_batches(ctx):
+        used |= used_ids(tokenizer, batch)
+    kept = sorted(used)
     kept_set = set(kept)
     small = trimmed_tokenizer(tokenizer, kept)
 
