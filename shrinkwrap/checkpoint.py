@@ -10,7 +10,6 @@ torch.load(weights_only=True), which refuses anything that could run code when u
 """
 from __future__ import annotations
 
-import errno
 import json
 import os
 import pickle
@@ -20,7 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.errors import UserError
+from shrinkwrap.rundir import write_atomic
 
 # torch and numpy are imported where used: the runner imports this module on the command line's
 # fast path, where a bad recipe must be reported without loading them.
@@ -28,22 +27,6 @@ from shrinkwrap.errors import UserError
 CHECKPOINT_DIR = "checkpoint"
 OWNER_FILE = "owner.json"   # the step fingerprint the checkpoints in the folder were made for
 FORMAT = 1                  # bumped when the layout of a checkpoint changes; older ones are not resumed
-
-DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
-
-
-def is_disk_full(e: BaseException) -> bool:
-    # torch and safetensors sometimes re-raise a failed write as a RuntimeError carrying the text only.
-    return (isinstance(e, OSError) and e.errno in DISK_FULL) or "No space left on device" in str(e)
-
-
-def write_error(path: Path | str, e: BaseException) -> UserError:
-    """The one-line error for a write that failed: disk full gets its own message (exit 2 like any UserError)."""
-    if is_disk_full(e):
-        return UserError(f"{path}: no space left on device — free some space and run the same command again "
-                         f"(finished steps and checkpoints are kept)")
-    return UserError(f"{path}: cannot write — {getattr(e, 'strerror', None) or e}")
-
 
 def open_scratch(partial: Path, fingerprint: str) -> bool:
     """Makes a step's scratch folder. Returns True when a killed run left checkpoints there for this very
@@ -72,20 +55,6 @@ def _owner(folder: Path) -> Optional[str]:
         return json.loads((folder / OWNER_FILE).read_text(encoding="utf-8")).get("fingerprint")
     except (OSError, ValueError, AttributeError):
         return None
-
-
-def write_atomic(path: Path, data: bytes | Callable) -> None:
-    """Writes `data` (bytes, or a function given the open file) so that `path` is either old or whole."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(tmp, "wb") as f:  # a Python file object: a full disk surfaces as OSError(ENOSPC)
-            data(f) if callable(data) else f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as e:
-        tmp.unlink(missing_ok=True)
-        raise write_error(path, e) from None
 
 
 @dataclass

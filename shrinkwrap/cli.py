@@ -45,7 +45,7 @@ def cmd_run(args) -> int:
 
 def cmd_gate(args) -> int:
     from shrinkwrap.gate import format_table, gate_results, junit_xml
-    from shrinkwrap.runner import write_text_atomic
+    from shrinkwrap.rundir import write_text_atomic
 
     verdict = gate_results(Path(args.results), args.budget and Path(args.budget), args.step,
                            args.baseline and Path(args.baseline), args.tolerance)
@@ -69,7 +69,7 @@ def cmd_bench(args) -> int:
     from shrinkwrap.bench.measure import bench_target
     from shrinkwrap.bench.testset import inputs_for, read_table
     from shrinkwrap.recipe import BenchConfig
-    from shrinkwrap.runner import write_json_atomic
+    from shrinkwrap.rundir import write_json_atomic
 
     if args.out:  # checked first, so that a bad path fails before minutes of measuring
         out = Path(args.out)

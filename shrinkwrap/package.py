@@ -81,7 +81,7 @@ def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, des
     metrics, recipe fingerprint, model facts); `measure(artifact) -> metrics` runs on the loaded
     artefact before it is sealed; `card(manifest)` renders README.md."""
     from shrinkwrap.bench.machine import library_versions
-    from shrinkwrap.runner import swap_in
+    from shrinkwrap.rundir import swap_in
     from shrinkwrap.steps.quantize_onnx import vocab_size_of
 
     check_destination(out)

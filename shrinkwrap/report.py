@@ -278,7 +278,7 @@ def load_results(path: Path) -> dict:
 
 
 def _write(out: Path, md: str, page: str) -> tuple[Path, Path]:
-    from shrinkwrap.runner import REPORT_FILE, REPORT_HTML_FILE, write_text_atomic
+    from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, write_text_atomic
 
     write_text_atomic(out / REPORT_FILE, md)
     write_text_atomic(out / REPORT_HTML_FILE, page)

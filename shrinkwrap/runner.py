@@ -16,17 +16,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.checkpoint import close_scratch, is_disk_full, open_scratch, write_atomic, write_error
+from shrinkwrap.checkpoint import close_scratch, open_scratch
+from shrinkwrap.rundir import (BENCH_FILE, REPORT_FILE, REPORT_HTML_FILE, RESULTS_FILE, STEP_FILE, is_disk_full,
+                               swap_in, write_error, write_json_atomic, write_text_atomic)
 from shrinkwrap import distributed
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json, tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
 from shrinkwrap.recipe import Recipe
 
-STEP_FILE = "step.json"
-BENCH_FILE = "bench.json"
-RESULTS_FILE = "results.json"
-REPORT_FILE = "report.md"
-REPORT_HTML_FILE = "report.html"
 # Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
 CODE_VERSION = 1
 
@@ -139,14 +136,6 @@ class Tokens:
     pad_id: int
 
 
-def write_json_atomic(path: Path, obj) -> None:
-    write_atomic(path, json.dumps(obj, indent=2).encode("utf-8"))
-
-
-def write_text_atomic(path: Path, text: str) -> None:
-    write_atomic(path, text.encode("utf-8"))
-
-
 def _check_out_dir(out: Path) -> None:
     probe = out if out.exists() else next((p for p in out.parents if p.exists()), Path("."))
     if probe.exists() and not probe.is_dir():
@@ -257,16 +246,6 @@ def check_output_tokenizer(ctx: Context, step: Step, folder: Path, recorded: Opt
                         f"redo the step")
     ctx.tokenizer_fps[step.name] = got
     return got
-
-
-def swap_in(partial: Path, final: Path) -> None:
-    """Renames a finished scratch folder into place: the old one (if any) is moved aside first and removed last."""
-    old = final.parent / f".old-{final.name}"
-    shutil.rmtree(old, ignore_errors=True)
-    if final.exists():
-        os.replace(final, old)
-    os.replace(partial, final)
-    shutil.rmtree(old, ignore_errors=True)
 
 
 def run_step(ctx: Context, step: Step) -> dict:

@@ -1,0 +1,132 @@
+"""The run folder: file names, atomic writes, scratch-then-rename folders, JSON reading.
+
+Imports nothing else of the package but its errors, so that every module — the torch-free predict path
+included — can use it.
+"""
+from __future__ import annotations
+
+import errno
+import json
+import os
+import shutil
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Callable, Iterator
+
+from shrinkwrap.errors import UserError
+
+STEP_FILE = "step.json"          # a step's record: fingerprint, tokenizer fingerprint, what it did
+BENCH_FILE = "bench.json"        # a step's benchmark, keyed by what it measured
+RESULTS_FILE = "results.json"    # every figure of a run
+REPORT_FILE = "report.md"
+REPORT_HTML_FILE = "report.html"
+ARTIFACT_DIR = "artifact"        # the deployable folder inside a run folder
+MODEL_FILE = "model.onnx"        # the ONNX graph of an ONNX step and of an artifact
+MANIFEST_FILE = "manifest.json"
+LABELS_FILE = "labels.json"
+TOKENIZER_FILE = "tokenizer.json"
+CONFIG_FILE = "config.json"
+
+DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
+
+
+def is_disk_full(e: BaseException) -> bool:
+    # torch and safetensors sometimes re-raise a failed write as a RuntimeError carrying the text only.
+    return (isinstance(e, OSError) and e.errno in DISK_FULL) or "No space left on device" in str(e)
+
+
+def write_error(path: Path | str, e: BaseException) -> UserError:
+    """The one-line error for a write that failed: disk full gets its own message (exit 2 like any UserError)."""
+    if is_disk_full(e):
+        return UserError(f"{path}: no space left on device — free some space and run the same command again "
+                         f"(finished steps and checkpoints are kept)")
+    return UserError(f"{path}: cannot write — {getattr(e, 'strerror', None) or e}")
+
+
+def write_atomic(path: Path, data: bytes | Callable) -> None:
+    """Writes `data` (bytes, or a function given the open file) so that `path` is either old or whole."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "wb") as f:  # a Python file object: a full disk surfaces as OSError(ENOSPC)
+            data(f) if callable(data) else f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise write_error(path, e) from None
+
+
+def write_json_atomic(path: Path, obj) -> None:
+    write_atomic(path, json.dumps(obj, indent=2).encode("utf-8"))
+
+
+def write_text_atomic(path: Path, text: str) -> None:
+    write_atomic(path, text.encode("utf-8"))
+
+
+def read_json(path: Path, what: str = "JSON file"):
+    """Reads a JSON file; a missing or unreadable one is a one-line UserError naming it."""
+    path = Path(path)
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise UserError(f"{path}: no such {what}") from None
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not a {what} (not UTF-8 text)") from None
+    except ValueError as e:
+        raise UserError(f"{path}: not a valid {what} ({e})") from None
+    except OSError as e:
+        raise UserError(f"{path}: cannot read — {e.strerror or e}") from None
+
+
+def read_json_or_none(path: Path):
+    """A JSON file's content, or None when it is missing or unreadable (e.g. a record a killed run never wrote)."""
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def swap_in(scratch: Path, final: Path) -> None:
+    """Renames a finished scratch folder into place: the old one (if any) is moved aside first and removed last."""
+    old = final.parent / f".old-{final.name}"
+    shutil.rmtree(old, ignore_errors=True)
+    if final.exists():
+        os.replace(final, old)
+    os.replace(scratch, final)
+    shutil.rmtree(old, ignore_errors=True)
+
+
+def scratch_path(final: Path) -> Path:
+    """Where the folder `final` is built before it is renamed into place."""
+    return final.parent / f".partial-{final.name}"
+
+
+@contextmanager
+def scratch(final: Path, keep: bool = False) -> Iterator[Path]:
+    """Builds the folder `final` in a scratch folder beside it and renames it into place only when the
+    block completes: a crash leaves `final` as it was (old or absent), never half-written. With `keep`,
+    an existing scratch folder is reused (resumable work inside it); otherwise it starts empty."""
+    tmp = scratch_path(final)
+    if not keep:
+        shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True, exist_ok=True)
+    try:
+        yield tmp
+    except BaseException:
+        if not keep:
+            shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    swap_in(tmp, final)
+
+
+def check_out_dir(out: Path, flag: str = "--out") -> None:
+    """An output folder must be a folder (or not exist yet) under a writable parent."""
+    out = Path(out)
+    probe = out if out.exists() else next((p for p in out.parents if p.exists()), Path("."))
+    if probe.exists() and not probe.is_dir():
+        raise UserError(f"{flag} {out}: {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise UserError(f"{flag} {out}: {probe} is not writable")
