@@ -1,4 +1,4 @@
-"""The artefact: one folder a service runs with onnxruntime, tokenizers and numpy alone.
+"""The artifact: one folder a service runs with onnxruntime, tokenizers and numpy alone.
 
     model.onnx        the graph
     tokenizer.json    (and the other tokenizer files) the tokenizer the model was trained with
@@ -8,9 +8,9 @@
     manifest.json     sha256 and size of every other file, opset, inputs and outputs, tokenizer
                       fingerprint, max sequence length, metrics at export, versions
 
-This module reads and checks artefacts; building them (which needs torch) is in shrinkwrap.package.
+This module reads and checks artifacts; building them (which needs torch) is in shrinkwrap.package.
 It imports nothing beyond the standard library, numpy, onnxruntime, tokenizers and shrinkwrap's
-fingerprint/errors/onnx_tools modules: keep it that way (tests/test_predict.py checks).
+fingerprint/errors/onnx_tools/rundir/batches modules: keep it that way (tests/test_predict.py checks).
 """
 from __future__ import annotations
 
@@ -21,17 +21,15 @@ from typing import Optional
 
 import numpy as np
 
+from shrinkwrap.batches import all_logits
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
+# Label names live in their own file (LABELS_FILE) rather than in the manifest: the manifest cannot
+# hash itself, so anything in it could be edited unnoticed, while labels.json is covered by its hash.
+from shrinkwrap.rundir import LABELS_FILE, MANIFEST_FILE, MODEL_FILE, TOKENIZER_FILE, read_json
 
 FORMAT = "shrinkwrap-artifact"
 FORMAT_VERSION = 1
-MANIFEST_FILE = "manifest.json"
-MODEL_FILE = "model.onnx"
-TOKENIZER_FILE = "tokenizer.json"
-# Label names live in their own file rather than in the manifest: the manifest cannot hash itself,
-# so anything in it could be edited unnoticed, while labels.json is covered by its hash.
-LABELS_FILE = "labels.json"
 CARD_FILE = "README.md"
 REQUIRED_FILES = (MODEL_FILE, TOKENIZER_FILE, LABELS_FILE)
 # The same default as the chain's accuracy pass (bench.eval_batch_size): with the same length-sorted
@@ -50,21 +48,18 @@ def file_entries(folder: Path, names: list[str]) -> dict[str, dict]:
 def read_manifest(folder: Path) -> dict:
     path = folder / MANIFEST_FILE
     if not folder.is_dir():
-        raise UserError(f"{folder}: no such artefact folder")
+        raise UserError(f"{folder}: no such artifact folder")
     if not path.is_file():
-        raise UserError(f"{folder}: no {MANIFEST_FILE} — not a shrinkwrap artefact (build one with "
+        raise UserError(f"{folder}: no {MANIFEST_FILE} — not a shrinkwrap artifact (build one with "
                         f"`shrinkwrap package` or `shrinkwrap run`)")
-    try:
-        manifest = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise UserError(f"{path}: not valid JSON ({str(e).splitlines()[0]}) — rebuild the artefact") from None
+    manifest = read_json(path, "artifact manifest")
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
-        raise UserError(f"{path}: not a shrinkwrap artefact manifest (format must be {FORMAT!r})")
+        raise UserError(f"{path}: not a shrinkwrap artifact manifest (format must be {FORMAT!r})")
     if manifest.get("format_version") != FORMAT_VERSION:
         raise UserError(f"{path}: format_version = {manifest.get('format_version')!r} — this shrinkwrap reads "
                         f"version {FORMAT_VERSION}")
     if not isinstance(manifest.get("files"), dict):
-        raise UserError(f"{path}: no `files` table — rebuild the artefact")
+        raise UserError(f"{path}: no `files` table — rebuild the artifact")
     return manifest
 
 
@@ -76,7 +71,7 @@ def verify(folder: str | Path) -> dict:
     files = manifest["files"]
     for name in REQUIRED_FILES:
         if name not in files:
-            raise UserError(f"{folder}: incomplete artefact — its manifest does not list {name}")
+            raise UserError(f"{folder}: incomplete artifact — its manifest does not list {name}")
     for name, entry in files.items():
         # Names are plain file names: a manifest must never point outside its folder.
         if not isinstance(name, str) or Path(name).name != name or name in (".", "..", MANIFEST_FILE):
@@ -87,20 +82,20 @@ def verify(folder: str | Path) -> dict:
                             f"{{\"sha256\": ..., \"bytes\": ...}}")
         path = folder / name
         if not path.is_file():
-            raise UserError(f"{path}: missing — the artefact's manifest lists it; the artefact is incomplete")
+            raise UserError(f"{path}: missing — the artifact's manifest lists it; the artifact is incomplete")
         size = path.stat().st_size
         if size != entry["bytes"]:
             raise UserError(f"{path}: {size} bytes where the manifest records {entry['bytes']} — modified after "
-                            f"packaging; rebuild the artefact")
+                            f"packaging; rebuild the artifact")
         digest = sha256_file(path)
         if digest != entry["sha256"]:
             raise UserError(f"{path}: sha256 {digest[:16]}… differs from the manifest's {entry['sha256'][:16]}… — "
-                            f"modified after packaging; rebuild the artefact")
+                            f"modified after packaging; rebuild the artifact")
     expected = (manifest.get("tokenizer") or {}).get("fingerprint")
     got = tokenizer_fingerprint_of_file(folder / TOKENIZER_FILE)
     if expected != got:
         raise UserError(f"{folder / TOKENIZER_FILE}: tokenizer fingerprint {got[:12]} differs from the manifest's "
-                        f"{str(expected)[:12]} — rebuild the artefact")
+                        f"{str(expected)[:12]} — rebuild the artifact")
     return manifest
 
 
@@ -123,28 +118,15 @@ class Artifact:
         return int(self.manifest["tokenizer"]["max_length"])
 
     def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
-        """Logits of every text, in order. Texts are grouped by token length so that padding costs
-        little (the same grouping as the chain's accuracy pass)."""
-        from shrinkwrap.onnx_tools import feed
+        """Logits of every text, in order, in the chain's own length-sorted batches (batches.all_logits),
+        so that padding costs little and the logits are those the chain recorded."""
+        from shrinkwrap.onnx_tools import run_logits
 
-        encodings = self.tokenizer.encode_batch(list(texts))
-        lengths = [len(e.ids) for e in encodings]
-        order = np.argsort(lengths, kind="stable")
+        examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
+                    for e in self.tokenizer.encode_batch(list(texts))]
         pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
-        out = np.zeros((len(texts), len(self.labels)), dtype=np.float32)
-        for start in range(0, len(order), batch_size):
-            idx = order[start:start + batch_size]
-            width = max(lengths[i] for i in idx)
-            batch = {"input_ids": np.full((len(idx), width), pad_id, dtype=np.int64),
-                     "attention_mask": np.zeros((len(idx), width), dtype=np.int64),
-                     "token_type_ids": np.zeros((len(idx), width), dtype=np.int64)}
-            for row, i in enumerate(idx):
-                e = encodings[i]
-                batch["input_ids"][row, :lengths[i]] = e.ids
-                batch["attention_mask"][row, :lengths[i]] = e.attention_mask
-                batch["token_type_ids"][row, :lengths[i]] = e.type_ids
-            out[idx] = self.session.run(None, feed(self.session, batch))[0]
-        return out
+        return all_logits(lambda batch: run_logits(self.session, batch),
+                          examples, pad_id, len(self.labels), batch_size)
 
     def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> list[dict]:
         """{"text", "label", "scores": {label: probability}} for each text, in order."""
@@ -156,17 +138,23 @@ class Artifact:
 
 def read_labels(folder: Path) -> list[str]:
     path = folder / LABELS_FILE
-    try:
-        labels = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise UserError(f"{path}: not valid JSON ({str(e).splitlines()[0]})") from None
+    labels = read_json(path, "label list")
     if not isinstance(labels, list) or not labels or not all(isinstance(x, str) for x in labels):
         raise UserError(f"{path}: expected a non-empty list of label names")
     return labels
 
 
+def labels_of_config(config: dict) -> Optional[list[str]]:
+    """Class names by id from a transformers config's id2label (keys are strings once saved as JSON);
+    None when it has none."""
+    id2label = config.get("id2label")
+    if not id2label:
+        return None
+    return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
+
+
 def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None) -> Artifact:
-    """Verifies the artefact (unless `verified` is the manifest `verify` just returned), then loads it.
+    """Verifies the artifact (unless `verified` is the manifest `verify` just returned), then loads it.
     threads = 0 lets ONNX Runtime choose."""
     folder = Path(folder)
     manifest = verified if verified is not None else verify(folder)
@@ -175,7 +163,7 @@ def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None) 
 
 def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 0) -> Artifact:
     """Loads model and tokenizer without checking hashes: for `load`, and for the packager measuring
-    the artefact it is building through this very code path."""
+    the artifact it is building through this very code path."""
     from tokenizers import Tokenizer
 
     from shrinkwrap.onnx_tools import session

@@ -1,6 +1,6 @@
 """Data: a table or a `datasets` folder -> train / validation / test splits and label names.
 
-Texts are tokenised only with the teacher's tokenizer (see `encode`); every later step reuses it.
+Texts are tokenised only with the teacher's tokenizer (batches.encode); every later step reuses it.
 """
 from __future__ import annotations
 
@@ -15,6 +15,7 @@ import numpy as np
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json
 from shrinkwrap.recipe import DataConfig
+from shrinkwrap.textfiles import byte_to_line, check_text_file
 
 SPLITS = ("train", "validation", "test")
 # A text longer than this many characters is cut before tokenisation: the tokenizer truncates to
@@ -52,7 +53,7 @@ def _read_table(path: Path, where: str):
 
     suffix = path.suffix.lower()
     if suffix in (".csv", ".jsonl", ".ndjson", ".json"):
-        _check_text_file(path, where, lines=suffix in (".jsonl", ".ndjson"))
+        check_text_file(path, where, lines=suffix in (".jsonl", ".ndjson"))
     try:
         if suffix == ".csv":
             return pd.read_csv(path, encoding="utf-8", keep_default_na=False, na_values=[""], dtype=str)
@@ -63,56 +64,12 @@ def _read_table(path: Path, where: str):
         if suffix in (".parquet", ".pq"):
             return pd.read_parquet(path)
     except UnicodeDecodeError as e:
-        raise UserError(f"{where}: not UTF-8 text — {_byte_to_line(path, e.start)}") from None
+        raise UserError(f"{where}: not UTF-8 text — {byte_to_line(path, e.start)}") from None
     except ValueError as e:
         raise UserError(f"{where}: cannot parse — {str(e).splitlines()[0] if str(e) else type(e).__name__}") from None
     except Exception as e:  # pandas / pyarrow raise many kinds for a broken file
         raise UserError(f"{where}: cannot parse — {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}") from None
     raise UserError(f"{where}: unsupported file type {suffix!r} — use .csv, .jsonl, .parquet or a datasets folder")
-
-
-def _check_text_file(path: Path, where: str, lines: bool) -> None:
-    """Catches what the table readers report badly: an empty file, a non-UTF-8 byte (pandas reads in
-    chunks, so its byte offsets are not the file's), and a JSON Lines line that does not parse."""
-    try:
-        f = open(path, "rb")
-    except OSError as e:
-        raise UserError(f"{where}: cannot read — {e.strerror or e}") from None
-    with f:
-        seen_any = False
-        for number, line in utf8_lines(f, where):
-            seen_any = seen_any or bool(line.strip())
-            if lines and line.strip():
-                json_line(line, number, where)
-    if not seen_any:
-        raise UserError(f"{where}: the file is empty")
-
-
-def utf8_lines(f, where: str):
-    """(line number, text) of every line of the binary file `f`; a byte that is not UTF-8 stops it with
-    one line naming the line."""
-    for number, raw in enumerate(f, 1):
-        try:
-            yield number, raw.decode("utf-8")
-        except UnicodeDecodeError as e:
-            raise UserError(f"{where}: not UTF-8 text — line {number}, byte {e.start + 1} of the line "
-                            f"(0x{raw[e.start]:02x}); save the file as UTF-8") from None
-
-
-def json_line(line: str, number: int, where: str):
-    import json
-
-    try:
-        return json.loads(line)
-    except ValueError as e:
-        raise UserError(f"{where}: line {number} is not a JSON object — {e.msg} at column {e.colno}") from None
-
-
-def _byte_to_line(path: Path, offset: int) -> str:
-    with open(path, "rb") as f:
-        head = f.read(offset)
-    line = head.count(b"\n") + 1
-    return f"line {line} (byte {offset})"
 
 
 def _read_splits(path: Path, where: str) -> dict:
@@ -141,10 +98,12 @@ def _read_splits(path: Path, where: str) -> dict:
     return {"all": _read_table(path, where)}
 
 
-def _clean(df, cfg: DataConfig, where: str, notes: list[str]):
-    for key, col in (("data.text", cfg.text), ("data.label", cfg.label), ("data.text_pair", cfg.text_pair)):
+def _clean(df, cfg: DataConfig, where: str, notes: list[str], keys: Optional[dict[str, str]] = None):
+    """`keys` names the text, label and pair settings in errors (default: the recipe's data.* keys)."""
+    keys = keys or {"text": "data.text = ", "label": "data.label = ", "text_pair": "data.text_pair = "}
+    for key, col in (("text", cfg.text), ("label", cfg.label), ("text_pair", cfg.text_pair)):
         if col is not None and col not in df.columns:
-            raise UserError(f"{where}: {key} = {col!r} is not a column — columns: {', '.join(map(str, df.columns))}")
+            raise UserError(f"{where}: {keys[key]}{col!r} is not a column — columns: {', '.join(map(str, df.columns))}")
     if len(df) == 0:
         raise UserError(f"{where}: the dataset is empty")
     labels = df[cfg.label]
@@ -187,6 +146,17 @@ def _count(rows: np.ndarray) -> str:
 
 def _rows(rows: np.ndarray) -> str:
     return ", ".join(str(r + 1) for r in rows[:5]) + (f" and {len(rows) - 5} more" if len(rows) > 5 else "")
+
+
+def read_labelled_table(cfg: DataConfig, path: Path, where: str, keys: Optional[dict[str, str]] = None):
+    """One table read and checked like a recipe's data but not split: a file, or the `test` split of
+    a datasets folder. A DataFrame with cleaned text, pair and label columns."""
+    frames = _read_splits(path, where)
+    df = frames.get("all", frames.get("test"))
+    if df is None:
+        raise UserError(f"{where}: the datasets folder has splits {sorted(frames)} and no `test` — bench reads a "
+                        f"table or a folder's test split")
+    return _clean(df, cfg, where, [], keys)
 
 
 def _to_split(df, cfg: DataConfig, index: dict[str, int]) -> Split:
@@ -254,87 +224,6 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
     return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
 
 
-def encode(tokenizer, split: Split, max_length: int, chunk: int = 4096) -> list[dict[str, list[int]]]:
-    """Token ids of every example, unpadded: batches are padded to their own longest example.
-    Tokenised `chunk` texts at a time: the tokenizer's own output objects are many times the size of
-    the ids kept, and would otherwise all be alive at once."""
-    out: list[dict[str, list[int]]] = []
-    for start in range(0, len(split), chunk):
-        texts = split.texts[start:start + chunk]
-        if split.pairs is not None:
-            enc = tokenizer(texts, split.pairs[start:start + chunk], truncation=True, max_length=max_length)
-        else:
-            enc = tokenizer(texts, truncation=True, max_length=max_length)
-        keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
-        out.extend({k: enc[k][i] for k in keys} for i in range(len(texts)))
-    return out
-
-
-def collate(examples: list[dict[str, list[int]]], pad_id: int, length: Optional[int] = None) -> dict[str, np.ndarray]:
-    """Pads a batch to its longest example (or to `length`) and returns int64 arrays."""
-    width = length or max(len(e["input_ids"]) for e in examples)
-    out = {}
-    for key in examples[0]:
-        fill = pad_id if key == "input_ids" else 0
-        arr = np.full((len(examples), width), fill, dtype=np.int64)
-        for i, e in enumerate(examples):
-            row = e[key][:width]
-            arr[i, : len(row)] = row
-        out[key] = arr
-    return out
-
-
-def take(examples, idx) -> list[dict]:
-    """The encoded examples at `idx`, from a list or from a table on disk (transfer.ArrowExamples)."""
-    if isinstance(examples, list):
-        return [examples[i] for i in idx]
-    return examples.take(idx)
-
-
-def lengths(examples) -> np.ndarray:
-    if isinstance(examples, list):
-        return np.array([len(e["input_ids"]) for e in examples], dtype=np.int64)
-    return examples.lengths()
-
-
-class Joined:
-    """Several runs of encoded examples read as one: the labelled ones in memory, then the transfer
-    texts on disk. Index i of the whole is found in the part it falls into."""
-
-    def __init__(self, *parts):
-        self.parts = [p for p in parts if len(p)]
-        self.starts = np.cumsum([0] + [len(p) for p in self.parts])
-
-    def __len__(self) -> int:
-        return int(self.starts[-1])
-
-    def lengths(self) -> np.ndarray:
-        return np.concatenate([lengths(p) for p in self.parts]) if self.parts else np.zeros(0, np.int64)
-
-    def take(self, idx) -> list[dict]:
-        idx = np.asarray(idx, dtype=np.int64)
-        part = np.searchsorted(self.starts, idx, side="right") - 1
-        out: list = [None] * len(idx)
-        for p in np.unique(part):
-            where = np.flatnonzero(part == p)
-            for j, row in zip(where, take(self.parts[p], idx[where] - self.starts[p])):
-                out[j] = row
-        return out
-
-
-def length_batches(examples, pad_id: int, batch_size: int, rows: Optional[np.ndarray] = None):
-    """Yields (positions, padded batch) over the examples (or over `rows` of them, positions counted in
-    `rows`), grouped by length so that padding costs little."""
-    rows = np.arange(len(examples)) if rows is None else np.asarray(rows)
-    order = np.argsort(lengths(examples)[rows], kind="stable")
-    for start in range(0, len(order), batch_size):
-        idx = order[start:start + batch_size]
-        yield idx, collate(take(examples, rows[idx]), pad_id)
-
-
-def all_logits(fn, examples, pad_id: int, n_labels: int, batch_size: int = 64) -> np.ndarray:
-    """Logits of every example from `fn(batch) -> array`, in the examples' order."""
-    out = np.zeros((len(examples), n_labels), dtype=np.float32)
-    for idx, batch in length_batches(examples, pad_id, batch_size):
-        out[idx] = fn(batch)
-    return out
+# Transitional: these moved to shrinkwrap.batches; re-exported until the other modules import them
+# from there (remove after the merge).
+from shrinkwrap.batches import Joined, all_logits, collate, encode, length_batches, lengths, take  # noqa: E402,F401

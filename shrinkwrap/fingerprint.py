@@ -18,8 +18,9 @@ def sha256_json(obj: Any) -> str:
     return hashlib.sha256(json.dumps(obj, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
 
 
-def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
-    h = hashlib.sha256()
+def sha256_file(path: str | Path, chunk: int = 1 << 20, head: bytes = b"") -> str:
+    """Of `head` followed by the file's bytes, read in blocks."""
+    h = hashlib.sha256(head)
     with open(path, "rb") as f:
         while block := f.read(chunk):
             h.update(block)

@@ -7,11 +7,11 @@ import pickle
 import warnings
 from pathlib import Path
 
+import numpy as np
 import torch
 from torch import nn
 
 from shrinkwrap.errors import UserError
-from shrinkwrap.fingerprint import tokenizer_fingerprint_of
 
 INT8_WEIGHTS = "model_int8.pt"
 INT8_INFO = "int8.json"
@@ -60,16 +60,24 @@ def check_model_folder(path: Path, prefix: str = "") -> None:
                         + " — other weight formats can run code when loaded and are refused")
 
 
-def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = False):
+def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = False, what: str | None = None):
+    """A fast (tokenizers-backed) transformers tokenizer from a folder. `what` starts any error line
+    (default: the recipe's teacher.base)."""
     from transformers import AutoTokenizer
 
+    what = what or f"{where}: teacher.base = {base!r}"
     try:
         tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
-    except OSError as e:
-        raise UserError(f"{where}: teacher.base = {base!r} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
+    except (OSError, ValueError) as e:
+        raise UserError(f"{what} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
     if not getattr(tok, "is_fast", False):
-        raise UserError(f"{where}: teacher.base = {base!r} — only fast (tokenizers-backed) tokenizers are supported")
+        raise UserError(f"{what} — only fast (tokenizers-backed) tokenizers are supported")
     return tok
+
+
+def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:
+    """A padded numpy batch (batches.collate) as tensors, sharing memory."""
+    return {k: torch.from_numpy(v) for k, v in batch.items()}
 
 
 def load_classifier(path: str, num_labels: int | None = None, label_names: list[str] | None = None,
@@ -171,10 +179,3 @@ def load_int8(folder: str | Path) -> nn.Module:
                         f"failed)") from None
     qmodel.load_state_dict(state)
     return qmodel.eval()
-
-
-def check_same_tokenizer(expected: str, tokenizer, what: str, reference: str = "the teacher") -> None:
-    got = tokenizer_fingerprint_of(tokenizer)
-    if got != expected:
-        raise UserError(f"{what}: its tokenizer (fingerprint {got[:12]}) differs from {reference}'s ({expected[:12]}) — "
-                        f"a model must be run with the tokenizer it was trained with")

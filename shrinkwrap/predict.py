@@ -1,4 +1,4 @@
-"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from an artefact.
+"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from an artifact.
 
 Texts come from the arguments, from --file (one per line), or from stdin (one per line). All input
 is read and checked before the first line is printed, so a bad line never leaves half an output;
@@ -15,6 +15,7 @@ from typing import BinaryIO, Iterator, Optional, TextIO
 
 from shrinkwrap.artifact import load, verify
 from shrinkwrap.errors import EXIT_OK, UserError
+from shrinkwrap.textfiles import utf8_lines
 
 
 CHUNK = 4096  # texts classified and written at a time: memory stays flat on a file of millions of lines
@@ -23,15 +24,9 @@ CHUNK = 4096  # texts classified and written at a time: memory stays flat on a f
 def _check_lines(stream: BinaryIO, where: str, copy: Optional[BinaryIO] = None) -> int:
     """Reads the stream once, line by line, and stops at the first line that is not UTF-8 or is empty;
     returns the number of lines. With `copy`, the bytes are written there as they are read."""
+    raw = (line.encode("utf-8") if isinstance(line, str) else line for line in stream)
     count = 0
-    for count, raw in enumerate(stream, 1):
-        raw = raw.encode("utf-8") if isinstance(raw, str) else raw
-        if copy is not None:
-            copy.write(raw)
-        try:
-            line = raw.decode("utf-8")
-        except UnicodeDecodeError as e:
-            raise UserError(f"{where}: not UTF-8 text — line {count}, byte {e.start + 1} of the line") from None
+    for count, line in utf8_lines(raw, where, copy):
         if not line.strip():
             raise UserError(f"{where}: line {count} is empty — one text per line, none empty")
     return count
@@ -96,7 +91,7 @@ def read_texts(texts: list[str], file: Optional[str], stdin) -> Iterator[list[st
 
 def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
                 stdin: TextIO = sys.stdin, stdout: TextIO = sys.stdout) -> int:
-    manifest = verify(artifact)  # before reading stdin, so a bad artefact fails fast
+    manifest = verify(artifact)  # before reading stdin, so a bad artifact fails fast
     if (manifest.get("tokenizer") or {}).get("text_pair"):
         raise UserError(f"{artifact}: this model classifies pairs of texts; predict takes single texts")
     chunks = read_texts(texts, file, stdin)

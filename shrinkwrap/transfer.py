@@ -10,7 +10,6 @@ when the table is built on first use by a step, under the run folder's cache.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import shutil
 from pathlib import Path
@@ -19,8 +18,11 @@ from typing import Iterator, Optional
 import numpy as np
 
 from shrinkwrap import distributed
-from shrinkwrap.data import MAX_CHARS, _check_text_file, json_line, utf8_lines
+from shrinkwrap.data import MAX_CHARS
 from shrinkwrap.errors import StepFailed, UserError
+from shrinkwrap.fingerprint import sha256_file
+from shrinkwrap.rundir import scratch
+from shrinkwrap.textfiles import check_text_file, json_line, utf8_lines
 
 CHUNK = 10_000          # rows read, checked and written at a time
 
@@ -58,7 +60,7 @@ def _table_rows(path: Path, suffix: str, column: Optional[str], where: str) -> I
     if suffix == ".csv":
         import pandas as pd
 
-        _check_text_file(path, where, lines=False)  # one pass, so that a bad byte is named by its line
+        check_text_file(path, where, lines=False)  # one pass, so that a bad byte is named by its line
         try:
             chunks = pd.read_csv(path, encoding="utf-8", keep_default_na=False, na_values=[""], dtype=str,
                                  chunksize=CHUNK)
@@ -88,11 +90,7 @@ def _table_rows(path: Path, suffix: str, column: Optional[str], where: str) -> I
 
 def fingerprint(path: Path, column: Optional[str]) -> str:
     """Of the file's bytes (read in blocks) and the column read from it."""
-    digest = hashlib.sha256(json.dumps({"column": column, "max_chars": MAX_CHARS}).encode())
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+    return sha256_file(path, head=json.dumps({"column": column, "max_chars": MAX_CHARS}).encode())
 
 
 class TransferTexts:
@@ -118,17 +116,19 @@ class TransferTexts:
                 datasets.disable_progress_bars()
             table = self.folder(cache_root) / "texts"
             if not (table / "dataset_info.json").exists():
-                scratch = table.with_name("texts.partial")
-                shutil.rmtree(scratch, ignore_errors=True)
-                built = datasets.Dataset.from_generator(
-                    _generate, gen_kwargs={"path": str(self.path), "column": self.column, "where": self.where},
-                    features=datasets.Features({"text": datasets.Value("string")}),
-                    cache_dir=str(scratch / "build"))
-                built.save_to_disk(str(scratch / "table"))
-                del built
-                shutil.rmtree(table, ignore_errors=True)
-                (scratch / "table").replace(table)
-                shutil.rmtree(scratch, ignore_errors=True)
+                # The generator's own cache lives outside the scratch folder: only the saved table is
+                # renamed into place.
+                build = table.with_name(".build-texts")
+                shutil.rmtree(build, ignore_errors=True)
+                try:
+                    with scratch(table) as tmp:
+                        built = datasets.Dataset.from_generator(
+                            _generate, gen_kwargs={"path": str(self.path), "column": self.column, "where": self.where},
+                            features=datasets.Features({"text": datasets.Value("string")}), cache_dir=str(build))
+                        built.save_to_disk(str(tmp))
+                        del built
+                finally:
+                    shutil.rmtree(build, ignore_errors=True)
             self._texts = datasets.load_from_disk(str(table))
         return self._texts
 

@@ -13,7 +13,7 @@ from typing import Optional, Union
 
 import numpy as np
 
-from shrinkwrap.data import collate
+from shrinkwrap.batches import collate
 from shrinkwrap.errors import UserError
 
 REAL = "real"

@@ -1,21 +1,19 @@
 """Anything the benchmark can measure, behind one interface: `logits(batch) -> array`.
 
 A target is a transformers classification folder (fp32 safetensors or a shrinkwrap int8 folder),
-a folder holding model.onnx, a bare .onnx file, or an artefact (shrinkwrap.artifact; verified first).
+a folder holding model.onnx, a bare .onnx file, or an artifact (shrinkwrap.artifact; verified first).
 """
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Optional
 
 import numpy as np
 
-from shrinkwrap.artifact import is_artifact
+from shrinkwrap.artifact import is_artifact, labels_of_config
 from shrinkwrap.errors import UserError
-
-ONNX_FILE = "model.onnx"
+from shrinkwrap.rundir import CONFIG_FILE, MODEL_FILE, TOKENIZER_FILE, read_json_or_none
 
 
 @dataclass
@@ -56,13 +54,6 @@ class Target:
         measurement (onnxruntime's threads keep spinning after a run and would steal CPU from it)."""
         self.logits = None
         self.extra.clear()
-
-
-def _config_labels(config: dict) -> Optional[list[str]]:
-    id2label = config.get("id2label")
-    if not id2label:
-        return None
-    return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
 
 
 # Ops that pass token ids through unchanged on their way to the embedding lookup.
@@ -108,8 +99,7 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     import torch
     import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
 
-    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8
-    from shrinkwrap.train import to_torch
+    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8, to_torch
 
     torch.set_num_threads(threads)
     ready()
@@ -125,7 +115,7 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     names = ["input_ids", "attention_mask"] + (["token_type_ids"] if getattr(model.config, "type_vocab_size", 0) else [])
     return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder,
                   extra={"vocab_size": getattr(model.config, "vocab_size", None)},
-                  label_names=_config_labels(model.config.to_dict()),
+                  label_names=labels_of_config(model.config.to_dict()),
                   max_length=getattr(model.config, "max_position_embeddings", None))
 
 
@@ -138,23 +128,21 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
     ready()
     sess = session(path, threads)
     files = [path] + [p for p in path.parent.glob(path.name + "*.data")]
-    tok = path.parent if (path.parent / "tokenizer.json").exists() else None
+    tok = path.parent if (path.parent / TOKENIZER_FILE).exists() else None
     # A graph written by the chain has its model's config.json beside it: label names and positions.
-    try:
-        config = json.loads((path.parent / "config.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        config = {}
+    config = read_json_or_none(path.parent / CONFIG_FILE)
+    config = config if isinstance(config, dict) else {}
     outputs = sess.get_outputs()
     has_head = len(outputs[0].shape) == 2   # [batch, classes]; an encoder gives [batch, tokens, hidden]
     return Target("onnx", path, files, lambda b: run_logits(sess, b), [i.name for i in sess.get_inputs()],
                   tokenizer_dir=tok, extra={"session": sess},
-                  label_names=_config_labels(config) if has_head else None,
+                  label_names=labels_of_config(config) if has_head else None,
                   max_length=config.get("max_position_embeddings"))
 
 
 def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
-    """An artefact: its hashes are checked before anything is loaded; labels and max length are its own."""
-    from shrinkwrap.artifact import MODEL_FILE, read_labels, verify
+    """An artifact: its hashes are checked before anything is loaded; labels and max length are its own."""
+    from shrinkwrap.artifact import read_labels, verify
 
     manifest = verify(folder)
     target = _onnx(folder / MODEL_FILE, threads, ready)
@@ -171,14 +159,14 @@ def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = 
     path = Path(path)
     if not path.exists():
         raise UserError(f"{path}: no such file or folder — expected a transformers folder, a folder with "
-                        f"{ONNX_FILE}, or a .onnx file")
+                        f"{MODEL_FILE}, or a .onnx file")
     if path.is_file() and path.suffix == ".onnx":
         return _onnx(path, threads, ready)
     if path.is_dir() and is_artifact(path):
         return _artifact(path, threads, ready)
-    if path.is_dir() and (path / ONNX_FILE).exists():
-        return _onnx(path / ONNX_FILE, threads, ready)
-    if path.is_dir() and (path / "config.json").exists():
+    if path.is_dir() and (path / MODEL_FILE).exists():
+        return _onnx(path / MODEL_FILE, threads, ready)
+    if path.is_dir() and (path / CONFIG_FILE).exists():
         return _pytorch(path, threads, ready)
-    raise UserError(f"{path}: not a benchmark target — expected a transformers folder, a folder with {ONNX_FILE}, "
+    raise UserError(f"{path}: not a benchmark target — expected a transformers folder, a folder with {MODEL_FILE}, "
                     f"or a .onnx file")

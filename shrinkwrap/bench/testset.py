@@ -27,33 +27,23 @@ class LabelledTable:
 
 def read_table(path: Path, text: str, label: str, text_pair: Optional[str] = None) -> LabelledTable:
     """Reads and checks the table with the same reader and checks as a recipe's data (shrinkwrap.data)."""
-    from shrinkwrap.data import _clean, _read_splits
+    from shrinkwrap.data import read_labelled_table
     from shrinkwrap.recipe import DataConfig
 
-    where = f"--data {path}"
-    frames = _read_splits(path, where)
-    df = frames.get("all", frames.get("test"))
-    if df is None:
-        raise UserError(f"{where}: the datasets folder has splits {sorted(frames)} and no `test` — bench reads a "
-                        f"table or a folder's test split")
-    for option, column in (("--text", text), ("--label", label), ("--text-pair", text_pair)):
-        if column is not None and column not in df.columns:
-            raise UserError(f"{where}: {option} {column!r} is not a column — columns: {', '.join(map(str, df.columns))}")
-    df = _clean(df, DataConfig(path=str(path), text=text, label=label, text_pair=text_pair), where, [])
+    cfg = DataConfig(path=str(path), text=text, label=label, text_pair=text_pair)
+    df = read_labelled_table(cfg, path, f"--data {path}",
+                             keys={"text": "--text ", "label": "--label ", "text_pair": "--text-pair "})
     return LabelledTable(path=path, texts=df[text].tolist(), labels=df[label].tolist(),
                          pairs=df[text_pair].tolist() if text_pair else None)
 
 
 def _tokenizer(target: Target):
-    from transformers import AutoTokenizer
+    from shrinkwrap.models import load_tokenizer
 
     if target.tokenizer_dir is None:
         raise UserError(f"{target.path}: no tokenizer beside the model (tokenizer.json) — --data needs the "
                         f"tokenizer the model was trained with")
-    try:
-        return AutoTokenizer.from_pretrained(str(target.tokenizer_dir), use_fast=True)
-    except (OSError, ValueError) as e:
-        raise UserError(f"{target.tokenizer_dir}: cannot load its tokenizer — {str(e).splitlines()[0]}") from None
+    return load_tokenizer(str(target.tokenizer_dir), what=str(target.tokenizer_dir))
 
 
 def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None) -> Callable[[Target], Inputs]:
@@ -61,15 +51,18 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
     if table is not None:
         import transformers.models.auto.tokenization_auto  # noqa: F401  (now, not inside the memory window)
 
+        import shrinkwrap.models  # noqa: F401  (its loader, likewise)
+
     def build(target: Target) -> Inputs:
-        from shrinkwrap.data import Split, encode
+        from shrinkwrap.batches import encode
+        from shrinkwrap.data import Split
 
         if table is None:
             return Inputs()
         names = target.label_names
         if not names:
             raise UserError(f"{target.path}: no label names (a classification head with id2label in config.json, "
-                            f"or an artefact's labels) — accuracy on --data needs them")
+                            f"or an artifact's labels) — accuracy on --data needs them")
         index = {n: i for i, n in enumerate(names)}
         unknown = next((i for i, v in enumerate(table.labels) if v not in index), None)
         if unknown is not None:
