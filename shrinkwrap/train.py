@@ -16,11 +16,13 @@ import numpy as np
 import torch
 from torch import nn
 from tqdm.auto import tqdm
+from transformers import get_linear_schedule_with_warmup
 
 from shrinkwrap import distributed
-from shrinkwrap.bench.accuracy import classification_metrics
+from shrinkwrap.batches import all_logits, collate, take
 from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
-from shrinkwrap.data import all_logits, collate, take
+from shrinkwrap.metrics import classification_metrics
+from shrinkwrap.models import to_torch
 
 
 @dataclass
@@ -64,10 +66,6 @@ def seed_everything(seed: int) -> None:
     torch.manual_seed(seed)
 
 
-def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:
-    return {k: torch.from_numpy(v) for k, v in batch.items()}
-
-
 @torch.no_grad()
 def predict_logits(model: nn.Module, examples: list[dict], pad_id: int, batch_size: int = 64) -> np.ndarray:
     """Logits for every example, batched by similar length so that padding costs little."""
@@ -91,14 +89,6 @@ def _optimizer(model: nn.Module, s: TrainSettings) -> torch.optim.Optimizer:
                               {"params": no_decay, "weight_decay": 0.0}], lr=s.learning_rate)
 
 
-def _linear_schedule(optimizer, warmup: int, total: int):
-    def factor(step: int) -> float:
-        if step < warmup:
-            return (step + 1) / max(1, warmup)
-        return max(0.0, (total - step) / max(1, total - warmup))
-    return torch.optim.lr_scheduler.LambdaLR(optimizer, factor)
-
-
 def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResult):
     model.load_state_dict(saved["model"])
     optimizer.load_state_dict(saved["optimizer"])
@@ -115,7 +105,7 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
         checkpoint: Optional[Checkpoint] = None) -> FitResult:
     """Trains `model` in place; on return it holds the weights of the best validation epoch.
 
-    `train` holds encoded examples (a list, or rows on disk read a batch at a time: see data.take);
+    `train` holds encoded examples (a list, or rows on disk read a batch at a time: see batches.take);
     `train_labels` their class ids, -1 where an example has none (a distillation transfer text).
 
     With `checkpoint`, the whole training state is saved every `checkpoint.every` steps and at each epoch
@@ -138,7 +128,7 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
     # Accelerate wraps the model for data parallelism when several processes were launched (the
     # wrapper averages gradients across them) and moves it to the GPU when there is one.
     wrapped, optimizer = accelerator.prepare(model, optimizer)
-    schedule = _linear_schedule(optimizer, int(s.warmup_ratio * total), total)
+    schedule = get_linear_schedule_with_warmup(optimizer, int(s.warmup_ratio * total), total)
     generator = torch.Generator().manual_seed(s.seed)
     n_classes = model.config.num_labels
     majority = np.bincount(val_labels, minlength=n_classes).max() / len(val_labels)

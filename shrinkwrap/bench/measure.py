@@ -13,15 +13,15 @@ from typing import Callable, Optional
 
 import numpy as np
 
-from shrinkwrap.bench.accuracy import classification_metrics
+from shrinkwrap.batches import all_logits
 from shrinkwrap.bench.grid import REAL, Point, point_batches
 from shrinkwrap.bench.latency import summarize, throughput_per_s, time_calls
 from shrinkwrap.bench.memory import PeakWindow
 from shrinkwrap.bench.reference import EVERY_S, Reference, normalise
 from shrinkwrap.bench.reference import describe as describe_reference
 from shrinkwrap.bench.targets import Target, load_target
-from shrinkwrap.data import all_logits
 from shrinkwrap.errors import UserError
+from shrinkwrap.metrics import classification_metrics
 
 
 @dataclass

@@ -29,8 +29,9 @@ def settings(cfg, seed: int, train) -> TrainSettings:
 
 def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
     """Inverse-frequency weights normalised to mean 1 (the `balanced` rule of scikit-learn)."""
-    counts = np.bincount(labels, minlength=n_classes).astype(float)
-    return torch.tensor(len(labels) / (n_classes * np.maximum(counts, 1)), dtype=torch.float32)
+    from sklearn.utils.class_weight import compute_class_weight
+
+    return torch.tensor(compute_class_weight("balanced", classes=np.arange(n_classes), y=labels), dtype=torch.float32)
 
 
 def run(ctx, src: None, out: Path) -> dict:
