@@ -275,10 +275,6 @@ class Recipe(_Section):
     def fingerprint(self) -> str:
         return sha256_json(self.model_dump(mode="json"))
 
-    def section_fingerprint(self, *sections: str) -> str:
-        dump = self.model_dump(mode="json")
-        return sha256_json({s: dump[s] for s in sections})
-
 
 def _place(loc: tuple) -> str:
     out = ""
@@ -401,51 +397,7 @@ def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = No
     return recipe
 
 
-def key_paths(model: type[BaseModel] = Recipe, prefix: str = "") -> list[tuple[str, Any]]:
-    """(dotted key path, field info) of every leaf key of the recipe, in schema order."""
-    out = []
-    for name, info in model.model_fields.items():
-        if info.exclude:
-            continue
-        ann = info.annotation
-        if isinstance(ann, type) and issubclass(ann, BaseModel):
-            out += key_paths(ann, f"{prefix}{name}.")
-        else:
-            out.append((prefix + name, info))
-    return out
+if __name__ == "__main__":  # python -m shrinkwrap.recipe [--write-readme README.md]: see shrinkwrap.recipe_doc
+    from shrinkwrap.recipe_doc import main
 
-
-def key_table() -> str:
-    """The recipe's keys as a Markdown table (README.md carries it; a test keeps the two in step)."""
-    from pydantic_core import PydanticUndefined
-
-    rows = ["| key | default | meaning |", "|---|---|---|"]
-    for path, info in key_paths():
-        if info.default is not PydanticUndefined:
-            default = json.dumps(info.default)
-        elif info.default_factory is not None:
-            default = json.dumps(info.default_factory())
-        else:
-            default = "required"
-        rows.append(f"| `{path}` | `{default}` | {(info.description or '').replace('|', '/')} |")
-    return "\n".join(rows)
-
-
-README_BEGIN, README_END = "<!-- recipe keys: begin -->", "<!-- recipe keys: end -->"
-
-
-def with_key_table(readme: str) -> str:
-    """README text with the block between the markers replaced by the current key table."""
-    head, rest = readme.split(README_BEGIN, 1)
-    _, tail = rest.split(README_END, 1)
-    return f"{head}{README_BEGIN}\n{key_table()}\n{README_END}{tail}"
-
-
-if __name__ == "__main__":
-    import sys
-
-    if sys.argv[1:2] == ["--write-readme"]:  # python -m shrinkwrap.recipe --write-readme README.md
-        target = Path(sys.argv[2])
-        target.write_text(with_key_table(target.read_text(encoding="utf-8")), encoding="utf-8")
-    else:
-        print(key_table())
+    main()

@@ -1,7 +1,7 @@
 """The README documents what the code does: every recipe key, every command."""
 from pathlib import Path
 
-from shrinkwrap.recipe import key_paths, with_key_table
+from shrinkwrap.recipe_doc import key_paths, with_key_table
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
