@@ -48,17 +48,6 @@ def barrier() -> None:
         state().wait_for_everyone()
 
 
-def gather(obj):
-    """Every process's `obj`, in rank order, on every process."""
-    if not launched():
-        return [obj]
-    import torch.distributed as dist
-
-    out = [None] * world_size()
-    dist.all_gather_object(out, obj)
-    return out
-
-
 def accelerator(precision: str, log=print):
     """An Accelerator for one training run. Mixed precision is used on a GPU only: on a CPU it is
     ignored with a notice, since CPU autocast is slower than fp32 for these models."""

@@ -142,7 +142,7 @@ class TransferTexts:
         several processes every one calls this; the main process builds the tables, the others wait."""
         import datasets
 
-        # the same keys as data.encode gives the labelled texts, so that both go into one batch
+        # the same keys as batches.encode gives the labelled texts, so that both go into one batch
         keys = [k for k in ("attention_mask", "token_type_ids") if k in tokenizer(["a"], truncation=True)]
 
         def tokenize(rows):
@@ -186,7 +186,7 @@ def check(path: Path, column: Optional[str], where: str) -> TransferTexts:
 
 class ArrowExamples:
     """Encoded texts in a memory-mapped Arrow table, read a batch of rows at a time. Rows come back as
-    `data.encode` gives them (input_ids, and the attention mask / segment ids the model takes)."""
+    `batches.encode` gives them (input_ids, and the attention mask / segment ids the model takes)."""
 
     def __init__(self, table, keys: list[str]):
         self.table, self.keys = table, keys

@@ -35,8 +35,8 @@ def _student(tiny_run):
 
 
 def _batch(examples):
-    from shrinkwrap.data import collate
-    from shrinkwrap.train import to_torch
+    from shrinkwrap.batches import collate
+    from shrinkwrap.models import to_torch
 
     ex, labels, pad = examples
     return to_torch(collate(ex, pad)), torch.as_tensor(labels)

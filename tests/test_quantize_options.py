@@ -34,7 +34,8 @@ def test_tiny_graphs_pass_checker_and_match_pytorch_on_the_test_texts(tiny_run, 
     import torch
     from transformers import AutoTokenizer
 
-    from shrinkwrap.data import collate, encode, load_dataset
+    from shrinkwrap.batches import collate, encode
+    from shrinkwrap.data import load_dataset
     from shrinkwrap.models import load_classifier
     from shrinkwrap.onnx_tools import run_logits, session
     from shrinkwrap.recipe import load_recipe
@@ -201,7 +202,8 @@ def test_the_shipped_graph_does_not_depend_on_timing(tiny_run, tmp_path, monkeyp
     """Timings are recorded, but the plain graph measured faster must not win: the same recipe has to
     ship the same artefact whatever the machine's load (a choice by speed once changed the final
     accuracy between two runs of the demo)."""
-    from shrinkwrap.data import collate, encode, Split
+    from shrinkwrap.batches import collate, encode
+    from shrinkwrap.data import Split
     from shrinkwrap.models import load_classifier, load_tokenizer
     from shrinkwrap.recipe import ExportConfig
     from shrinkwrap.steps import export

@@ -115,7 +115,8 @@ def test_a_finished_step_with_another_tokenizer_is_refused(tiny_run_copy, tmp_pa
 def test_pair_encoding_matches_the_tokenizers_own_pair_output(tiny_base):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.data import Split, encode
+    from shrinkwrap.batches import encode
+    from shrinkwrap.data import Split
 
     tok = AutoTokenizer.from_pretrained(tiny_base)
     split = Split(texts=["my router is offline", "refund please"], pairs=["since monday", "charged twice"],

@@ -9,7 +9,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from shrinkwrap.data import Joined, encode, Split, lengths, length_batches, take
+from shrinkwrap.batches import Joined, encode, lengths, length_batches, take
+from shrinkwrap.data import Split
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import tokenizer_fingerprint_of
 from shrinkwrap.models import load_tokenizer
@@ -48,7 +49,7 @@ def test_each_file_type_reads_the_texts_a_table_reader_reads(tmp_path, kind):
 
 
 def test_rows_on_disk_are_the_tokenizers_own_output(tmp_path, tiny_base):
-    """Reference: the transformers tokenizer called on the same texts (data.encode is that call)."""
+    """Reference: the transformers tokenizer called on the same texts (batches.encode is that call)."""
     path = _write(tmp_path, "txt")
     tok = load_tokenizer(str(tiny_base), "test")
     examples = check(path, "text", str(path)).encoded(tmp_path / "cache", tok, tokenizer_fingerprint_of(tok), 8)

@@ -98,7 +98,7 @@ def test_unseen_words_fall_back_as_wordpiece_does_with_the_smaller_vocabulary(tr
 def test_trimmed_embeddings_are_the_gathered_rows_and_logits_are_unchanged(trimmed):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.data import encode
+    from shrinkwrap.batches import encode
     from shrinkwrap.models import load_classifier
     from shrinkwrap.train import predict_logits
 
