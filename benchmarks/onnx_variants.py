@@ -48,8 +48,7 @@ def build(folder: Path, calibration: list[dict]) -> dict[str, dict]:
     import torch
 
     from shrinkwrap.models import load_classifier, resolve_base
-    from shrinkwrap.steps.export import export_onnx, fuse
-    from shrinkwrap.steps.quantize_onnx import quantize, quantize_static_qdq
+    from shrinkwrap.onnx_ops import export_onnx, fuse, quantize_dynamic, quantize_static_qdq
 
     torch.manual_seed(0)
     model = load_classifier(resolve_base("bundled"), label_names=[f"class{i}" for i in range(5)])
@@ -62,7 +61,7 @@ def build(folder: Path, calibration: list[dict]) -> dict[str, dict]:
                 ops = WEIGHT_OPS[g] + ([EMBEDDING_OPS[g]] if emb else [])
                 name = f"int8 {g} {'per-channel' if per_channel else 'per-tensor'} {'emb int8' if emb else 'emb fp32'}"
                 dst = folder / (name.replace(" ", "_") + ".onnx")
-                quantize(src, dst, per_channel, ops)
+                quantize_dynamic(src, dst, per_channel, ops)
                 variants[name] = {"path": dst, "graph": g, "precision": "int8 dynamic", "per_channel": per_channel,
                                   "embeddings_int8": emb, "op_types": ops}
     dst = folder / "static.onnx"

@@ -1,4 +1,5 @@
-"""ONNX Runtime helpers shared by the export and quantisation steps and by the benchmark."""
+"""ONNX Runtime sessions and feeds, torch-free: used by the artifact reader and predict path, by the
+benchmark and by shrinkwrap.onnx_ops (the conversions, which need torch and onnx)."""
 from __future__ import annotations
 
 from pathlib import Path

@@ -58,7 +58,7 @@ def _graph_facts(path: Path, vocab_size: Optional[int]) -> dict:
     """Read from the graph itself, whatever made it: opset, inputs, outputs, and what is int8."""
     import onnx
 
-    from shrinkwrap.steps.quantize_onnx import int8_summary
+    from shrinkwrap.onnx_ops import int8_summary
 
     onnx.checker.check_model(str(path), full_check=True)  # the onnx package's own validity check
     graph = onnx.load(str(path), load_external_data=False)
@@ -82,7 +82,7 @@ def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, des
     artefact before it is sealed; `card(manifest)` renders README.md."""
     from shrinkwrap.bench.machine import library_versions
     from shrinkwrap.rundir import swap_in
-    from shrinkwrap.steps.quantize_onnx import vocab_size_of
+    from shrinkwrap.onnx_ops import vocab_size_of
 
     check_destination(out)
     for name in (MODEL_FILE, TOKENIZER_FILE):
@@ -269,8 +269,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
     from shrinkwrap.data import Split, collate, encode
     from shrinkwrap.models import load_classifier
     from shrinkwrap.recipe import OnnxQuantizeConfig
-    from shrinkwrap.steps.export import export_checked
-    from shrinkwrap.steps.quantize_onnx import agreement, quantize
+    from shrinkwrap.onnx_ops import agreement, export_checked, quantize_dynamic
 
     log(f"loading {model_dir}")
     model = load_classifier(str(model_dir))
@@ -291,7 +290,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
     if int8:
         log("quantising to int8 (ONNX Runtime dynamic)")
         q = OnnxQuantizeConfig(per_channel=per_channel)
-        quantize(export_dir / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.op_types)
+        quantize_dynamic(export_dir / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.op_types)
         facts.update(quantization={"method": "ONNX Runtime dynamic int8", "per_channel": q.per_channel,
                                    "op_types": list(q.op_types)},
                      **agreement(export_dir / MODEL_FILE, tmp / MODEL_FILE, examples, pad_id, len(model.config.id2label),

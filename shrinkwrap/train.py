@@ -230,3 +230,14 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
                          f"the majority class ({majority:.3f})")
     model.eval()
     return result
+
+
+def settings_from(section, train, **given) -> TrainSettings:
+    """The training settings of a recipe section: each TrainSettings field the section has (the teacher's
+    has them all; the student's has no clipping or stall keys, which keep their defaults), the train
+    section's accumulation and precision, and `given` over those (e.g. the seed of one run)."""
+    from dataclasses import fields
+
+    keys = [f.name for f in fields(TrainSettings) if f.name in type(section).model_fields]
+    return TrainSettings(**{k: getattr(section, k) for k in keys} | {
+        "gradient_accumulation_steps": train.gradient_accumulation_steps, "precision": train.precision} | given)

@@ -22,7 +22,7 @@ def _ops(path: Path) -> Counter:
 def tiny_graphs(tiny_run, tmp_path_factory):
     """The tiny student exported twice: plain, and fused by ONNX Runtime's transformer optimizer."""
     from shrinkwrap.models import load_classifier
-    from shrinkwrap.steps.export import export_onnx, fuse
+    from shrinkwrap.onnx_ops import export_onnx, fuse
 
     folder = tmp_path_factory.mktemp("graphs")
     model = load_classifier(str(tiny_run / "student"))
@@ -62,7 +62,7 @@ def test_tiny_graphs_pass_checker_and_match_pytorch_on_the_test_texts(tiny_run, 
     ("fused", ["MatMul", "Attention", "EmbedLayerNormalization"], True),
 ])
 def test_which_op_types_quantise_the_embeddings(graph, op_types, embeddings, tiny_graphs, tmp_path):
-    from shrinkwrap.steps.quantize_onnx import int8_summary, quantize
+    from shrinkwrap.onnx_ops import int8_summary, quantize_dynamic as quantize
 
     src, dst = tiny_graphs[graph], tmp_path / "int8.onnx"
     quantize(src, dst, per_channel=False, op_types=op_types)
@@ -75,7 +75,7 @@ def test_which_op_types_quantise_the_embeddings(graph, op_types, embeddings, tin
 
 
 def test_per_channel_gives_one_scale_per_output_column(tiny_graphs, tmp_path):
-    from shrinkwrap.steps.quantize_onnx import quantize
+    from shrinkwrap.onnx_ops import quantize_dynamic as quantize
 
     def weight_scales(path):
         graph = onnx.load(str(path)).graph
@@ -144,7 +144,7 @@ def minilm(tmp_path_factory):
     from transformers import AutoTokenizer
 
     from shrinkwrap.models import load_classifier
-    from shrinkwrap.steps.export import export_onnx, fuse
+    from shrinkwrap.onnx_ops import export_onnx, fuse
 
     torch.manual_seed(0)
     folder = tmp_path_factory.mktemp("minilm")
@@ -181,7 +181,7 @@ def test_minilm_fuses_and_both_graphs_match_pytorch(minilm):
 
 @pytest.mark.slow
 def test_minilm_int8_with_embeddings_is_about_a_quarter_of_fp32(minilm, tmp_path):
-    from shrinkwrap.steps.quantize_onnx import int8_summary, quantize
+    from shrinkwrap.onnx_ops import int8_summary, quantize_dynamic as quantize
 
     fp32 = minilm["fused"].stat().st_size
     with_emb, without = tmp_path / "with.onnx", tmp_path / "without.onnx"
@@ -206,7 +206,7 @@ def test_the_shipped_graph_does_not_depend_on_timing(tiny_run, tmp_path, monkeyp
     from shrinkwrap.data import Split
     from shrinkwrap.models import load_classifier, load_tokenizer
     from shrinkwrap.recipe import ExportConfig
-    from shrinkwrap.steps import export
+    from shrinkwrap import onnx_ops as export
 
     monkeypatch.setattr(export, "p50_ms", lambda path, batch, threads: 1.0 if "fused" not in path.name else 9.0)
     model = load_classifier(str(tiny_run / "student"))

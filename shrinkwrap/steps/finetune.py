@@ -5,7 +5,6 @@ early and the next seed is tried; the best run on validation is kept.
 """
 from __future__ import annotations
 
-import time
 from pathlib import Path
 
 import numpy as np
@@ -15,16 +14,7 @@ from torch.nn import functional as F
 from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.errors import StepFailed
 from shrinkwrap.models import load_classifier, save_classifier
-from shrinkwrap.train import FitResult, TrainSettings, fit, seed_everything
-
-
-def settings(cfg, seed: int, train) -> TrainSettings:
-    return TrainSettings(gradient_accumulation_steps=train.gradient_accumulation_steps, precision=train.precision,
-                         epochs=cfg.epochs, learning_rate=cfg.learning_rate, batch_size=cfg.batch_size,
-                         weight_decay=cfg.weight_decay, warmup_ratio=cfg.warmup_ratio,
-                         max_grad_norm=cfg.max_grad_norm, patience=cfg.patience, metric=cfg.metric, seed=seed,
-                         stall_steps=cfg.stall_steps, stall_fraction=cfg.stall_fraction,
-                         collapse_share=cfg.collapse_share)
+from shrinkwrap.train import FitResult, fit, seed_everything, settings_from
 
 
 def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
@@ -58,7 +48,7 @@ def run(ctx, src: None, out: Path) -> dict:
         model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
         checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
         result: FitResult = fit(model, ctx.encoded["train"], ctx.data.train.labels, ctx.encoded["validation"],
-                                ctx.data.validation.labels, loss_fn, settings(cfg, seed, ctx.recipe.train),
+                                ctx.data.validation.labels, loss_fn, settings_from(cfg, ctx.recipe.train, seed=seed),
                                 ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
         entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
                  "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,

@@ -10,9 +10,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from shrinkwrap.distillation import fit_to_teacher, soft_targets, student_settings
 from shrinkwrap.models import encoder_layers, load_classifier, save_classifier
-from shrinkwrap.pruning import (importance, least_important, neurons_to_remove, remove_heads, remove_neurons)
-from shrinkwrap.steps.distill import fit_to_teacher, soft_targets, student_settings
+from shrinkwrap.pruning import importance, least_important, neurons_to_remove, remove_heads, remove_neurons
 
 
 def _shape(model) -> dict:
