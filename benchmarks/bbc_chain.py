@@ -63,7 +63,7 @@ def by_hand(teacher_dir: Path, out: Path) -> dict[str, Path]:
 def measure_all(ctx, targets: dict[str, Path]) -> dict[str, dict]:
     from shrinkwrap.bench.grid import Point
     from shrinkwrap.bench.measure import Inputs, bench_target
-    from shrinkwrap.data import encode
+    from shrinkwrap.batches import encode
 
     cfg = ctx.recipe.bench.model_copy(update={"repeats": 50, "min_time_s": 2.0})
     out = {}
@@ -102,13 +102,14 @@ def main() -> None:
 
     from shrinkwrap.bench.machine import describe
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare, run_chain
+    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.preflight import prepare
 
     out = Path(args.out)
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows())
     recipe = load_recipe(ROOT / "recipes" / "bbc-news.yaml", [f"data.path={csv_path}", *args.set])
     started = time.perf_counter()
-    results = run_chain(recipe, out / "run")
+    results = run_recipe(recipe, out / "run")
     chain_seconds = time.perf_counter() - started
     ctx = prepare(recipe, out / "run", quiet=True)
 

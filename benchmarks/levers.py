@@ -8,12 +8,12 @@ articles of each of the 5 topics (whole articles, cut at teacher.max_length = 12
 recipes/bbc-news.yaml says (stratified 70/10/20, fixed seed). Teacher: the bundled MiniLM-L6-H384,
 fine-tuned; student: 3 of its layers, distilled. The four variants share the teacher and the student
 (the same fingerprints, so those steps run once); `prune` and `both` share the pruned student.
-The PyTorch int8 step is left out (it is not on the way to the final artefact).
+The PyTorch int8 step is left out (it is not on the way to the final artifact).
 
 Measured after all chains, in one loop, each target twice in shuffled order (the median of the two
 p50s is shown): accuracy on the test split, size of the weight files, p50 latency at batch 1 × 128
 tokens (real texts cut to 128), 2 threads. Targets: the teacher, and for each variant its last
-PyTorch student (fp32) and its final step (student-onnx-int8, the artefact's model). Every target reads
+PyTorch student (fp32) and its final step (student-onnx-int8, the artifact's model). Every target reads
 texts with its own tokenizer (a trimmed student's is smaller). Prints a Markdown table and writes
 benchmarks/out/levers.json.
 """
@@ -62,7 +62,7 @@ def measure_all(ctx, targets: dict[str, Path], rounds: int = 2) -> dict[str, dic
 
     from shrinkwrap.bench.grid import Point
     from shrinkwrap.bench.measure import Inputs, bench_target
-    from shrinkwrap.data import encode
+    from shrinkwrap.batches import encode
     from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
 
     cfg = ctx.recipe.bench.model_copy(update={"repeats": 30, "min_time_s": 1.0, "warmup_s": 0.3})

@@ -60,7 +60,8 @@ print(len(encoded), sum(len(e["input_ids"]) for e in encoded))
 # Today's encoding of the labelled splits (data.encode: 4,096 texts per tokenizer call), for comparison.
 IN_MEMORY_CHUNKED = """
 import sys
-from shrinkwrap.data import Split, encode
+from shrinkwrap.data import Split
+from shrinkwrap.batches import encode
 from shrinkwrap.models import load_tokenizer
 path, base, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
 texts = [t for t in open(path, encoding="utf-8").read().splitlines() if t.strip()]

@@ -11,7 +11,6 @@ torch.load(weights_only=True), which refuses anything that could run code when u
 from __future__ import annotations
 
 import json
-import os
 import pickle
 import random
 import shutil
@@ -19,7 +18,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.rundir import write_atomic
+from shrinkwrap.errors import UserError
+from shrinkwrap.rundir import read_json_or_none, write_atomic
 
 # torch and numpy are imported where used: the runner imports this module on the command line's
 # fast path, where a bad recipe must be reported without loading them.
@@ -27,6 +27,7 @@ from shrinkwrap.rundir import write_atomic
 CHECKPOINT_DIR = "checkpoint"
 OWNER_FILE = "owner.json"   # the step fingerprint the checkpoints in the folder were made for
 FORMAT = 1                  # bumped when the layout of a checkpoint changes; older ones are not resumed
+
 
 def open_scratch(partial: Path, fingerprint: str) -> bool:
     """Makes a step's scratch folder. Returns True when a killed run left checkpoints there for this very
@@ -51,10 +52,8 @@ def close_scratch(partial: Path) -> None:
 
 
 def _owner(folder: Path) -> Optional[str]:
-    try:
-        return json.loads((folder / OWNER_FILE).read_text(encoding="utf-8")).get("fingerprint")
-    except (OSError, ValueError, AttributeError):
-        return None
+    owner = read_json_or_none(folder / OWNER_FILE)
+    return owner.get("fingerprint") if isinstance(owner, dict) else None
 
 
 @dataclass
@@ -96,7 +95,7 @@ class Checkpoint:
 
         try:
             payload = torch.load(self.path, map_location="cpu", weights_only=True)
-        except pickle.UnpicklingError as e:
+        except pickle.UnpicklingError:
             # The weights-only reader met something other than tensors and plain data (or a damaged file).
             raise UserError(f"{self.path}: refused — not a plain-tensor checkpoint (a weights-only load failed); "
                             f"delete it to start the step over") from None

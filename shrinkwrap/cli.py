@@ -11,26 +11,47 @@ import sys
 import traceback
 from pathlib import Path
 
-from shrinkwrap.errors import EXIT_BUDGET, EXIT_INTERNAL, EXIT_OK, StepFailed, UserError
+from shrinkwrap.errors import EXIT_INTERNAL, EXIT_OK, StepFailed, UserError
+
+
+def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None) -> dict:
+    """What `shrinkwrap run` writes, in order: every step and results.json, the artifact (when the chain
+    ends with an ONNX step), the reports. Returns the results ({} in a helper process of a distributed run)."""
+    from shrinkwrap.package import from_run
+    from shrinkwrap.report import write_reports
+    from shrinkwrap.results import final_step
+    from shrinkwrap.rundir import RESULTS_FILE, write_json_atomic
+    from shrinkwrap.runner import run_chain
+
+    results = run_chain(recipe, out, quiet=quiet, until=until)
+    if not results:
+        return results
+    if final_step(results)["format"] == "onnx":
+        results["artifact"] = str(from_run(results, out))
+        write_json_atomic(out / RESULTS_FILE, results)
+        if not quiet:
+            print(f"[artifact] written to {results['artifact']}", file=sys.stderr, flush=True)
+    write_reports(results, out)
+    return results
 
 
 def cmd_run(args) -> int:
     from shrinkwrap.recipe import load_recipe
     from shrinkwrap.report import step_table
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, RESULTS_FILE
 
     recipe = load_recipe(args.recipe, args.set)
     out = Path(args.out) if args.out else Path("runs") / recipe.name
-    results = run_chain(recipe, out, quiet=args.json, until=args.until)
+    results = run_recipe(recipe, out, quiet=args.json, until=args.until)  # steps -> artifact -> reports
     if not results:  # a helper process of a distributed run: the main process reports
         return EXIT_OK
     if args.json:
         print(json.dumps(results, indent=2))
     else:
         print(step_table(results))
-        print(f"\nresults: {out / 'results.json'}\nreport:  {out / 'report.md'}, {out / 'report.html'}")
+        print(f"\nresults: {out / RESULTS_FILE}\nreport:  {out / REPORT_FILE}, {out / REPORT_HTML_FILE}")
         if "artifact" in results:
-            print(f"artefact: {results['artifact']} (run it with: shrinkwrap predict {results['artifact']} TEXT)")
+            print(f"artifact: {results['artifact']} (run it with: shrinkwrap predict {results['artifact']} TEXT)")
     if not recipe.budget.limits_set():
         return EXIT_OK
     if args.until:
@@ -38,15 +59,17 @@ def cmd_run(args) -> int:
         return EXIT_OK
     from shrinkwrap.gate import evaluate, format_table
 
-    verdict = evaluate(results, recipe.budget, where=str(out / "results.json"), budget_source="recipe budget")
+    verdict = evaluate(results, recipe.budget, where=str(out / RESULTS_FILE), budget_source="recipe budget")
     print("\n" + format_table(verdict), file=sys.stderr if args.json else sys.stdout)
     return verdict.exit_code
 
 
 def cmd_gate(args) -> int:
     from shrinkwrap.gate import format_table, gate_results, junit_xml
-    from shrinkwrap.rundir import write_text_atomic
+    from shrinkwrap.rundir import check_out_file, write_text_atomic
 
+    if args.junit:
+        check_out_file(Path(args.junit), "--junit")
     verdict = gate_results(Path(args.results), args.budget and Path(args.budget), args.step,
                            args.baseline and Path(args.baseline), args.tolerance)
     if args.junit:
@@ -69,12 +92,10 @@ def cmd_bench(args) -> int:
     from shrinkwrap.bench.measure import bench_target
     from shrinkwrap.bench.testset import inputs_for, read_table
     from shrinkwrap.recipe import BenchConfig
-    from shrinkwrap.rundir import write_json_atomic
+    from shrinkwrap.rundir import check_out_file, write_json_atomic
 
     if args.out:  # checked first, so that a bad path fails before minutes of measuring
-        out = Path(args.out)
-        if out.is_dir() or not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
-            raise UserError(f"--out {out}: not a writable file path (its folder must exist)")
+        check_out_file(Path(args.out))
     if "real" in args.sequence_length and not args.data:
         raise UserError("--sequence-length real needs --data: real lengths come from real texts")
     table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
@@ -92,7 +113,7 @@ def cmd_bench(args) -> int:
 
 
 def cmd_predict(args) -> int:
-    # Only torch-free modules on this path: an artefact must run in a slim image (tests/test_predict.py).
+    # Only torch-free modules on this path: an artifact must run in a slim image (tests/test_predict.py).
     from shrinkwrap.artifact import DEFAULT_BATCH_SIZE
     from shrinkwrap.predict import run_predict
 
@@ -101,17 +122,18 @@ def cmd_predict(args) -> int:
 
 def cmd_package(args) -> int:
     from shrinkwrap.package import from_folder
+    from shrinkwrap.rundir import MANIFEST_FILE, read_json
 
     log = (lambda m: None) if args.json else (lambda m: print(f"[package] {m}", file=sys.stderr, flush=True))
     out = from_folder(Path(args.model_dir), Path(args.out), data=args.data and Path(args.data), text=args.text,
                       label=args.label, max_length=args.max_length, int8=args.int8, per_channel=args.per_channel,
                       opset=args.opset, threads=args.threads, log=log)
-    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    manifest = read_json(out / MANIFEST_FILE, "artifact manifest")
     if args.json:
         print(json.dumps(manifest, indent=2))
     else:
         m = manifest.get("metrics")
-        print(f"artefact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
+        print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
                                     f"{m['texts']} texts)" if m else ""))
     return EXIT_OK
 
@@ -175,8 +197,8 @@ def build_parser() -> argparse.ArgumentParser:
     bench = sub.add_parser("bench", help="measure latency, size and memory (and accuracy with --data) of any model",
                            description="Benchmark TARGET: a transformers classification folder, a folder with "
                                        "model.onnx, a bare .onnx file (an encoder without a head is fine: latency "
-                                       "and size from synthetic token ids), or a shrinkwrap artefact.")
-    bench.add_argument("target", help="model folder, .onnx file or artefact folder")
+                                       "and size from synthetic token ids), or a shrinkwrap artifact.")
+    bench.add_argument("target", help="model folder, .onnx file or artifact folder")
     bench.add_argument("--data", metavar="FILE", help="labelled table (.csv, .jsonl, .parquet; or a datasets folder's "
                        "test split): every row is a test text; adds accuracy and real-text lengths")
     bench.add_argument("--text", default="text", help="text column of --data (default: text)")
@@ -206,11 +228,11 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--out", metavar="FILE.json", help="also write the figures as JSON to this file")
     bench.set_defaults(func=cmd_bench)
 
-    predict = sub.add_parser("predict", help="classify texts with an artefact (needs only onnxruntime, tokenizers, numpy)",
+    predict = sub.add_parser("predict", help="classify texts with an artifact (needs only onnxruntime, tokenizers, numpy)",
                              description="Print one JSON line {\"text\", \"label\", \"scores\"} per text. Every "
                                          "file of ARTIFACT is checked against its manifest.json first; a modified or "
-                                         "incomplete artefact is refused (exit 2).")
-    predict.add_argument("artifact", metavar="ARTIFACT", help="artefact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
+                                         "incomplete artifact is refused (exit 2).")
+    predict.add_argument("artifact", metavar="ARTIFACT", help="artifact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
     predict.add_argument("texts", nargs="*", metavar="TEXT",
                          help="texts to classify (none: one per line from --file or stdin)")
     predict.add_argument("--file", metavar="FILE", help="UTF-8 file with one text per line")
@@ -221,16 +243,16 @@ def build_parser() -> argparse.ArgumentParser:
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
     predict.set_defaults(func=cmd_predict)
 
-    package = sub.add_parser("package", help="build an artefact from a transformers classification folder",
-                             description="Build an artefact folder (model.onnx, tokenizer, labels, manifest.json with "
+    package = sub.add_parser("package", help="build an artifact from a transformers classification folder",
+                             description="Build an artifact folder (model.onnx, tokenizer, labels, manifest.json with "
                                          "hashes, model card README.md) from MODEL_DIR: a transformers classification "
                                          "folder (exported to ONNX, parity-checked against PyTorch, int8 by default) "
                                          "or a folder that already holds model.onnx (packaged as it is).")
     package.add_argument("model_dir", metavar="MODEL_DIR", help="transformers classification folder (safetensors) or a folder with model.onnx")
-    package.add_argument("--out", required=True, metavar="DIR", help="artefact folder to write (replaced only if it "
-                         "is an artefact or empty)")
+    package.add_argument("--out", required=True, metavar="DIR", help="artifact folder to write (replaced only if it "
+                         "is an artifact or empty)")
     package.add_argument("--data", metavar="FILE", help="labelled table (.csv, .jsonl, .parquet): accuracy on all its "
-                         "rows is measured through the artefact and recorded in manifest.json and the model card")
+                         "rows is measured through the artifact and recorded in manifest.json and the model card")
     package.add_argument("--text", default="text", help="text column of --data (default: text)")
     package.add_argument("--label", default="label", help="label column of --data, holding the model's label names "
                          "(default: label)")

@@ -223,7 +223,3 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
 
     return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
 
-
-# Transitional: these moved to shrinkwrap.batches; re-exported until the other modules import them
-# from there (remove after the merge).
-from shrinkwrap.batches import Joined, all_logits, collate, encode, length_batches, lengths, take  # noqa: E402,F401

@@ -22,12 +22,13 @@ from torch import nn
 
 from shrinkwrap import distributed
 from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
-from shrinkwrap.data import Joined, length_batches
+from shrinkwrap.batches import Joined, length_batches
 from shrinkwrap.fingerprint import sha256_json
 from shrinkwrap.losses import attention_loss, distillation_loss, hidden_state_loss
 from shrinkwrap.models import evenly_spaced, keep_layers, load_classifier, num_layers
 from shrinkwrap.rundir import read_json, scratch_path, swap_in
-from shrinkwrap.train import TrainSettings, fit, settings_from, to_torch
+from shrinkwrap.models import to_torch
+from shrinkwrap.train import TrainSettings, fit, settings_from
 
 PROJECTION = "hidden_projection"  # attached to the student while training so the optimiser sees it
 META_FILE = "meta.json"  # in a teacher-outputs cache folder: how long the pass took, on how many texts

@@ -2,7 +2,7 @@
 
 EXIT_OK = 0
 EXIT_BUDGET = 1     # a budget or a release gate failed
-EXIT_INPUT = 2      # bad input: recipe, data, arguments, a tampered artefact
+EXIT_INPUT = 2      # bad input: recipe, data, arguments, a tampered artifact
 EXIT_INTERNAL = 3   # a bug or an environment problem we did not foresee
 
 

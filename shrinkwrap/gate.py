@@ -12,6 +12,7 @@ from typing import Optional
 
 from shrinkwrap.errors import EXIT_BUDGET, EXIT_OK, UserError
 from shrinkwrap.recipe import BudgetConfig, RegressionTolerance, validate_budget
+from shrinkwrap.results import final_step, load, step_named, teacher_row
 
 PASS, FAIL, SKIP = "pass", "FAIL", "skipped"
 
@@ -87,10 +88,10 @@ def pick_step(results: dict, name: Optional[str], where: str) -> dict:
     if not isinstance(steps, list) or not steps:
         raise UserError(f"{where}: no steps recorded — nothing to gate")
     if name is None:
-        return steps[-1]  # the final step is what ships
-    for s in steps:
-        if s.get("name") == name:
-            return s
+        return final_step(results)  # the final step is what ships
+    step = step_named(results, name)
+    if step is not None:
+        return step
     raise UserError(f"{where}: --step {name} — steps in this run: {', '.join(s.get('name', '?') for s in steps)}")
 
 
@@ -165,7 +166,7 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
              where: str = "results.json", baseline_where: str = "baseline", budget_source: str = "recipe") -> Verdict:
     """Every limit the budget sets, checked against one step. Raises UserError when results cannot answer one."""
     step = pick_step(results, step_name, where)
-    is_reference = step is results["steps"][0]
+    is_reference = step is teacher_row(results)
     checks = []
     if budget.latency_p95_ms is not None:
         shape = _latency_shape(step, budget, where)
@@ -181,7 +182,7 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
         checks.append(_check("size_mb", "size on disk, MB = 10^6 bytes", budget.size_mb,
                              _number(step, "size_bytes", where) / 1e6, "<=", " MB"))
     if budget.accuracy_drop_points is not None:
-        ref = results["steps"][0]["name"]
+        ref = teacher_row(results)["name"]
         if budget.accuracy_drop_upper_bound and not is_reference:
             interval = _field(step, "accuracy_drop_ci95", where, "these results predate the bootstrap interval")
             if not (isinstance(interval, list) and len(interval) == 2):
@@ -257,15 +258,14 @@ def gate_results(results_path: Path, budget_path: Optional[Path] = None, step: O
                  baseline_path: Optional[Path] = None, tolerances: list[str] = ()) -> Verdict:
     """What `shrinkwrap gate` checks: all inputs are read and validated before any verdict."""
     from shrinkwrap.recipe import load_budget
-    from shrinkwrap.report import load_results
 
     if tolerances and baseline_path is None:
         raise UserError(f"--tolerance {tolerances[0]} — tolerances are against a baseline; add --baseline OLD_RESULTS")
-    results = load_results(results_path)
+    results = load(results_path)
     if budget_path is not None:
         budget, source = load_budget(budget_path), str(budget_path)
     else:
         budget, source = budget_of_results(results, str(results_path)), f"{results_path}: recipe.budget"
     budget = with_tolerances(budget, list(tolerances))
-    baseline = load_results(baseline_path) if baseline_path is not None else None
+    baseline = load(baseline_path) if baseline_path is not None else None
     return evaluate(results, budget, step, baseline, str(results_path), str(baseline_path), source)

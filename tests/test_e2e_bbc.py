@@ -17,7 +17,7 @@ pytestmark = pytest.mark.slow
 @pytest.fixture(scope="module")
 def bbc_run(tmp_path_factory):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.cli import run_recipe
 
     folder = tmp_path_factory.mktemp("bbc")
     data = write_csv(folder / "bbc.csv", bbc_rows(per_class=40), header=("text", "topic"))
@@ -30,7 +30,7 @@ def bbc_run(tmp_path_factory):
     }
     path = write_recipe(folder / "recipe.yaml", recipe)  # data.path is relative: resolved against this folder
     assert data.parent == path.parent
-    run_chain(load_recipe(path), folder / "run", quiet=True)
+    run_recipe(load_recipe(path), folder / "run", quiet=True)
     return folder / "run"
 
 

@@ -20,7 +20,7 @@ HEAD = 16  # the tiny student: 2 layers, 2 heads of 16, feed-forward width 64
 @pytest.fixture(scope="module")
 def examples(tiny_run, tiny_base, keyword_csv, tmp_path_factory):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     folder = tmp_path_factory.mktemp("prune-data")
     ctx = prepare(load_recipe(write_recipe(folder / "r.yaml", tiny_recipe(tiny_base, keyword_csv))), folder / "run",

@@ -30,7 +30,8 @@ def student_done(tiny_run, tmp_path):
 
 @pytest.fixture
 def trimmed(student_done, tiny_base, keyword_csv):
-    from shrinkwrap.runner import prepare, run_chain
+    from shrinkwrap.preflight import prepare
+    from shrinkwrap.runner import run_chain
 
     recipe = _recipe(student_done, tiny_base, keyword_csv, trim_vocab={"enabled": True})
     results = run_chain(recipe, student_done / "run", quiet=True, until="student-trimmed")
@@ -150,11 +151,11 @@ def test_a_step_after_the_trimmed_one_must_carry_the_trimmed_tokenizer(trimmed, 
 
 def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     from shrinkwrap.artifact import load
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.cli import run_recipe
 
     run = student_done / "run"
     recipe = _recipe(student_done, tiny_base, keyword_csv, prune=PRUNE, trim_vocab={"enabled": True})
-    results = run_chain(recipe, run, quiet=True)
+    results = run_recipe(recipe, run, quiet=True)
     names = [s["name"] for s in results["steps"]]
     assert names == ["teacher", "student", "student-pruned", "student-trimmed", "student-int8", "student-onnx",
                      "student-onnx-int8"]
@@ -171,14 +172,14 @@ def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     # the artefact carries the trimmed tokenizer, and predicts what the final step recorded
     art = load(run / "artifact")
     assert art.manifest["tokenizer"]["fingerprint"] == trimmed_fp
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     ctx = prepare(recipe, run, quiet=True)
     preds = art.logits(ctx.data.test.texts).argmax(1)
     assert np.mean(preds == np.array(results["steps"][-1]["predictions"])) == 1.0
     # a rerun reuses every step
     stamps = {n: os.stat(run / n / "step.json").st_mtime_ns for n in names}
-    again = run_chain(recipe, run, quiet=True)
+    again = run_recipe(recipe, run, quiet=True)
     assert {n: os.stat(run / n / "step.json").st_mtime_ns for n in names} == stamps
     assert [s["metrics"] for s in again["steps"]] == [s["metrics"] for s in results["steps"]]
 
@@ -187,7 +188,7 @@ def test_trimming_a_tokenizer_that_is_not_wordpiece_is_refused_before_anything_r
     from tokenizers import Tokenizer, models, pre_tokenizers
     from transformers import PreTrainedTokenizerFast
 
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     base = tmp_path / "base"
     shutil.copytree(tiny_base, base)
@@ -220,6 +221,6 @@ def test_transfer_texts_keep_their_pieces_too(tmp_path, tiny_base, keyword_csv):
         assert small.tokenize(text) == original.tokenize(text)
         assert small.unk_token not in small.tokenize(text)
     info = next(s for s in results["steps"] if s["name"] == "student-trimmed")["info"]
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     assert info["texts"] == len(extra) + len(prepare(recipe, tmp_path / "run", quiet=True).data.train)

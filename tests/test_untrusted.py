@@ -93,7 +93,9 @@ def test_a_pickled_checkpoint_planted_in_a_run_is_refused_by_the_runner(tmp_path
     from shrinkwrap.checkpoint import CHECKPOINT_DIR, open_scratch
     from shrinkwrap.errors import UserError
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import chain, prepare, run_chain, step_fingerprint
+    from shrinkwrap.preflight import prepare
+    from shrinkwrap.runner import run_chain, step_fingerprint
+    from shrinkwrap.steps import chain
 
     marker = tmp_path / "marker"
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv)))
@@ -145,7 +147,7 @@ def test_set_values_are_parsed_safely(tmp_path, tiny_base, keyword_csv):
 
 def test_trust_remote_code_is_off_unless_the_recipe_says_so_and_then_warns(tmp_path, tiny_base, keyword_csv):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     plain = load_recipe(write_recipe(tmp_path / "a.yaml", tiny_recipe(tiny_base, keyword_csv)))
     assert plain.teacher.trust_remote_code is False
@@ -176,7 +178,7 @@ def test_no_code_path_loads_pickles_or_enables_remote_code():
 
 def test_relative_paths_resolve_against_the_recipe_folder(tmp_path, tiny_base, keyword_csv, monkeypatch):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare
+    from shrinkwrap.preflight import prepare
 
     project = tmp_path / "project"
     (project / "data").mkdir(parents=True)
@@ -196,7 +198,7 @@ def test_relative_paths_resolve_against_the_recipe_folder(tmp_path, tiny_base, k
 
 
 def test_outputs_stay_inside_the_run_folder(tiny_run):
-    from shrinkwrap.runner import chain
+    from shrinkwrap.steps import chain
 
     for step in chain():
         assert re.fullmatch(r"[a-z0-9][a-z0-9-]*", step.name), step.name  # a plain folder name, no path parts

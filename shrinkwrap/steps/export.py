@@ -6,7 +6,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from shrinkwrap.data import collate, encode
+from shrinkwrap.batches import collate, encode
 from shrinkwrap.models import load_classifier
 from shrinkwrap.onnx_ops import GRAPH_RULE, export_checked
 
