@@ -395,9 +395,3 @@ def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = No
         raise UserError(_explain(err, raw, f"{where} (--set {text})" if text else where)) from None
     recipe.source = source
     return recipe
-
-
-if __name__ == "__main__":  # python -m shrinkwrap.recipe [--write-readme README.md]: see shrinkwrap.recipe_doc
-    from shrinkwrap.recipe_doc import main
-
-    main()

@@ -4,7 +4,6 @@ keeps the two in step).
     python -m shrinkwrap.recipe_doc                          # prints the table
     python -m shrinkwrap.recipe_doc --write-readme README.md # rewrites the block between the markers
 
-(`python -m shrinkwrap.recipe` does the same.)
 """
 from __future__ import annotations
 
