@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 import traceback
@@ -150,8 +151,36 @@ def _positive_int(text: str) -> int:
     return int(text)
 
 
+def _at_least(low: int, high: int | None = None):
+    """A whole number in [low, high]: for counts whose floor is not 0 or 1 (timed runs, opsets)."""
+    def parse(text: str) -> int:
+        if not text.isdigit() or int(text) < low or (high is not None and int(text) > high):
+            allowed = f"from {low} to {high}" if high is not None else f"{low} or more"
+            raise argparse.ArgumentTypeError(f"{text!r} — a whole number, {allowed}")
+        return int(text)
+    return parse
+
+
+def _seconds(text: str) -> float:
+    """A finite number of seconds, 0 or more (float() alone takes 'nan', 'inf' and '-1')."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not math.isfinite(value) or value < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} — a finite number of seconds, 0 or more")
+    return value
+
+
+class _Parser(argparse.ArgumentParser):
+    """Bad options end like any other bad input: exit 2 and one line naming the command and the option."""
+
+    def error(self, message: str):
+        self.exit(2, f"error: {self.prog}: {message} (see {self.prog} --help)\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="shrinkwrap", description="Shrink a fine-tuned BERT-family text classifier for CPU "
+    p = _Parser(prog="shrinkwrap", description="Shrink a fine-tuned BERT-family text classifier for CPU "
                                 "serving, measuring what every step costs and buys. Exit codes: 0 ok, 1 a budget "
                                 "failed, 2 bad input, 3 a step failed or an internal error.")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -194,6 +223,8 @@ def build_parser() -> argparse.ArgumentParser:
     from shrinkwrap.recipe import BenchConfig
 
     default = {k: f.default for k, f in BenchConfig.model_fields.items()}
+    # The schema's own floor (percentiles need a few runs), so that the option and the recipe key agree.
+    repeats_min = next(m.ge for m in BenchConfig.model_fields["repeats"].metadata if hasattr(m, "ge"))
     bench = sub.add_parser("bench", help="measure latency, size and memory (and accuracy with --data) of any model",
                            description="Benchmark TARGET: a transformers classification folder, a folder with "
                                        "model.onnx, a bare .onnx file (an encoder without a head is fine: latency "
@@ -214,13 +245,13 @@ def build_parser() -> argparse.ArgumentParser:
                        f"longest (default: {default['sequence_length']})")
     bench.add_argument("--threads", type=_positive_int, default=default["threads"],
                        help=f"intra-op threads of the model and of the reference workload (default: {default['threads']})")
-    bench.add_argument("--warmup", type=int, default=default["warmup"], metavar="N",
+    bench.add_argument("--warmup", type=_count, default=default["warmup"], metavar="N",
                        help=f"untimed runs before each row (default: {default['warmup']})")
-    bench.add_argument("--warmup-time", type=float, default=default["warmup_s"], metavar="SECONDS",
+    bench.add_argument("--warmup-time", type=_seconds, default=default["warmup_s"], metavar="SECONDS",
                        help=f"and keep warming up at least this long (default: {default['warmup_s']})")
-    bench.add_argument("--repeats", type=_positive_int, default=default["repeats"], metavar="N",
+    bench.add_argument("--repeats", type=_at_least(repeats_min), default=default["repeats"], metavar="N",
                        help=f"timed runs per row, at least (default: {default['repeats']})")
-    bench.add_argument("--min-time", type=float, default=default["min_time_s"], metavar="SECONDS",
+    bench.add_argument("--min-time", type=_seconds, default=default["min_time_s"], metavar="SECONDS",
                        help=f"keep timing each row at least this long (default: {default['min_time_s']})")
     bench.add_argument("--eval-batch-size", type=_positive_int, default=default["eval_batch_size"], metavar="N",
                        help=f"batch size of the accuracy pass (default: {default['eval_batch_size']})")
@@ -243,6 +274,10 @@ def build_parser() -> argparse.ArgumentParser:
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
     predict.set_defaults(func=cmd_predict)
 
+    from shrinkwrap.recipe import ExportConfig
+
+    opset_min, opset_max = (next(getattr(m, k) for m in ExportConfig.model_fields["opset"].metadata if hasattr(m, k))
+                            for k in ("ge", "le"))
     package = sub.add_parser("package", help="build an artifact from a transformers classification folder",
                              description="Build an artifact folder (model.onnx, tokenizer, labels, manifest.json with "
                                          "hashes, model card README.md) from MODEL_DIR: a transformers classification "
@@ -262,7 +297,7 @@ def build_parser() -> argparse.ArgumentParser:
                          help="quantise the exported graph to int8 with ONNX Runtime, embeddings included "
                               "(default: on; a folder with model.onnx is packaged as it is)")
     package.add_argument("--per-channel", action="store_true", help="int8 weights with per-channel scales")
-    package.add_argument("--opset", type=int, metavar="N", help="ONNX opset of the export (default: a recipe's "
+    package.add_argument("--opset", type=_at_least(opset_min, opset_max), metavar="N", help="ONNX opset of the export (default: a recipe's "
                          "export.opset default)")
     package.add_argument("--threads", type=_positive_int, default=2, metavar="N",
                          help="ONNX Runtime threads for the parity check and the accuracy pass (default: 2)")
