@@ -18,22 +18,32 @@ from shrinkwrap.errors import EXIT_INTERNAL, EXIT_OK, StepFailed, UserError
 def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None) -> dict:
     """What `shrinkwrap run` writes, in order: every step and results.json, the artifact (when the chain
     ends with an ONNX step), the reports. Returns the results ({} in a helper process of a distributed run)."""
+    from shrinkwrap import distributed
+    from shrinkwrap.rundir import run_lock
+    from shrinkwrap.runner import run_chain
+
+    if not distributed.is_main():  # the main process holds the run folder's lock for all of them
+        return run_chain(recipe, out, quiet=quiet, until=until)
+    with run_lock(out):
+        results = run_chain(recipe, out, quiet=quiet, until=until)
+        if results:
+            _finish(results, out, quiet)
+    return results
+
+
+def _finish(results: dict, out: Path, quiet: bool) -> None:
+    """The artifact (when the chain ends with an ONNX step) and the reports, once the steps are done."""
     from shrinkwrap.package import from_run
     from shrinkwrap.report import write_reports
     from shrinkwrap.results import final_step
     from shrinkwrap.rundir import RESULTS_FILE, write_json_atomic
-    from shrinkwrap.runner import run_chain
 
-    results = run_chain(recipe, out, quiet=quiet, until=until)
-    if not results:
-        return results
     if final_step(results)["format"] == "onnx":
         results["artifact"] = str(from_run(results, out))
         write_json_atomic(out / RESULTS_FILE, results)
         if not quiet:
             print(f"[artifact] written to {results['artifact']}", file=sys.stderr, flush=True)
     write_reports(results, out)
-    return results
 
 
 def cmd_run(args) -> int:
