@@ -166,8 +166,9 @@ def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 
     the artifact it is building through this very code path."""
     from tokenizers import Tokenizer
 
-    from shrinkwrap.onnx_tools import session
+    from shrinkwrap.onnx_tools import check_external_data, session
 
+    check_external_data(folder / MODEL_FILE)  # before ONNX Runtime opens anything the graph points to
     tok_info = manifest.get("tokenizer") or {}
     if not isinstance(tok_info.get("max_length"), int) or tok_info["max_length"] < 1:
         raise UserError(f"{folder / MANIFEST_FILE}: tokenizer.max_length = {tok_info.get('max_length')!r} — "
