@@ -15,7 +15,8 @@ from pathlib import Path
 from shrinkwrap.errors import EXIT_INTERNAL, EXIT_OK, StepFailed, UserError
 
 
-def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None) -> dict:
+def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None,
+               signing_key: Path | None = None) -> dict:
     """What `shrinkwrap run` writes, in order: every step and results.json, the artifact (when the chain
     ends with an ONNX step), the reports. Returns the results ({} in a helper process of a distributed run)."""
     from shrinkwrap import distributed
@@ -27,11 +28,11 @@ def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None)
     with run_lock(out):
         results = run_chain(recipe, out, quiet=quiet, until=until)
         if results:
-            _finish(results, out, quiet)
+            _finish(results, out, quiet, signing_key)
     return results
 
 
-def _finish(results: dict, out: Path, quiet: bool) -> None:
+def _finish(results: dict, out: Path, quiet: bool, signing_key: Path | None = None) -> None:
     """The artifact (when the chain ends with an ONNX step) and the reports, once the steps are done."""
     from shrinkwrap.package import from_run
     from shrinkwrap.report import write_reports
@@ -40,6 +41,10 @@ def _finish(results: dict, out: Path, quiet: bool) -> None:
 
     if final_step(results)["format"] == "onnx":
         results["artifact"] = str(from_run(results, out))
+        if signing_key:
+            from shrinkwrap.signing import sign_artifact
+
+            sign_artifact(Path(results["artifact"]), signing_key)
         write_json_atomic(out / RESULTS_FILE, results)
         if not quiet:
             print(f"[artifact] written to {results['artifact']}", file=sys.stderr, flush=True)
@@ -53,7 +58,8 @@ def cmd_run(args) -> int:
 
     recipe = load_recipe(args.recipe, args.set)
     out = Path(args.out) if args.out else Path("runs") / recipe.name
-    results = run_recipe(recipe, out, quiet=args.json, until=args.until)  # steps -> artifact -> reports
+    key = _signing_key(args)
+    results = run_recipe(recipe, out, quiet=args.json, until=args.until, signing_key=key)  # steps -> artifact -> reports
     if not results:  # a helper process of a distributed run: the main process reports
         return EXIT_OK
     if args.json:
@@ -107,6 +113,13 @@ def cmd_bench(args) -> int:
 
     if args.out:  # checked first, so that a bad path fails before minutes of measuring
         check_out_file(Path(args.out))
+    if args.trusted_key:
+        from shrinkwrap.artifact import is_artifact
+        from shrinkwrap.signing import check_signature
+
+        if not is_artifact(args.target):
+            raise UserError(f"--trusted-key: {args.target} is not an artifact folder — only artifacts carry signatures")
+        check_signature(Path(args.target), Path(args.trusted_key))
     if "real" in args.sequence_length and not args.data:
         raise UserError("--sequence-length real needs --data: real lengths come from real texts")
     table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
@@ -128,17 +141,23 @@ def cmd_predict(args) -> int:
     from shrinkwrap.artifact import DEFAULT_BATCH_SIZE
     from shrinkwrap.predict import run_predict
 
-    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads)
+    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
+                       trusted_key=args.trusted_key and Path(args.trusted_key))
 
 
 def cmd_package(args) -> int:
     from shrinkwrap.package import from_folder
     from shrinkwrap.rundir import MANIFEST_FILE, read_json
 
+    key = _signing_key(args)
     log = (lambda m: None) if args.json else (lambda m: print(f"[package] {m}", file=sys.stderr, flush=True))
     out = from_folder(Path(args.model_dir), Path(args.out), data=args.data and Path(args.data), text=args.text,
                       label=args.label, max_length=args.max_length, int8=args.int8, per_channel=args.per_channel,
                       opset=args.opset, threads=args.threads, log=log)
+    if key:
+        from shrinkwrap.signing import sign_artifact
+
+        sign_artifact(out, key)
     manifest = read_json(out / MANIFEST_FILE, "artifact manifest")
     if args.json:
         print(json.dumps(manifest, indent=2))
@@ -147,6 +166,16 @@ def cmd_package(args) -> int:
         print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
                                     f"{m['texts']} texts)" if m else ""))
     return EXIT_OK
+
+
+def _signing_key(args) -> Path | None:
+    """--signing-key, loaded once before any work so that a bad key fails before minutes of it."""
+    if not args.signing_key:
+        return None
+    from shrinkwrap.signing import load_private_key
+
+    load_private_key(Path(args.signing_key))
+    return Path(args.signing_key)
 
 
 def _count(text: str) -> int:
@@ -204,6 +233,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--json", action="store_true", help="print results.json to stdout instead of the table")
     run.add_argument("--until", metavar="STEP",
                      help="stop after this step, e.g. --until student (finished later steps are kept on disk)")
+    run.add_argument("--signing-key", metavar="PRIVATE.pem", help="Ed25519 private key (PEM) to sign the artifact's manifest with (manifest.sig); an encrypted key "
+                     "takes its passphrase from $SHRINKWRAP_SIGNING_PASSPHRASE")
     run.set_defaults(func=cmd_run)
 
     gate = sub.add_parser("gate", help="check a run's results against a budget: exit 0 pass, 1 a limit failed, 2 bad input",
@@ -267,6 +298,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help=f"batch size of the accuracy pass (default: {default['eval_batch_size']})")
     bench.add_argument("--json", action="store_true", help="print the figures as JSON instead of the table")
     bench.add_argument("--out", metavar="FILE.json", help="also write the figures as JSON to this file")
+    bench.add_argument("--trusted-key", metavar="PUBLIC.pem", help="Ed25519 public key (PEM): refuse the artifact unless manifest.sig is its valid signature of "
+                     "manifest.json (exit 2)")
     bench.set_defaults(func=cmd_bench)
 
     predict = sub.add_parser("predict", help="classify texts with an artifact (needs only onnxruntime, tokenizers, numpy)",
@@ -282,6 +315,8 @@ def build_parser() -> argparse.ArgumentParser:
                               "accuracy pass, which gives exactly its predictions)")
     predict.add_argument("--threads", type=_count, default=0, metavar="N",
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    predict.add_argument("--trusted-key", metavar="PUBLIC.pem", help="Ed25519 public key (PEM): refuse the artifact unless manifest.sig is its valid signature of "
+                     "manifest.json (exit 2)")
     predict.set_defaults(func=cmd_predict)
 
     from shrinkwrap.recipe import ExportConfig
@@ -312,6 +347,8 @@ def build_parser() -> argparse.ArgumentParser:
     package.add_argument("--threads", type=_positive_int, default=2, metavar="N",
                          help="ONNX Runtime threads for the parity check and the accuracy pass (default: 2)")
     package.add_argument("--json", action="store_true", help="print manifest.json instead of a summary line")
+    package.add_argument("--signing-key", metavar="PRIVATE.pem", help="Ed25519 private key (PEM) to sign the artifact's manifest with (manifest.sig); an encrypted key "
+                     "takes its passphrase from $SHRINKWRAP_SIGNING_PASSPHRASE")
     package.set_defaults(func=cmd_package)
     return p
 

@@ -30,6 +30,7 @@ LABELS_FILE = "labels.json"
 TOKENIZER_FILE = "tokenizer.json"
 CONFIG_FILE = "config.json"
 CARD_FILE = "README.md"           # an artifact's model card
+SIGNATURE_FILE = "manifest.sig"   # an artifact's optional Ed25519 signature of manifest.json (base64)
 LOCK_FILE = ".lock"               # who is running in a run folder now: pid, host, start time
 
 DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
