@@ -355,7 +355,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
-    args = build_parser().parse_args(argv)
+    try:
+        args = build_parser().parse_args(argv)
+    except SystemExit as e:  # a bad option (exit 2, one line) or --help (0): returned like every other outcome
+        return e.code if isinstance(e.code, int) else EXIT_INTERNAL
     try:
         return args.func(args)
     except UserError as e:
