@@ -174,6 +174,7 @@ def run_lock(out: Path, log: Callable[[str], None] = lambda m: print(m, file=sys
     import fcntl
 
     out = Path(out)
+    check_out_dir(out)  # the preflight's own message for a file in the way or a read-only parent
     created = not out.exists()
     try:
         out.mkdir(parents=True, exist_ok=True)
