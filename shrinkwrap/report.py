@@ -176,6 +176,34 @@ def int8_agreement_lines(results: dict) -> list[str]:
             for s in results["steps"] if "agreement_with_fp32" in s]
 
 
+def calibration_lines(results: dict) -> list[str]:
+    """report.md: per-class precision / recall change of the shipped step, calibration per step, and the
+    shipped step's accuracy against coverage when abstaining below each threshold."""
+    from shrinkwrap.results import final_step
+
+    final = final_step(results)
+    out = []
+    if len(results["steps"]) > 1:
+        rows = [[c["class"], str(c["support"]), f"{c['precision']:.3f} ({c['precision_change_points']:+.1f})",
+                 f"{c['recall']:.3f} ({c['recall_change_points']:+.1f})",
+                 f"lost {c['lost']} of {c['support']}" if c["lost"] >= 0 else f"gained {-c['lost']} of {c['support']}"]
+                for c in class_changes(results, final)]
+        out += [f"## Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)", "",
+                _md_table(["class", "support", "precision", "recall", "texts"], rows, 1), ""]
+    rows = [[s["name"], *(f"{s['metrics'][k]:.4f}" if k in s["metrics"] else "—" for k in ("ece", "brier", "nll"))]
+            for s in results["steps"]]
+    out += ["## Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", "", _md_table(["step", "ECE", "Brier", "NLL"], rows, 1), ""]
+    cal = final.get("calibration")
+    if cal:
+        out += [f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: test ECE "
+                f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top score "
+                f"(`predict --min-confidence`):", "",
+                _md_table(["threshold", "coverage", "accuracy"],
+                          [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
+                            "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0), ""]
+    return out
+
+
 def markdown_report(results: dict) -> str:
     agreement = int8_agreement_lines(results)
     lines = [
@@ -189,6 +217,7 @@ def markdown_report(results: dict) -> str:
         per_class_table(results),
         "",
     ]
+    lines += calibration_lines(results)
     found = [f"- {c}." for c in cautions(results)]
     lines += ["## Cautions", ""] + (found or [f"- {NO_CAUTION}"]) + [f"- Rule for classes: {CLASS_RULE}.", ""]
     if results["data"]["notes"]:
