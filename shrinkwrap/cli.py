@@ -27,10 +27,16 @@ def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None)
     if not results:
         return results
     if final_step(results)["format"] == "onnx":
-        results["artifact"] = str(from_run(results, out))
+        cal = final_step(results).get("calibration") or {}
+        results["artifact"] = {"path": str(from_run(results, out)),
+                               **{k: cal[k] for k in ("temperature", "ece", "ece_raw") if k in cal}}
         write_json_atomic(out / RESULTS_FILE, results)
         if not quiet:
-            print(f"[artifact] written to {results['artifact']}", file=sys.stderr, flush=True)
+            print(f"[artifact] written to {results['artifact']['path']}", file=sys.stderr, flush=True)
+    from shrinkwrap.report import cautions
+
+    results["cautions"] = cautions(results)
+    write_json_atomic(out / RESULTS_FILE, results)
     write_reports(results, out)
     return results
 
@@ -51,7 +57,10 @@ def cmd_run(args) -> int:
         print(step_table(results))
         print(f"\nresults: {out / RESULTS_FILE}\nreport:  {out / REPORT_FILE}, {out / REPORT_HTML_FILE}")
         if "artifact" in results:
-            print(f"artifact: {results['artifact']} (run it with: shrinkwrap predict {results['artifact']} TEXT)")
+            path = results["artifact"]["path"]
+            print(f"artifact: {path} (run it with: shrinkwrap predict {path} TEXT)")
+    if not recipe.budget.limits_set() or args.until:
+        _print_cautions(results["cautions"])
     if not recipe.budget.limits_set():
         return EXIT_OK
     if args.until:
@@ -61,7 +70,16 @@ def cmd_run(args) -> int:
 
     verdict = evaluate(results, recipe.budget, where=str(out / RESULTS_FILE), budget_source="recipe budget")
     print("\n" + format_table(verdict), file=sys.stderr if args.json else sys.stdout)
+    _print_cautions(results["cautions"])
     return verdict.exit_code
+
+
+def _print_cautions(lines: list[str]) -> None:
+    """After the table, on stderr: what the averages hide, one line each."""
+    sys.stdout.flush()
+    for line in lines:
+        print(f"caution: {line}", file=sys.stderr)
+    sys.stderr.flush()
 
 
 def cmd_gate(args) -> int:
@@ -75,6 +93,7 @@ def cmd_gate(args) -> int:
     if args.junit:
         write_text_atomic(Path(args.junit), junit_xml(verdict))
     print(json.dumps(verdict.as_dict(), indent=2) if args.json else format_table(verdict))
+    _print_cautions(verdict.cautions)
     return verdict.exit_code
 
 
@@ -117,7 +136,8 @@ def cmd_predict(args) -> int:
     from shrinkwrap.artifact import DEFAULT_BATCH_SIZE
     from shrinkwrap.predict import run_predict
 
-    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads)
+    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
+                       min_confidence=args.min_confidence)
 
 
 def cmd_package(args) -> int:
@@ -148,6 +168,16 @@ def _positive_int(text: str) -> int:
     if not text.isdigit() or int(text) < 1:
         raise argparse.ArgumentTypeError(f"{text!r} — a whole number, 1 or more")
     return int(text)
+
+
+def _probability(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} — a number from 0 to 1") from None
+    if not 0.0 <= value <= 1.0:  # also refuses nan
+        raise argparse.ArgumentTypeError(f"{text!r} — a number from 0 to 1")
+    return value
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -241,6 +271,9 @@ def build_parser() -> argparse.ArgumentParser:
                               "accuracy pass, which gives exactly its predictions)")
     predict.add_argument("--threads", type=_count, default=0, metavar="N",
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    predict.add_argument("--min-confidence", type=_probability, default=0.0, metavar="P",
+                         help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
+                              "still printed (default: 0, always answer; the report plots accuracy against coverage)")
     predict.set_defaults(func=cmd_predict)
 
     package = sub.add_parser("package", help="build an artifact from a transformers classification folder",

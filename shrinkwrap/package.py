@@ -157,6 +157,8 @@ def from_run(results: dict, run_dir: Path) -> Path:
         "model": model,
         "metrics": _step_metrics(final, len(results["test_labels"])),
         "recipe_fingerprint": results["recipe_fingerprint"],
+        **({"calibration": {k: final["calibration"][k] for k in ("temperature", "fitted_on", "ece", "ece_raw")}}
+           if "calibration" in final else {}),
         "data": {"path": results["data"]["path"], "sizes": results["data"]["sizes"],
                  "fingerprint": results["data"]["fingerprint"]},
     }

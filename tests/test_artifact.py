@@ -35,7 +35,7 @@ def test_run_writes_artifact_with_complete_manifest(tiny_run):
     results = json.loads((tiny_run / "results.json").read_text())
     manifest = json.loads((art / "manifest.json").read_text())
     assert FILES <= {p.name for p in art.iterdir()}
-    assert results["artifact"] == str(art)
+    assert results["artifact"]["path"] == str(art)
     # Every file but the manifest is listed, with the sha256 (hashlib) and size it has on disk.
     on_disk = {p.name for p in art.iterdir() if p.is_file()} - {"manifest.json"}
     assert set(manifest["files"]) == on_disk
