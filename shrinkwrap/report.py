@@ -295,6 +295,56 @@ def plots(results: dict) -> list[tuple[str, str]]:
         ax.legend(fontsize=8)
         ax.grid(axis="y", alpha=0.3)
         out.append((f"Per-class recall drop against {steps[0]['name']} (above 0 = the class lost recall).", _png(fig)))
+    out += calibration_plots(results)
+    return out
+
+
+def calibration_plots(results: dict) -> list[tuple[str, str]]:
+    """A reliability diagram per step (its metrics' `reliability` bins) and, for the shipped step, accuracy
+    against coverage when abstaining below each calibrated top score (its `calibration` block)."""
+    from matplotlib.figure import Figure
+
+    from shrinkwrap.results import final_step
+
+    out = []
+    for s in results["steps"]:
+        bins = s["metrics"].get("reliability")
+        if not bins:
+            continue
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([0, 1], [0, 1], "--", color="#888", linewidth=1, label="perfect calibration")
+        ax.bar([b["lo"] for b in bins], [b["accuracy"] for b in bins], [b["hi"] - b["lo"] for b in bins],
+               align="edge", alpha=0.6, edgecolor="black", label="accuracy in the bin")
+        ax.plot([b["confidence"] for b in bins], [b["accuracy"] for b in bins], "o", color="tab:red",
+                markersize=4, label="mean confidence")
+        for b in bins:
+            ax.text((b["lo"] + b["hi"]) / 2, min(b["accuracy"] + 0.02, 1.0), str(b["count"]), ha="center", fontsize=7)
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1.08)
+        ax.set_xlabel("top-label confidence (softmax score)")
+        ax.set_ylabel("accuracy (test split)")
+        ax.legend(fontsize=8, loc="upper left")
+        ece = s["metrics"].get("ece")
+        out.append((f"Reliability diagram of {s['name']}: test texts binned by top score (count above each bar)"
+                    + (f"; ECE {ece:.4f}" if ece is not None else "") + ". Bars below the diagonal: over-confident.",
+                    _png(fig)))
+    final = final_step(results)
+    cal = final.get("calibration")
+    if cal and cal.get("coverage"):
+        pts = [c for c in cal["coverage"] if c["accuracy"] is not None]
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([c["coverage"] for c in pts], [c["accuracy"] for c in pts], "o-", color="tab:blue")
+        for c in pts:
+            ax.annotate(f"{c['threshold']:.2f}", (c["coverage"], c["accuracy"]), fontsize=7,
+                        textcoords="offset points", xytext=(3, 3))
+        ax.set_xlim(0, 1.05)
+        ax.set_xlabel("coverage (share of test texts answered)")
+        ax.set_ylabel("accuracy on the answered texts")
+        ax.grid(alpha=0.3)
+        out.append((f"Accuracy against coverage of {final['name']} when abstaining below each calibrated top score "
+                    f"(threshold beside each point; temperature {cal['temperature']:.3f}).", _png(fig)))
     return out
 
 
