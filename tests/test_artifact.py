@@ -165,3 +165,28 @@ def test_bench_target_loads_artifact_and_refuses_a_tampered_one(tiny_run, tmp_pa
     labels.write_text(labels.read_text().replace(results["data"]["label_names"][0], "x"))
     with pytest.raises(UserError, match="labels.json"):
         load_target(art)
+
+
+def test_model_card_has_per_class_change_with_counts_and_calibration(tiny_run):
+    from shrinkwrap.report import class_changes
+
+    card = (tiny_run / "artifact" / "README.md").read_text()
+    results = json.loads((tiny_run / "results.json").read_text())
+    final, teacher = results["steps"][-1], results["steps"][0]
+    assert f"## Per-class precision and recall of `{final['name']}` (change vs `{teacher['name']}`, points)" in card
+    ref, m = teacher["metrics"]["per_class"], final["metrics"]["per_class"]
+    for i, name in enumerate(results["data"]["label_names"]):
+        n = ref["support"][i]
+        lost = round((ref["recall"][i] - m["recall"][i]) * n)   # texts the teacher got right and the student not, net
+        texts = (f"lost {lost} of {n} texts" if lost > 0 else f"gained {-lost} of {n} texts" if lost < 0
+                 else f"none of {n} texts lost")
+        row = (f"| {name} | {n} | {m['precision'][i]:.3f} ({(m['precision'][i] - ref['precision'][i]) * 100:+.1f}) | "
+               f"{m['recall'][i]:.3f} ({(m['recall'][i] - ref['recall'][i]) * 100:+.1f}) | {texts} |")
+        assert row in card, row
+        assert class_changes(results, final)[i]["lost"] == lost
+    cal = final["calibration"]
+    manifest = json.loads((tiny_run / "artifact" / "manifest.json").read_text())
+    assert manifest["calibration"]["temperature"] == cal["temperature"]
+    assert f"Temperature {cal['temperature']:.3f}" in card
+    assert f"before → after: {cal['ece_raw']:.4f} → {cal['ece']:.4f}" in card
+    assert "not calibrated probabilities" not in card
