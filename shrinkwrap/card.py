@@ -174,6 +174,9 @@ def folder_card(manifest: dict, labels: list[str]) -> str:
         lines += [f"On {m['texts']} labelled texts of `{manifest['data']['path']}` (all rows), measured through this "
                   f"artifact: accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f}.", "",
                   per_class_table({"data": {"label_names": labels}, "steps": [{"name": "recall", "metrics": m}]}), ""]
+        caution = (manifest.get("data") or {}).get("caution")
+        if caution:
+            lines += [f"**Caution.** {caution[0].upper()}{caution[1:]}.", ""]
     else:
         lines += ["None recorded: build with `--data FILE` to measure accuracy on a labelled table.", ""]
     if "agreement_with_fp32" in model:

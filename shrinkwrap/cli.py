@@ -149,12 +149,15 @@ def cmd_package(args) -> int:
                       label=args.label, max_length=args.max_length, int8=args.int8, per_channel=args.per_channel,
                       opset=args.opset, threads=args.threads, log=log)
     manifest = read_json(out / MANIFEST_FILE, "artifact manifest")
+    caution = (manifest.get("data") or {}).get("caution")
     if args.json:
         print(json.dumps(manifest, indent=2))
     else:
         m = manifest.get("metrics")
         print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
                                     f"{m['texts']} texts)" if m else ""))
+    if caution:
+        _print_cautions([caution])
     return EXIT_OK
 
 

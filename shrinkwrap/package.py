@@ -244,11 +244,18 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
             src = tmp
             describe["model"] = _convert(model_dir, tmp, table, max_length, int8, per_channel, export_cfg, threads, log)
         if table is not None:
-            describe["data"] = {"path": str(Path(data).resolve()), "rows": len(table.texts)}
+            describe["data"] = {"path": str(Path(data).resolve()), "rows": len(table.texts),
+                                "caution": data_caution(len(table.texts))}
         measure = None if table is None else (lambda art: _table_metrics(art, table, labels))
         log(f"writing {out}")
         return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False},
                               describe, lambda manifest: folder_card(manifest, labels), measure, threads)
+
+
+def data_caution(rows: int) -> str:
+    """`package --data`: what its accuracy is and is not (manifest `data.caution`, the card, stderr)."""
+    return (f"the accuracy is measured on the {rows} rows given with --data; it is not a held-out figure unless "
+            f"those rows were held out from the model's training")
 
 
 def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per_channel: bool, export_cfg,

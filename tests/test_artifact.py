@@ -103,11 +103,17 @@ def test_package_transformers_folder_with_data(tiny_run, keyword_csv, tmp_path, 
     assert np.isclose(m["accuracy"], np.mean([p == y for p, (_, y) in zip(labels, rows)]))
     card = (out / "README.md").read_text()
     assert card.startswith("---\n") and "An average can hide a class that got worse" in card
+    # The rows given are not known to be held out: one caution line on stderr, in the manifest and the card.
+    caution = manifest["data"]["caution"]
+    assert f"on the {len(rows)} rows given with --data" in caution and "not a held-out figure" in caution
+    assert [line for line in stderr.splitlines() if line.startswith("caution:")] == [f"caution: {caution}"]
+    assert f"**Caution.** The accuracy is measured on the {len(rows)} rows given with --data" in card
 
 
 def test_package_fp32_and_onnx_folder(tiny_run, tmp_path, capsys):
     fp32 = tmp_path / "fp32"
-    assert _package(capsys, tiny_run / "student", "--out", fp32, "--no-int8")[0] == 0
+    code, _, stderr = _package(capsys, tiny_run / "student", "--out", fp32, "--no-int8")
+    assert code == 0 and "caution:" not in stderr   # nothing measured, nothing to caution about
     manifest = json.loads((fp32 / "manifest.json").read_text())
     assert manifest["model"]["precision"] == "fp32" and "metrics" not in manifest
     assert "None recorded" in (fp32 / "README.md").read_text()
