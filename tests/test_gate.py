@@ -256,3 +256,18 @@ def test_recipe_budget_shape_must_match_the_benchmark():
     raw["budget"] = {"sequence_length": 128, "size_mb": 10}
     with pytest.raises(UserError, match=r"set a latency limit too"):
         validate_recipe(raw, "r.yaml")
+
+
+def test_regression_mode_fails_when_larger_than_baseline(results, tmp_path):
+    # A baseline that really regresses on size only: 4/5 of today's bytes, so today is 25 % larger
+    # (hand-worked: 1 / 0.8 - 1 = 0.25); latency and accuracy are unchanged and must pass.
+    baseline = tmp_path / "baseline.json"
+    shutil.copy(results, baseline)
+    edit(baseline, lambda d: d["steps"][-1].update(size_bytes=d["steps"][-1]["size_bytes"] * 0.8))
+    budget = budget_file(tmp_path, regression={"size_percent": 10, "p95_percent": 10, "accuracy_points": 1})
+    r = gate(results, "--budget", budget, "--baseline", baseline)
+    assert r.returncode == 1, r.stdout
+    failed = [line for line in r.stdout.splitlines() if line.startswith("gate FAILED")]
+    assert len(failed) == 1 and "regression.size_percent: 25 %" in failed[0], r.stdout
+    r = gate(results, "--budget", budget_file(tmp_path, regression={"size_percent": 30}), "--baseline", baseline)
+    assert r.returncode == 0, r.stdout
