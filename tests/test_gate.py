@@ -300,3 +300,16 @@ def test_gate_prints_cautions_after_the_table_on_stderr(results, tmp_path):
     assert r.returncode == 0, r.stdout + r.stderr
     line = next(l for l in r.stderr.splitlines() if "too small to show the budget is met" in l)
     assert line.startswith("caution: ")
+def test_regression_mode_fails_when_larger_than_baseline(results, tmp_path):
+    # A baseline that really regresses on size only: 4/5 of today's bytes, so today is 25 % larger
+    # (hand-worked: 1 / 0.8 - 1 = 0.25); latency and accuracy are unchanged and must pass.
+    baseline = tmp_path / "baseline.json"
+    shutil.copy(results, baseline)
+    edit(baseline, lambda d: d["steps"][-1].update(size_bytes=d["steps"][-1]["size_bytes"] * 0.8))
+    budget = budget_file(tmp_path, regression={"size_percent": 10, "p95_percent": 10, "accuracy_points": 1})
+    r = gate(results, "--budget", budget, "--baseline", baseline)
+    assert r.returncode == 1, r.stdout
+    failed = [line for line in r.stdout.splitlines() if line.startswith("gate FAILED")]
+    assert len(failed) == 1 and "regression.size_percent: 25 %" in failed[0], r.stdout
+    r = gate(results, "--budget", budget_file(tmp_path, regression={"size_percent": 30}), "--baseline", baseline)
+    assert r.returncode == 0, r.stdout
