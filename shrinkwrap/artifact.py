@@ -10,7 +10,7 @@
 
 This module reads and checks artifacts; building them (which needs torch) is in shrinkwrap.package.
 It imports nothing beyond the standard library, numpy, onnxruntime, tokenizers and shrinkwrap's
-fingerprint/errors/onnx_tools/rundir/batches modules: keep it that way (tests/test_predict.py checks).
+fingerprint/errors/onnx_tools/rundir/batches/calibration modules: keep it that way (tests/test_predict.py checks).
 """
 from __future__ import annotations
 
@@ -22,6 +22,7 @@ from typing import Optional
 import numpy as np
 
 from shrinkwrap.batches import all_logits
+from shrinkwrap.calibration import softmax
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
 # Label names live in their own file (LABELS_FILE) rather than in the manifest: the manifest cannot
@@ -99,10 +100,12 @@ def verify(folder: str | Path) -> dict:
     return manifest
 
 
-def softmax(logits: np.ndarray) -> np.ndarray:
-    z = logits - logits.max(axis=1, keepdims=True)
-    e = np.exp(z)
-    return e / e.sum(axis=1, keepdims=True)
+def temperature_of(manifest: dict) -> float:
+    """The calibration temperature the manifest records (1.0 for an artifact packaged without one)."""
+    t = (manifest.get("calibration") or {}).get("temperature", 1.0)
+    if isinstance(t, bool) or not isinstance(t, (int, float)) or not np.isfinite(t) or t <= 0:
+        raise UserError(f"{MANIFEST_FILE}: calibration.temperature = {t!r} — expected a positive number")
+    return float(t)
 
 
 @dataclass
@@ -128,10 +131,17 @@ class Artifact:
         return all_logits(lambda batch: run_logits(self.session, batch),
                           examples, pad_id, len(self.labels), batch_size)
 
-    def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> list[dict]:
-        """{"text", "label", "scores": {label: probability}} for each text, in order."""
-        probs = softmax(self.logits(texts, batch_size))
-        return [{"text": t, "label": self.labels[int(p.argmax())],
+    @property
+    def temperature(self) -> float:
+        return temperature_of(self.manifest)
+
+    def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
+                min_confidence: float = 0.0) -> list[dict]:
+        """{"text", "label", "scores": {label: probability}} for each text, in order. Scores are the softmax of
+        the logits divided by the artifact's temperature; a text whose top score is below `min_confidence`
+        gets label None (abstains), its scores still given."""
+        probs = softmax(self.logits(texts, batch_size), self.temperature)
+        return [{"text": t, "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
                  "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)}}
                 for t, p in zip(texts, probs)]
 
@@ -184,6 +194,7 @@ def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 
         sess = session(folder / MODEL_FILE, threads)
     except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
         raise UserError(f"{folder / MODEL_FILE}: ONNX Runtime cannot load it — {str(e).splitlines()[0]}") from None
+    temperature_of(manifest)  # a bad temperature fails at load, not at the first prediction
     n_out = sess.get_outputs()[0].shape[-1]
     if isinstance(n_out, int) and n_out != len(labels):
         raise UserError(f"{folder / LABELS_FILE}: {len(labels)} labels but the model outputs {n_out} scores")

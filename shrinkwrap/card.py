@@ -5,7 +5,9 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Optional
 
-from shrinkwrap.report import NO_CAUTION, class_cautions, int8_agreement_lines, per_class_table, step_table
+from shrinkwrap.report import (NO_CAUTION, class_changes, class_cautions, int8_agreement_lines, per_class_table,
+                               step_table)
+from shrinkwrap.results import final_step, teacher_row
 
 def _front_matter(manifest: dict, name: str, base_model: Optional[str], dataset: Optional[str]) -> str:
     import yaml
@@ -46,6 +48,32 @@ def _base_model(recipe: dict) -> Optional[str]:
     base = recipe["teacher"]["base"]
     # Only a hub id belongs in the metadata: `bundled` and local paths mean nothing elsewhere.
     return None if base == "bundled" or Path(base).expanduser().exists() or base.startswith((".", "/", "~")) else base
+
+
+def _class_change_lines(results: dict) -> list[str]:
+    """Per class: the shipped step's precision and recall, their change against the teacher in points, and
+    the count of the class's test texts it lost or gained."""
+    if len(results["steps"]) < 2:
+        return []
+    final, ref = final_step(results), teacher_row(results)
+    rows = []
+    for c in class_changes(results, final):
+        texts = (f"lost {c['lost']} of {c['support']} texts" if c["lost"] > 0 else
+                 f"gained {-c['lost']} of {c['support']} texts" if c["lost"] < 0 else f"none of {c['support']} texts lost")
+        rows.append(f"| {c['class']} | {c['support']} | {c['precision']:.3f} ({c['precision_change_points']:+.1f}) | "
+                    f"{c['recall']:.3f} ({c['recall_change_points']:+.1f}) | {texts} |")
+    return [f"## Per-class precision and recall of `{final['name']}` (change vs `{ref['name']}`, points)", "",
+            "| class | support | precision | recall | texts |", "|---|---:|---:|---:|---|", *rows, ""]
+
+
+def _calibration_lines(results: dict) -> list[str]:
+    cal = final_step(results).get("calibration")
+    if not cal:
+        return []
+    return ["## Calibration", "",
+            f"Temperature {cal['temperature']:.3f}, fitted on {cal['validation_texts']} validation texts; the scores "
+            f"this artifact prints are softmax(logits / {cal['temperature']:.3f}). Test ECE (15 bins) before → after: "
+            f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}.", ""]
 
 
 def run_card(manifest: dict, results: dict) -> str:
@@ -100,6 +128,8 @@ def run_card(manifest: dict, results: dict) -> str:
         "",
         *(cautions or [f"- {NO_CAUTION}"]),
         "",
+        *_class_change_lines(results),
+        *_calibration_lines(results),
         "## Limitations",
         "",
         f"- The figures come from {sizes['test']} test texts: differences of a point or two between steps may be "
@@ -108,7 +138,9 @@ def run_card(manifest: dict, results: dict) -> str:
         *(["- Activations are quantised per batch at run time (dynamic int8), so a text's scores can differ "
            "in the last digits with the texts batched alongside it."]
           if "dynamic" in manifest["model"].get("quantization", {}).get("method", "") else []),
-        "- Scores are softmax outputs, not calibrated probabilities.",
+        ("- Scores are softmax outputs of the logits divided by the temperature above, fitted on the validation "
+         "split: calibrated on average over that data, not per text nor on texts of another kind."
+         if final_step(results).get("calibration") else "- Scores are softmax outputs, not calibrated probabilities."),
         "",
         *_usage(manifest),
         f"Recipe fingerprint `{results['recipe_fingerprint'][:16]}`; built {manifest['created_utc']}.",
@@ -143,6 +175,9 @@ def folder_card(manifest: dict, labels: list[str]) -> str:
         lines += [f"On {m['texts']} labelled texts of `{manifest['data']['path']}` (all rows), measured through this "
                   f"artifact: accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f}.", "",
                   per_class_table({"data": {"label_names": labels}, "steps": [{"name": "recall", "metrics": m}]}), ""]
+        caution = (manifest.get("data") or {}).get("caution")
+        if caution:
+            lines += [f"**Caution.** {caution[0].upper()}{caution[1:]}.", ""]
     else:
         lines += ["None recorded: build with `--data FILE` to measure accuracy on a labelled table.", ""]
     if "agreement_with_fp32" in model:

@@ -40,14 +40,20 @@ def _finish(results: dict, out: Path, quiet: bool, signing_key: Path | None = No
     from shrinkwrap.rundir import RESULTS_FILE, write_json_atomic
 
     if final_step(results)["format"] == "onnx":
-        results["artifact"] = str(from_run(results, out))
+        cal = final_step(results).get("calibration") or {}
+        results["artifact"] = {"path": str(from_run(results, out)),
+                               **{k: cal[k] for k in ("temperature", "ece", "ece_raw") if k in cal}}
         if signing_key:
             from shrinkwrap.signing import sign_artifact
 
-            sign_artifact(Path(results["artifact"]), signing_key)
+            sign_artifact(Path(results["artifact"]["path"]), signing_key)
         write_json_atomic(out / RESULTS_FILE, results)
         if not quiet:
-            print(f"[artifact] written to {results['artifact']}", file=sys.stderr, flush=True)
+            print(f"[artifact] written to {results['artifact']['path']}", file=sys.stderr, flush=True)
+    from shrinkwrap.report import cautions
+
+    results["cautions"] = cautions(results)
+    write_json_atomic(out / RESULTS_FILE, results)
     write_reports(results, out)
 
 
@@ -68,7 +74,10 @@ def cmd_run(args) -> int:
         print(step_table(results))
         print(f"\nresults: {out / RESULTS_FILE}\nreport:  {out / REPORT_FILE}, {out / REPORT_HTML_FILE}")
         if "artifact" in results:
-            print(f"artifact: {results['artifact']} (run it with: shrinkwrap predict {results['artifact']} TEXT)")
+            path = results["artifact"]["path"]
+            print(f"artifact: {path} (run it with: shrinkwrap predict {path} TEXT)")
+    if not recipe.budget.limits_set() or args.until:
+        _print_cautions(results["cautions"])
     if not recipe.budget.limits_set():
         return EXIT_OK
     if args.until:
@@ -78,7 +87,16 @@ def cmd_run(args) -> int:
 
     verdict = evaluate(results, recipe.budget, where=str(out / RESULTS_FILE), budget_source="recipe budget")
     print("\n" + format_table(verdict), file=sys.stderr if args.json else sys.stdout)
+    _print_cautions(results["cautions"])
     return verdict.exit_code
+
+
+def _print_cautions(lines: list[str]) -> None:
+    """After the table, on stderr: what the averages hide, one line each."""
+    sys.stdout.flush()
+    for line in lines:
+        print(f"caution: {line}", file=sys.stderr)
+    sys.stderr.flush()
 
 
 def cmd_gate(args) -> int:
@@ -92,6 +110,7 @@ def cmd_gate(args) -> int:
     if args.junit:
         write_text_atomic(Path(args.junit), junit_xml(verdict))
     print(json.dumps(verdict.as_dict(), indent=2) if args.json else format_table(verdict))
+    _print_cautions(verdict.cautions)
     return verdict.exit_code
 
 
@@ -142,7 +161,8 @@ def cmd_predict(args) -> int:
     from shrinkwrap.predict import run_predict
 
     return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
-                       trusted_key=args.trusted_key and Path(args.trusted_key))
+                       trusted_key=args.trusted_key and Path(args.trusted_key),
+                       min_confidence=args.min_confidence)
 
 
 def cmd_package(args) -> int:
@@ -159,12 +179,15 @@ def cmd_package(args) -> int:
 
         sign_artifact(out, key)
     manifest = read_json(out / MANIFEST_FILE, "artifact manifest")
+    caution = (manifest.get("data") or {}).get("caution")
     if args.json:
         print(json.dumps(manifest, indent=2))
     else:
         m = manifest.get("metrics")
         print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
                                     f"{m['texts']} texts)" if m else ""))
+    if caution:
+        _print_cautions([caution])
     return EXIT_OK
 
 
@@ -216,6 +239,16 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message: str):
         self.exit(2, f"error: {self.prog}: {message} (see {self.prog} --help)\n")
+
+
+def _probability(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} — a number from 0 to 1") from None
+    if not 0.0 <= value <= 1.0:  # also refuses nan
+        raise argparse.ArgumentTypeError(f"{text!r} — a number from 0 to 1")
+    return value
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -317,6 +350,9 @@ def build_parser() -> argparse.ArgumentParser:
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
     predict.add_argument("--trusted-key", metavar="PUBLIC.pem", help="Ed25519 public key (PEM): refuse the artifact unless manifest.sig is its valid signature of "
                      "manifest.json (exit 2)")
+    predict.add_argument("--min-confidence", type=_probability, default=0.0, metavar="P",
+                         help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
+                              "still printed (default: 0, always answer; the report plots accuracy against coverage)")
     predict.set_defaults(func=cmd_predict)
 
     from shrinkwrap.recipe import ExportConfig

@@ -6,7 +6,7 @@ cannot answer (a field missing, latency measured at another shape) is bad input,
 from __future__ import annotations
 
 import xml.etree.ElementTree as ET
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Optional
 
@@ -42,6 +42,7 @@ class Verdict:
     step: str
     budget_source: str
     checks: list[Check]
+    cautions: list = field(default_factory=list)   # report.cautions: what the averages hide, one line each
 
     @property
     def failed(self) -> list[Check]:
@@ -53,7 +54,7 @@ class Verdict:
 
     def as_dict(self) -> dict:
         return {"results": self.results_path, "step": self.step, "budget": self.budget_source,
-                "passed": not self.failed, "checks": [asdict(c) for c in self.checks]}
+                "passed": not self.failed, "checks": [asdict(c) for c in self.checks], "cautions": self.cautions}
 
 
 def _num(x: Optional[float]) -> str:
@@ -162,6 +163,25 @@ def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str,
     return out
 
 
+def _class_recall_check(results: dict, step: dict, allowed: float, where: str) -> Check:
+    """The class with the largest recall loss vs the teacher, named with its counts."""
+    ref = teacher_row(results)
+    names = (results.get("data") or {}).get("label_names") or []
+    recall = _field(step, "metrics.per_class.recall", where)
+    ref_recall = _field(ref, "metrics.per_class.recall", where)
+    support = _field(ref, "metrics.per_class.support", where)
+    if not (len(recall) == len(ref_recall) == len(support) == len(names)):
+        raise UserError(f"{where}: per-class recall of {step['name']} and {ref['name']} do not cover the "
+                        f"{len(names)} classes")
+    drops = [(ref_recall[i] - recall[i]) * 100 for i in range(len(names))]
+    worst = max(range(len(names)), key=lambda i: drops[i])
+    lost = round((ref_recall[worst] - recall[worst]) * support[worst])
+    counts = f"lost {lost} of {support[worst]} texts" if lost >= 0 else f"gained {-lost} of {support[worst]} texts"
+    return _check("max_class_recall_drop_points",
+                  f"class {names[worst]!r}: recall {_num(ref_recall[worst])} → {_num(recall[worst])} vs {ref['name']}, "
+                  f"{counts} (largest of {len(names)} classes)", allowed, drops[worst], "<=", " points")
+
+
 def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = None, baseline: Optional[dict] = None,
              where: str = "results.json", baseline_where: str = "baseline", budget_source: str = "recipe") -> Verdict:
     """Every limit the budget sets, checked against one step. Raises UserError when results cannot answer one."""
@@ -197,6 +217,20 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
     if budget.min_accuracy is not None:
         checks.append(_check("min_accuracy", "accuracy on the test split", budget.min_accuracy,
                              _number(step, "metrics.accuracy", where), ">="))
+    if budget.max_class_recall_drop_points is not None:
+        checks.append(_class_recall_check(results, step, budget.max_class_recall_drop_points, where))
+    if budget.min_agreement is not None:
+        checks.append(_check("min_agreement", f"share of test texts given {teacher_row(results)['name']}'s label",
+                             budget.min_agreement, _number(step, "agreement_with_teacher", where), ">="))
+    if budget.max_ece is not None:
+        if "calibration" in step:
+            ece = _number(step, "calibration.ece", where)
+            detail = (f"test ECE, 15 bins, with temperature {_num(step['calibration']['temperature'])} fitted on "
+                      f"validation (without: {_num(step['calibration']['ece_raw'])})")
+        else:  # a step that does not ship: its scores as they are
+            ece = _number(step, "metrics.ece", where, "these results predate calibration figures; run again")
+            detail = "test ECE, 15 bins, uncalibrated scores (this step is not the shipped artifact)"
+        checks.append(_check("max_ece", detail, budget.max_ece, ece, "<="))
     tol = budget.regression
     tolerances = {k: v for k, v in tol.model_dump().items() if v is not None}
     if baseline is not None:
@@ -212,7 +246,9 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
         keys = [k for k in BudgetConfig.model_fields if k not in ("batch_size", "sequence_length", "accuracy_drop_upper_bound")]
         raise UserError(f"{budget_source}: the budget sets no limit to check" + (" without --baseline" if checks else "")
                         + f" — set at least one of {', '.join(keys)}")
-    return Verdict(where, step["name"], budget_source, checks)
+    from shrinkwrap.report import cautions
+
+    return Verdict(where, step["name"], budget_source, checks, cautions(results, budget))
 
 
 def format_table(verdict: Verdict) -> str:

@@ -14,13 +14,13 @@ import time
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.artifact import FORMAT, FORMAT_VERSION, file_entries, is_artifact, open_folder
+from shrinkwrap.artifact import FORMAT, FORMAT_VERSION, file_entries, is_artifact, labels_of_config, open_folder
 from shrinkwrap.card import folder_card, run_card
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
 from shrinkwrap.results import final_step, step_named
 from shrinkwrap.rundir import (ARTIFACT_DIR, CARD_FILE, CONFIG_FILE, LABELS_FILE, MANIFEST_FILE, MODEL_FILE, STEP_FILE,
-                               TOKENIZER_FILE, check_out_dir, read_json_or_none, scratch)
+                               TOKENIZER_FILE, check_out_dir, read_json, read_json_or_none, scratch)
 
 # Tokenizer files the transformers libraries may write; whichever the source has travel with the model.
 TOKENIZER_FILES = (TOKENIZER_FILE, "tokenizer_config.json", "special_tokens_map.json", "added_tokens.json",
@@ -158,6 +158,8 @@ def from_run(results: dict, run_dir: Path) -> Path:
         "model": model,
         "metrics": _step_metrics(final, len(results["test_labels"])),
         "recipe_fingerprint": results["recipe_fingerprint"],
+        **({"calibration": {k: final["calibration"][k] for k in ("temperature", "fitted_on", "ece", "ece_raw")}}
+           if "calibration" in final else {}),
         "data": {"path": Path(results["data"]["path"]).name, "sizes": results["data"]["sizes"],
                  "fingerprint": results["data"]["fingerprint"]},
     }
@@ -169,15 +171,12 @@ def from_run(results: dict, run_dir: Path) -> Path:
 
 def _pad_id(folder: Path) -> int:
     """The pad token's id, read from tokenizer.json (its padding section, else the [PAD]/<pad> token)."""
-    tok = json.loads((folder / TOKENIZER_FILE).read_text(encoding="utf-8"))
+    tok = read_json(folder / TOKENIZER_FILE, "tokenizer file")
     if tok.get("padding") and "pad_id" in tok["padding"]:
         return int(tok["padding"]["pad_id"])
-    try:
-        config = json.loads((folder / "special_tokens_map.json").read_text(encoding="utf-8"))
-        pad = config.get("pad_token")
-        pad = pad.get("content") if isinstance(pad, dict) else pad
-    except (OSError, ValueError):
-        pad = None
+    special = read_json_or_none(folder / "special_tokens_map.json")
+    pad = special.get("pad_token") if isinstance(special, dict) else None
+    pad = pad.get("content") if isinstance(pad, dict) else pad
     for t in tok.get("added_tokens", []):
         if t.get("content") in (pad, "[PAD]", "<pad>"):
             return int(t["id"])
@@ -188,10 +187,10 @@ def _pad_id(folder: Path) -> int:
 
 
 def _labels_of(config: dict, where: Path) -> list[str]:
-    id2label = config.get("id2label") or {}
-    if not id2label:
-        raise UserError(f"{where / 'config.json'}: no id2label — an artifact needs the class names")
-    return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
+    labels = labels_of_config(config)
+    if not labels:
+        raise UserError(f"{where / CONFIG_FILE}: no id2label — an artifact needs the class names")
+    return labels
 
 
 def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: str = "text", label: str = "label",
@@ -217,10 +216,7 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
     if not (model_dir / "config.json").is_file():
         raise UserError(f"{model_dir}: no config.json — expected a transformers classification folder or a "
                         f"shrinkwrap step folder with {MODEL_FILE}")
-    try:
-        config = json.loads((model_dir / "config.json").read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise UserError(f"{model_dir / 'config.json'}: not valid JSON ({str(e).splitlines()[0]})") from None
+    config = read_json(model_dir / CONFIG_FILE, "model config")
     labels = _labels_of(config, model_dir)
     if not (model_dir / TOKENIZER_FILE).is_file():
         raise UserError(f"{model_dir}: no {TOKENIZER_FILE} — the artifact needs the (fast) tokenizer the model "
@@ -250,30 +246,33 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
             describe["model"] = _convert(model_dir, tmp, table, max_length, int8, per_channel, export_cfg, threads, log)
         if table is not None:
             describe["data"] = {"path": Path(data).name, "rows": len(table.texts),
-                                "fingerprint": sha256_file(Path(data)) if Path(data).is_file() else None}
+                                "fingerprint": sha256_file(Path(data)) if Path(data).is_file() else None,
+                                "caution": data_caution(len(table.texts))}
         measure = None if table is None else (lambda art: _table_metrics(art, table, labels))
         log(f"writing {out}")
         return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False},
                               describe, lambda manifest: folder_card(manifest, labels), measure, threads)
 
 
+def data_caution(rows: int) -> str:
+    """`package --data`: what its accuracy is and is not (manifest `data.caution`, the card, stderr)."""
+    return (f"the accuracy is measured on the {rows} rows given with --data; it is not a held-out figure unless "
+            f"those rows were held out from the model's training")
+
+
 def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per_channel: bool, export_cfg,
              threads: int, log) -> dict:
     """tmp/model.onnx (+ config and tokenizer) from a transformers folder; returns the manifest's model facts."""
-    from transformers import AutoTokenizer
 
     from shrinkwrap.data import Split
     from shrinkwrap.batches import collate, encode
-    from shrinkwrap.models import load_classifier
+    from shrinkwrap.models import load_classifier, load_tokenizer
     from shrinkwrap.recipe import OnnxQuantizeConfig
     from shrinkwrap.onnx_ops import agreement, export_checked, quantize_dynamic
 
     log(f"loading {model_dir}")
     model = load_classifier(str(model_dir))
-    try:
-        tokenizer = AutoTokenizer.from_pretrained(str(model_dir), use_fast=True)
-    except (OSError, ValueError) as e:
-        raise UserError(f"{model_dir}: cannot load its tokenizer — {str(e).splitlines()[0]}") from None
+    tokenizer = load_tokenizer(str(model_dir), what=str(model_dir))
     texts = table.texts[:PARITY_TEXTS] if table is not None else PROBE_TEXTS
     examples = encode(tokenizer, Split(texts=texts, labels=None), max_length)
     pad_id = tokenizer.pad_token_id or 0

@@ -1,5 +1,8 @@
 """`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from an artifact.
 
+Scores are calibrated: the softmax of the logits divided by the temperature the manifest records.
+With --min-confidence P, a text whose top score is below P gets "label": null.
+
 Texts come from the arguments, from --file (one per line), or from stdin (one per line). All input
 is read and checked before the first line is printed, so a bad line never leaves half an output;
 then it is classified a chunk at a time, so a file of millions of lines runs in flat memory.
@@ -90,7 +93,8 @@ def read_texts(texts: list[str], file: Optional[str], stdin) -> Iterator[list[st
 
 
 def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
-                stdin: TextIO = sys.stdin, stdout: TextIO = sys.stdout, trusted_key: Optional[Path] = None) -> int:
+                stdin: TextIO = sys.stdin, stdout: TextIO = sys.stdout, trusted_key: Optional[Path] = None,
+                min_confidence: float = 0.0) -> int:
     if trusted_key is not None:  # the signature vouches for the manifest, whose hashes vouch for the rest
         from shrinkwrap.signing import check_signature
 
@@ -101,7 +105,7 @@ def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size
     chunks = read_texts(texts, file, stdin)
     model = load(artifact, threads, verified=manifest)
     for chunk in chunks:
-        for row in model.predict(chunk, batch_size):
+        for row in model.predict(chunk, batch_size, min_confidence):
             stdout.write(json.dumps(row, ensure_ascii=False) + "\n")
     stdout.flush()
     return EXIT_OK

@@ -220,6 +220,13 @@ class BudgetConfig(_Section):
     accuracy_drop_upper_bound: bool = Field(
         False, description="limit the upper end of the drop's 95 % bootstrap interval instead of the measured drop (stricter)")
     min_accuracy: Optional[float] = Field(None, ge=0, le=1, description="smallest accuracy of the gated step, as a fraction")
+    max_class_recall_drop_points: Optional[float] = Field(
+        None, ge=0, le=100, description="largest recall loss of any one class vs the teacher, points (the gate names the class)")
+    min_agreement: Optional[float] = Field(
+        None, ge=0, le=1, description="smallest share of test texts given the teacher's label, as a fraction")
+    max_ece: Optional[float] = Field(
+        None, ge=0, le=1, description="largest expected calibration error (15 bins) of the shipped artifact on the test "
+        "split, with its temperature")
     regression: RegressionTolerance = Field(
         default_factory=RegressionTolerance, description="limits against a baseline results.json (shrinkwrap gate --baseline)")
 
@@ -235,7 +242,8 @@ class BudgetConfig(_Section):
     def limits_set(self) -> bool:
         """Whether a limit is set that needs no baseline (what `shrinkwrap run` can check at its end)."""
         return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
-                                           self.accuracy_drop_points, self.min_accuracy))
+                                           self.accuracy_drop_points, self.min_accuracy,
+                                           self.max_class_recall_drop_points, self.min_agreement, self.max_ece))
 
 
 class Recipe(_Section):

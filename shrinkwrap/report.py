@@ -11,10 +11,18 @@ from shrinkwrap.errors import UserError
 from shrinkwrap.results import load, teacher_row
 from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, check_out_dir, write_text_atomic
 
-# A class whose recall fell this many points more than the average did is called out (common practice
-# in model reviews: look at the worst class, not only the mean).
-CLASS_DROP_POINTS = 5.0
-NO_CAUTION = "No class lost much more recall than the average accuracy did."
+# A class is called out when it lost more of its texts than the average loss explains: a one-sided
+# binomial test of its lost texts among its test texts, at the rate the accuracy fell overall (at least
+# CLASS_FLOOR_RATE, so that a step with no average loss is not flagged for one unlucky text), p < CLASS_P,
+# and at least CLASS_MIN_LOST texts. A fixed points threshold misses a 5-point loss on a large class.
+CLASS_P = 0.05
+CLASS_FLOOR_RATE = 0.01
+CLASS_MIN_LOST = 2
+CLASS_RULE = (f"a class is named when it lost at least {CLASS_MIN_LOST} texts and more than the average drop explains "
+              f"(one-sided binomial test at the overall loss rate, at least {CLASS_FLOOR_RATE:.0%}, p < {CLASS_P})")
+NO_CAUTION = f"No class lost more recall than the average accuracy drop explains ({CLASS_RULE})."
+# Share of test tokens a trimmed vocabulary no longer holds above which the trimming is called out.
+OOV_CAUTION = 0.005
 
 
 def _mb(n: int) -> str:
@@ -63,20 +71,76 @@ def step_table(results: dict) -> str:
     return "\n".join([_md_table(header, rows, 2), "", caption])
 
 
-def class_cautions(results: dict) -> list[str]:
-    """Lines naming each step's class whose recall fell much more than the accuracy did."""
+def class_changes(results: dict, step: dict) -> list[dict]:
+    """Per class, the step's precision and recall and their change vs the teacher, with counts of texts."""
     names = results["data"]["label_names"]
-    ref = teacher_row(results)
-    ref_recall = ref["metrics"]["per_class"]["recall"]
+    ref = teacher_row(results)["metrics"]["per_class"]
+    m = step["metrics"]["per_class"]
+    out = []
+    for i, name in enumerate(names):
+        n = int(ref["support"][i])
+        lost = round((ref["recall"][i] - m["recall"][i]) * n)
+        out.append({"class": name, "support": n, "precision": m["precision"][i], "recall": m["recall"][i],
+                    "precision_change_points": (m["precision"][i] - ref["precision"][i]) * 100,
+                    "recall_change_points": (m["recall"][i] - ref["recall"][i]) * 100, "lost": lost})
+    return out
+
+
+def _lost_too_many(lost: int, support: int, average_drop_points: float) -> tuple[bool, float]:
+    from scipy.stats import binomtest
+
+    if lost < CLASS_MIN_LOST or support == 0:
+        return False, 1.0
+    rate = max(CLASS_FLOOR_RATE, average_drop_points / 100)
+    p = float(binomtest(lost, support, min(rate, 1.0), alternative="greater").pvalue)
+    return p < CLASS_P, p
+
+
+def class_caution_list(results: dict) -> list[str]:
+    """One plain line per step and class that lost much more than the average (CLASS_RULE)."""
     out = []
     for s in results["steps"][1:]:
-        recall = s["metrics"]["per_class"]["recall"]
-        drops = [(ref_recall[i] - recall[i]) * 100 for i in range(len(names))]
-        worst = max(range(len(names)), key=lambda i: drops[i])
-        if drops[worst] >= max(CLASS_DROP_POINTS, s["accuracy_drop"] + CLASS_DROP_POINTS):
-            out.append(f"- **{s['name']}**: recall of class `{names[worst]}` fell {drops[worst]:.1f} points "
-                       f"({ref_recall[worst]:.3f} → {recall[worst]:.3f}) while accuracy fell {s['accuracy_drop']:.2f}: "
-                       f"the average hides it.")
+        for c in class_changes(results, s):
+            flagged, p = _lost_too_many(c["lost"], c["support"], s["accuracy_drop"])
+            if flagged:
+                out.append(f"{s['name']}: class '{c['class']}' lost {c['lost']} of {c['support']} texts "
+                           f"(recall {c['recall_change_points']:+.1f} points) while accuracy fell "
+                           f"{s['accuracy_drop']:.2f} points — more than the average explains (binomial p = {p:.2g})")
+    return out
+
+
+def class_cautions(results: dict) -> list[str]:
+    """report.md / card bullets of class_caution_list."""
+    return [f"- {line}." for line in class_caution_list(results)]
+
+
+def cautions(results: dict, budget=None) -> list[str]:
+    """Every caution, one line each, for the console (stderr) and results.json `cautions`: what the
+    table's averages can hide. `budget`: a BudgetConfig (else the recipe's)."""
+    from shrinkwrap.results import final_step
+
+    out = class_caution_list(results)
+    if budget is None:
+        raw = (results.get("recipe") or {}).get("budget") or {}
+        allowed = raw.get("accuracy_drop_points")
+    else:
+        allowed = budget.accuracy_drop_points
+    final = final_step(results)
+    ci = final.get("accuracy_drop_ci95")
+    if allowed is not None and ci and final["accuracy_drop"] <= allowed < ci[1]:
+        out.append(f"{final['name']}: the accuracy drop {final['accuracy_drop']:.2f} points is within the budget "
+                   f"{allowed:g}, but its 95 % upper bound {ci[1]:.2f} is not — the test split is too small to show "
+                   f"the budget is met")
+    overlap = (results.get("data") or {}).get("transfer_in_test")
+    if overlap:
+        out.append(f"{overlap} transfer texts also occur in the test split: the student saw the teacher's answers "
+                   f"on them, so its test accuracy is optimistic")
+    for s in results["steps"]:
+        rate = s["info"].get("test_oov_rate") if isinstance(s.get("info"), dict) else None
+        if rate is not None and rate > OOV_CAUTION:
+            out.append(f"{s['name']}: {rate * 100:.2f} % of the test tokens ({round(rate * s['info']['test_tokens'])} "
+                       f"of {s['info']['test_tokens']}) are no longer in the trimmed vocabulary and fall back to "
+                       f"unknown or shorter pieces")
     return out
 
 
@@ -112,6 +176,34 @@ def int8_agreement_lines(results: dict) -> list[str]:
             for s in results["steps"] if "agreement_with_fp32" in s]
 
 
+def calibration_lines(results: dict) -> list[str]:
+    """report.md: per-class precision / recall change of the shipped step, calibration per step, and the
+    shipped step's accuracy against coverage when abstaining below each threshold."""
+    from shrinkwrap.results import final_step
+
+    final = final_step(results)
+    out = []
+    if len(results["steps"]) > 1:
+        rows = [[c["class"], str(c["support"]), f"{c['precision']:.3f} ({c['precision_change_points']:+.1f})",
+                 f"{c['recall']:.3f} ({c['recall_change_points']:+.1f})",
+                 f"lost {c['lost']} of {c['support']}" if c["lost"] >= 0 else f"gained {-c['lost']} of {c['support']}"]
+                for c in class_changes(results, final)]
+        out += [f"## Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)", "",
+                _md_table(["class", "support", "precision", "recall", "texts"], rows, 1), ""]
+    rows = [[s["name"], *(f"{s['metrics'][k]:.4f}" if k in s["metrics"] else "—" for k in ("ece", "brier", "nll"))]
+            for s in results["steps"]]
+    out += ["## Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", "", _md_table(["step", "ECE", "Brier", "NLL"], rows, 1), ""]
+    cal = final.get("calibration")
+    if cal:
+        out += [f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: test ECE "
+                f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top score "
+                f"(`predict --min-confidence`):", "",
+                _md_table(["threshold", "coverage", "accuracy"],
+                          [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
+                            "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0), ""]
+    return out
+
+
 def markdown_report(results: dict) -> str:
     agreement = int8_agreement_lines(results)
     lines = [
@@ -125,8 +217,9 @@ def markdown_report(results: dict) -> str:
         per_class_table(results),
         "",
     ]
-    cautions = class_cautions(results)
-    lines += ["## Cautions", ""] + (cautions or [f"- {NO_CAUTION}"]) + [""]
+    lines += calibration_lines(results)
+    found = [f"- {c}." for c in cautions(results)]
+    lines += ["## Cautions", ""] + (found or [f"- {NO_CAUTION}"]) + [f"- Rule for classes: {CLASS_RULE}.", ""]
     if results["data"]["notes"]:
         lines += ["## Data notes", ""] + [f"- {n}" for n in results["data"]["notes"]] + [""]
     lines += ["## Setup", "", *(f"- {line}" for line in setup_lines(results)), ""]
@@ -202,6 +295,56 @@ def plots(results: dict) -> list[tuple[str, str]]:
         ax.legend(fontsize=8)
         ax.grid(axis="y", alpha=0.3)
         out.append((f"Per-class recall drop against {steps[0]['name']} (above 0 = the class lost recall).", _png(fig)))
+    out += calibration_plots(results)
+    return out
+
+
+def calibration_plots(results: dict) -> list[tuple[str, str]]:
+    """A reliability diagram per step (its metrics' `reliability` bins) and, for the shipped step, accuracy
+    against coverage when abstaining below each calibrated top score (its `calibration` block)."""
+    from matplotlib.figure import Figure
+
+    from shrinkwrap.results import final_step
+
+    out = []
+    for s in results["steps"]:
+        bins = s["metrics"].get("reliability")
+        if not bins:
+            continue
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([0, 1], [0, 1], "--", color="#888", linewidth=1, label="perfect calibration")
+        ax.bar([b["lo"] for b in bins], [b["accuracy"] for b in bins], [b["hi"] - b["lo"] for b in bins],
+               align="edge", alpha=0.6, edgecolor="black", label="accuracy in the bin")
+        ax.plot([b["confidence"] for b in bins], [b["accuracy"] for b in bins], "o", color="tab:red",
+                markersize=4, label="mean confidence")
+        for b in bins:
+            ax.text((b["lo"] + b["hi"]) / 2, min(b["accuracy"] + 0.02, 1.0), str(b["count"]), ha="center", fontsize=7)
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1.08)
+        ax.set_xlabel("top-label confidence (softmax score)")
+        ax.set_ylabel("accuracy (test split)")
+        ax.legend(fontsize=8, loc="upper left")
+        ece = s["metrics"].get("ece")
+        out.append((f"Reliability diagram of {s['name']}: test texts binned by top score (count above each bar)"
+                    + (f"; ECE {ece:.4f}" if ece is not None else "") + ". Bars below the diagonal: over-confident.",
+                    _png(fig)))
+    final = final_step(results)
+    cal = final.get("calibration")
+    if cal and cal.get("coverage"):
+        pts = [c for c in cal["coverage"] if c["accuracy"] is not None]
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([c["coverage"] for c in pts], [c["accuracy"] for c in pts], "o-", color="tab:blue")
+        for c in pts:
+            ax.annotate(f"{c['threshold']:.2f}", (c["coverage"], c["accuracy"]), fontsize=7,
+                        textcoords="offset points", xytext=(3, 3))
+        ax.set_xlim(0, 1.05)
+        ax.set_xlabel("coverage (share of test texts answered)")
+        ax.set_ylabel("accuracy on the answered texts")
+        ax.grid(alpha=0.3)
+        out.append((f"Accuracy against coverage of {final['name']} when abstaining below each calibrated top score "
+                    f"(threshold beside each point; temperature {cal['temperature']:.3f}).", _png(fig)))
     return out
 
 
@@ -246,13 +389,13 @@ def html_report(results: dict) -> str:
     header, rows, caption = step_rows(results)
     figures = "".join(f'<figure><img src="{uri}" alt="{html.escape(cap)}"><figcaption>{html.escape(cap)}</figcaption>'
                       f"</figure>" for cap, uri in plots(results))
-    cautions = [c.removeprefix("- ") for c in class_cautions(results)] or [NO_CAUTION]
+    found = cautions(results) or [NO_CAUTION]
     parts = [
         f"<h1>{html.escape(title)}</h1>",
         "<h2>Steps</h2>", _html_table(header, rows, 2), f"<p class=caption>{_inline(caption)}</p>",
         "<h2>Plots</h2>", figures,
         "<h2>Per-class recall (test split)</h2>", _html_table(*per_class_rows(results), 1),
-        "<h2>Cautions</h2>", "<ul>" + "".join(f"<li>{_inline(c)}</li>" for c in cautions) + "</ul>",
+        "<h2>Cautions</h2>", "<ul>" + "".join(f"<li>{_inline(c)}</li>" for c in found) + "</ul>",
     ]
     if results["data"]["notes"]:
         parts += ["<h2>Data notes</h2>", "<ul>" + "".join(f"<li>{_inline(n)}</li>" for n in results["data"]["notes"]) + "</ul>"]

@@ -130,6 +130,35 @@ def bench_step(ctx: Context, step: Step) -> dict:
     return result
 
 
+def calibrate_step(ctx: Context, step: Step) -> dict:
+    """Temperature scaling of the shipped step (Guo et al. 2017): one T fitted on the validation split's
+    logits to minimise their NLL, then the test split's calibration with and without it, and the
+    accuracy-against-coverage curve the report plots for abstention (predict --min-confidence)."""
+    from shrinkwrap import calibration
+    from shrinkwrap.batches import all_logits
+    from shrinkwrap.bench.targets import load_target
+
+    folder, b = ctx.outputs[step.name], ctx.recipe.bench
+    tokens = ctx.tokens_of(folder)
+    n = len(ctx.data.label_names)
+    target = load_target(folder, b.threads)
+    try:
+        val = all_logits(target.logits, tokens.encoded["validation"], tokens.pad_id, n, b.eval_batch_size)
+        test = all_logits(target.logits, tokens.encoded["test"], tokens.pad_id, n, b.eval_batch_size)
+    finally:
+        target.release()
+    y_val, y_test = ctx.data.validation.labels, ctx.data.test.labels
+    t = calibration.fit_temperature(val, y_val) if len(y_val) else 1.0
+    ctx.log(f"[{step.name}] temperature {t:.3f} fitted on {len(y_val)} validation texts")
+    scaled, raw = calibration.figures(test, y_test, t), calibration.figures(test, y_test)
+    return {"temperature": t, "fitted_on": "validation", "validation_texts": int(len(y_val)),
+            "validation_nll_raw": calibration.nll(calibration.softmax(val), y_val) if len(y_val) else None,
+            "validation_nll": calibration.nll(calibration.softmax(val, t), y_val) if len(y_val) else None,
+            "ece": scaled["ece"], "ece_raw": raw["ece"], "brier": scaled["brier"], "nll": scaled["nll"],
+            "reliability": scaled["reliability"],
+            "coverage": calibration.coverage_curve(calibration.softmax(test, t), y_test)}
+
+
 def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[str] = None) -> dict:
     """Runs (or reuses) every enabled step in order, stopping after `until` when given; returns the
     results (also in out/results.json). A helper process of a distributed run returns {}."""
@@ -146,6 +175,10 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
     # A killed run's .partial-<step> folders are never mistaken for finished steps (those have step.json
     # in <step>/); run_step resumes one from its checkpoint when the step's fingerprint still matches.
     results = results_schema.header(recipe, describe(), ctx.data, ctx.data_fingerprint, ctx.tokenizer_fp)
+    if ctx.transfer is not None and distributed.is_main():
+        # Transfer texts the test split also holds: the student is taught the teacher's answers on them.
+        test_texts = set(ctx.data.test.texts)
+        results["data"]["transfer_in_test"] = sum(t in test_texts for batch in ctx.transfer_batches() for t in batch)
     teacher = None
     for step in steps:
         record = run_step(ctx, step)
@@ -157,4 +190,8 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
             write_json_atomic(out / RESULTS_FILE, results)
         if step.name == until:
             break
+    if distributed.is_main() and results["steps"] and results["steps"][-1]["format"] == "onnx":
+        last = next(s for s in steps if s.name == results["steps"][-1]["name"])
+        results["steps"][-1]["calibration"] = calibrate_step(ctx, last)
+        write_json_atomic(out / RESULTS_FILE, results)
     return results if distributed.is_main() else {}

@@ -35,7 +35,7 @@ def test_run_writes_artifact_with_complete_manifest(tiny_run):
     results = json.loads((tiny_run / "results.json").read_text())
     manifest = json.loads((art / "manifest.json").read_text())
     assert FILES <= {p.name for p in art.iterdir()}
-    assert results["artifact"] == str(art)
+    assert results["artifact"]["path"] == str(art)
     # Every file but the manifest is listed, with the sha256 (hashlib) and size it has on disk.
     on_disk = {p.name for p in art.iterdir() if p.is_file()} - {"manifest.json"}
     assert set(manifest["files"]) == on_disk
@@ -103,11 +103,17 @@ def test_package_transformers_folder_with_data(tiny_run, keyword_csv, tmp_path, 
     assert np.isclose(m["accuracy"], np.mean([p == y for p, (_, y) in zip(labels, rows)]))
     card = (out / "README.md").read_text()
     assert card.startswith("---\n") and "An average can hide a class that got worse" in card
+    # The rows given are not known to be held out: one caution line on stderr, in the manifest and the card.
+    caution = manifest["data"]["caution"]
+    assert f"on the {len(rows)} rows given with --data" in caution and "not a held-out figure" in caution
+    assert [line for line in stderr.splitlines() if line.startswith("caution:")] == [f"caution: {caution}"]
+    assert f"**Caution.** The accuracy is measured on the {len(rows)} rows given with --data" in card
 
 
 def test_package_fp32_and_onnx_folder(tiny_run, tmp_path, capsys):
     fp32 = tmp_path / "fp32"
-    assert _package(capsys, tiny_run / "student", "--out", fp32, "--no-int8")[0] == 0
+    code, _, stderr = _package(capsys, tiny_run / "student", "--out", fp32, "--no-int8")
+    assert code == 0 and "caution:" not in stderr   # nothing measured, nothing to caution about
     manifest = json.loads((fp32 / "manifest.json").read_text())
     assert manifest["model"]["precision"] == "fp32" and "metrics" not in manifest
     assert "None recorded" in (fp32 / "README.md").read_text()
@@ -165,3 +171,28 @@ def test_bench_target_loads_artifact_and_refuses_a_tampered_one(tiny_run, tmp_pa
     labels.write_text(labels.read_text().replace(results["data"]["label_names"][0], "x"))
     with pytest.raises(UserError, match="labels.json"):
         load_target(art)
+
+
+def test_model_card_has_per_class_change_with_counts_and_calibration(tiny_run):
+    from shrinkwrap.report import class_changes
+
+    card = (tiny_run / "artifact" / "README.md").read_text()
+    results = json.loads((tiny_run / "results.json").read_text())
+    final, teacher = results["steps"][-1], results["steps"][0]
+    assert f"## Per-class precision and recall of `{final['name']}` (change vs `{teacher['name']}`, points)" in card
+    ref, m = teacher["metrics"]["per_class"], final["metrics"]["per_class"]
+    for i, name in enumerate(results["data"]["label_names"]):
+        n = ref["support"][i]
+        lost = round((ref["recall"][i] - m["recall"][i]) * n)   # texts the teacher got right and the student not, net
+        texts = (f"lost {lost} of {n} texts" if lost > 0 else f"gained {-lost} of {n} texts" if lost < 0
+                 else f"none of {n} texts lost")
+        row = (f"| {name} | {n} | {m['precision'][i]:.3f} ({(m['precision'][i] - ref['precision'][i]) * 100:+.1f}) | "
+               f"{m['recall'][i]:.3f} ({(m['recall'][i] - ref['recall'][i]) * 100:+.1f}) | {texts} |")
+        assert row in card, row
+        assert class_changes(results, final)[i]["lost"] == lost
+    cal = final["calibration"]
+    manifest = json.loads((tiny_run / "artifact" / "manifest.json").read_text())
+    assert manifest["calibration"]["temperature"] == cal["temperature"]
+    assert f"Temperature {cal['temperature']:.3f}" in card
+    assert f"before → after: {cal['ece_raw']:.4f} → {cal['ece']:.4f}" in card
+    assert "not calibrated probabilities" not in card

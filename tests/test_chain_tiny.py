@@ -4,6 +4,7 @@ import subprocess
 import sys
 
 import numpy as np
+import pytest
 import onnx
 
 from conftest import tiny_recipe, write_recipe
@@ -19,7 +20,10 @@ def test_every_step_recorded_in_chain_order(tiny_run):
         assert 0 <= s["metrics"]["accuracy"] <= 1
         assert s["latency_ms"]["p95"] >= s["latency_ms"]["p50"] > 0
         assert s["size_bytes"] > 0
-    assert results["steps"][0]["accuracy_drop"] == 0
+    # accuracy_drop in points against the teacher, checked with the accuracies themselves: (t - s) * 100
+    teacher_acc = results["steps"][0]["metrics"]["accuracy"]
+    for s in results["steps"][1:]:
+        assert s["accuracy_drop"] == pytest.approx((teacher_acc - s["metrics"]["accuracy"]) * 100, abs=1e-4)  # results.json rounds to 4 places
     rows = [line.split("|")[1].strip() for line in (tiny_run / "report.md").read_text().splitlines()
             if line.startswith("| ") and "|---" not in line]
     assert rows[1:6] == STEPS  # the per-step table, after its header row
@@ -38,10 +42,25 @@ def test_onnx_files_pass_checker_and_int8_is_smaller(tiny_run):
     assert int8.stat().st_size < fp32.stat().st_size
 
 
-def test_onnx_parity_recorded_within_tolerance(tiny_run):
-    step = json.loads((tiny_run / "student-onnx" / "step.json").read_text())
-    assert step["info"]["parity"]["max_abs_logit_diff"] <= 1e-4
-    assert step["info"]["parity"]["label_mismatches"] == 0
+def test_onnx_export_matches_pytorch_in_a_session_run_here(tiny_run):
+    # Outside reference: an ONNX Runtime session opened by this test, against the PyTorch student's own
+    # forward pass on fresh texts (not the step's recorded parity). 1e-4 on logits is common practice for
+    # fp32 export parity.
+    import onnxruntime as ort
+    import torch
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(tiny_run / "student")
+    model = AutoModelForSequenceClassification.from_pretrained(tiny_run / "student").eval()
+    texts = ["refund my invoice please", "router offline since morning", "locked out of my account again today"]
+    enc = tok(texts, padding=True, return_tensors="np")
+    sess = ort.InferenceSession(str(tiny_run / "student-onnx" / "model.onnx"), providers=["CPUExecutionProvider"])
+    feed = {i.name: enc[i.name].astype(np.int64) for i in sess.get_inputs()}
+    onnx_logits = sess.run(None, feed)[0]
+    with torch.no_grad():
+        torch_logits = model(**{k: torch.from_numpy(v) for k, v in enc.items()}).logits.numpy()
+    assert np.abs(onnx_logits - torch_logits).max() <= 1e-4
+    assert (onnx_logits.argmax(1) == torch_logits.argmax(1)).all()
 
 
 def test_student_keeps_the_chosen_number_of_layers(tiny_run):

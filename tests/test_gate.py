@@ -256,3 +256,60 @@ def test_recipe_budget_shape_must_match_the_benchmark():
     raw["budget"] = {"sequence_length": 128, "size_mb": 10}
     with pytest.raises(UserError, match=r"set a latency limit too"):
         validate_recipe(raw, "r.yaml")
+
+
+def _class_drop(data, drop):
+    """The final step's first class loses `drop` of its recall vs the teacher."""
+    teacher, last = data["steps"][0], data["steps"][-1]
+    last["metrics"]["per_class"]["recall"][0] = teacher["metrics"]["per_class"]["recall"][0] - drop
+
+
+@pytest.mark.parametrize("key,break_it,allowed", [
+    ("max_class_recall_drop_points", lambda d: _class_drop(d, 0.5), 10),
+    ("min_agreement", lambda d: d["steps"][-1].update(agreement_with_teacher=0.5), 0.9),
+    ("max_ece", lambda d: d["steps"][-1]["calibration"].update(ece=0.3), 0.1),
+])
+def test_new_limits_fail_naming_what_broke_and_pass_when_met(results, tmp_path, key, break_it, allowed):
+    def meet(d):
+        last = d["steps"][-1]
+        last["metrics"]["per_class"]["recall"] = list(d["steps"][0]["metrics"]["per_class"]["recall"])
+        last["agreement_with_teacher"] = 1.0
+        last["calibration"]["ece"] = 0.01
+    edit(results, meet)
+    budget = budget_file(tmp_path, **{key: allowed})
+    junit = tmp_path / "gate.xml"
+    ok = gate(results, "--budget", budget, "--junit", junit)
+    assert ok.returncode == 0, ok.stdout + ok.stderr
+    assert [c.get("name") for c in ET.parse(junit).getroot().iter("testcase")] == [key]
+    edit(results, break_it)
+    bad = gate(results, "--budget", budget, "--junit", junit)
+    assert bad.returncode == 1, bad.stdout + bad.stderr
+    assert f"gate FAILED — {key}" in bad.stdout
+    if key == "max_class_recall_drop_points":
+        name = json.loads(results.read_text())["data"]["label_names"][0]
+        assert f"class {name!r}" in bad.stdout and "lost" in bad.stdout
+    assert ET.parse(junit).getroot().find(".//failure") is not None
+
+
+def test_gate_prints_cautions_after_the_table_on_stderr(results, tmp_path):
+    def small_split(d):
+        last = d["steps"][-1]
+        last["accuracy_drop"], last["accuracy_drop_ci95"] = 0.5, [-1.0, 4.0]
+    edit(results, small_split)
+    r = gate(results, "--budget", budget_file(tmp_path, accuracy_drop_points=2))
+    assert r.returncode == 0, r.stdout + r.stderr
+    line = next(l for l in r.stderr.splitlines() if "too small to show the budget is met" in l)
+    assert line.startswith("caution: ")
+def test_regression_mode_fails_when_larger_than_baseline(results, tmp_path):
+    # A baseline that really regresses on size only: 4/5 of today's bytes, so today is 25 % larger
+    # (hand-worked: 1 / 0.8 - 1 = 0.25); latency and accuracy are unchanged and must pass.
+    baseline = tmp_path / "baseline.json"
+    shutil.copy(results, baseline)
+    edit(baseline, lambda d: d["steps"][-1].update(size_bytes=d["steps"][-1]["size_bytes"] * 0.8))
+    budget = budget_file(tmp_path, regression={"size_percent": 10, "p95_percent": 10, "accuracy_points": 1})
+    r = gate(results, "--budget", budget, "--baseline", baseline)
+    assert r.returncode == 1, r.stdout
+    failed = [line for line in r.stdout.splitlines() if line.startswith("gate FAILED")]
+    assert len(failed) == 1 and "regression.size_percent: 25 %" in failed[0], r.stdout
+    r = gate(results, "--budget", budget_file(tmp_path, regression={"size_percent": 30}), "--baseline", baseline)
+    assert r.returncode == 0, r.stdout

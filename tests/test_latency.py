@@ -21,6 +21,15 @@ def test_percentiles_equal_numpy():
     assert out["n"] == 257 and out["min"] == samples.min()
 
 
+def test_percentiles_hand_worked():
+    # Hyndman & Fan (1996) definition 7 (linear interpolation between order statistics), worked by hand on
+    # 1..5 ms: position q/100 * (n-1) -> p50 at 2.0 -> 3; p90 at 3.6 -> 4 + 0.6 = 4.6; p95 at 3.8 -> 4.8;
+    # p99 at 3.96 -> 4.96.
+    out = summarize(np.array([5.0, 1.0, 4.0, 2.0, 3.0]))
+    assert [out["p50"], out["p90"], out["p95"], out["p99"]] == pytest.approx([3.0, 4.6, 4.8, 4.96])
+    assert out["min"] == 1.0 and out["max"] == 5.0
+
+
 def test_mean_interval_agrees_with_scipy():
     samples = np.random.default_rng(1).normal(10.0, 2.0, size=40)
     out = summarize(samples)

@@ -156,3 +156,44 @@ def test_more_lines_than_one_chunk_come_back_all_in_order(tiny_run, tmp_path):
     assert by_file.returncode == by_stdin.returncode == 0, by_file.stderr + by_stdin.stderr
     assert [json.loads(x)["text"] for x in by_file.stdout.splitlines()] == texts
     assert by_file.stdout == by_stdin.stdout
+
+
+def test_temperature_in_manifest_and_min_confidence_abstains(tiny_run, tmp_path):
+    from shrinkwrap.artifact import load
+
+    results = json.loads((tiny_run / "results.json").read_text())
+    manifest = json.loads((tiny_run / "artifact" / "manifest.json").read_text())
+    t = manifest["calibration"]["temperature"]
+    assert t == results["artifact"]["temperature"] == results["steps"][-1]["calibration"]["temperature"]
+    assert {"ece", "ece_raw"} <= set(results["artifact"])
+    cal = results["steps"][-1]["calibration"]
+    assert cal["validation_nll"] <= cal["validation_nll_raw"] + 1e-9  # the fit never raises validation NLL
+    art = load(tiny_run / "artifact")
+    # Texts mixing two classes' keywords, or none, so the model is not certain about them all.
+    pool = ["refund invoice please", "router offline login", "refund password signal", "hello",
+            "charge account outage today", "the morning is not working", "payment locked router"]
+    by_top = {}
+    for text, row in zip(pool, art.predict(pool)):
+        by_top.setdefault(max(row["scores"].values()), text)
+    texts = [by_top[k] for k in sorted(by_top)][:3]
+    assert len(texts) >= 2, by_top
+    rows = art.predict(texts)
+    tops = [max(r["scores"].values()) for r in rows]
+    # scores are softmax(logits / T)
+    import numpy as np
+    z = art.logits(texts) / t
+    p = np.exp(z - z.max(1, keepdims=True)); p /= p.sum(1, keepdims=True)
+    assert np.allclose(tops, p.max(1), atol=1e-5)
+    exact = sorted(p.max(1))                  # unrounded: the printed scores carry 6 decimals only
+    assert exact[1] - exact[0] > 1e-6, exact  # the texts must differ in confidence for the check to mean anything
+    cut = float((exact[0] + exact[1]) / 2)    # the least confident text abstains, the others answer
+    out = subprocess.run([sys.executable, "-m", "shrinkwrap", "predict", str(tiny_run / "artifact"), *texts,
+                          "--min-confidence", str(cut)], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    got = [json.loads(l) for l in out.stdout.splitlines()]
+    assert [g["label"] is None for g in got] == [bool(top < cut) for top in p.max(1)]
+    assert sum(g["label"] is None for g in got) == 1
+    assert all(g["scores"] for g in got)
+    bad = subprocess.run([sys.executable, "-m", "shrinkwrap", "predict", str(tiny_run / "artifact"), "x",
+                          "--min-confidence", "1.5"], capture_output=True, text=True)
+    assert bad.returncode == 2 and "from 0 to 1" in bad.stderr

@@ -48,12 +48,21 @@ def test_report_command_writes_both_self_contained(results, tmp_path):
     # Nothing outside the file: no links, no external scripts or styles, every image inline.
     assert not re.search(r"""(src|href)=["']?(https?:|//|file:|[^"'d])""", page)
     srcs = re.findall(r'<img src="([^"]+)"', page)
-    assert len(srcs) == 3  # accuracy vs p95, size, per-class recall drop
+    data = json.loads(results.read_text())
+    # accuracy vs p95, size, per-class recall drop, a reliability diagram per step, accuracy vs coverage
+    assert len(srcs) == 3 + len(data["steps"]) + 1
+    alts = re.findall(r'<img src="[^"]+" alt="([^"]+)"', page)
+    for s in data["steps"]:
+        assert s["metrics"]["reliability"]
+        assert any(a.startswith(f"Reliability diagram of {s['name']}:") and f"ECE {s['metrics']['ece']:.4f}" in a
+                   for a in alts)
+    final = data["steps"][-1]
+    assert any(a.startswith(f"Accuracy against coverage of {final['name']}") and
+               f"temperature {final['calibration']['temperature']:.3f}" in a for a in alts)
     for src in srcs:
         assert src.startswith("data:image/png;base64,")
         w, h = png_size(base64.b64decode(src.split(",", 1)[1], validate=True))
         assert w > 300 and h > 100
-    data = json.loads(results.read_text())
     for s in data["steps"]:
         assert f">{s['name']}<" in page
     for s in data["steps"][1:]:
@@ -92,21 +101,24 @@ def chromium(page: Path, tmp_path: Path, *args: str) -> subprocess.CompletedProc
 @needs_chromium
 def test_headless_chromium_decodes_every_image(tiny_run, tmp_path):
     # The page's own script marks <body> once loaded: decoded images / all images (img.complete and naturalWidth > 0).
+    n = (tiny_run / "report.html").read_text(encoding="utf-8").count("<img ")
+    assert n > 3
     r = chromium(tiny_run / "report.html", tmp_path, "--virtual-time-budget=5000", "--dump-dom")
     assert r.returncode == 0, r.stderr[-2000:]
-    assert 'data-images-decoded="3/3"' in r.stdout
+    assert f'data-images-decoded="{n}/{n}"' in r.stdout
 
 
 @needs_chromium
 def test_headless_chromium_notices_a_broken_image(tiny_run, tmp_path):
-    # The same check must be able to fail: corrupt one image's bytes and the page reports 2 of 3.
+    # The same check must be able to fail: corrupt one image's bytes and the page reports one fewer.
     page = (tiny_run / "report.html").read_text(encoding="utf-8")
+    n = page.count("<img ")
     broken = page.replace("data:image/png;base64,iVBOR", "data:image/png;base64,AAAAA", 1)
     assert broken != page
     path = tmp_path / "broken.html"
     path.write_text(broken, encoding="utf-8")
     r = chromium(path, tmp_path, "--virtual-time-budget=5000", "--dump-dom")
-    assert 'data-images-decoded="2/3"' in r.stdout
+    assert f'data-images-decoded="{n - 1}/{n}"' in r.stdout
 
 
 @needs_chromium

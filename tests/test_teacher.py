@@ -148,3 +148,28 @@ def test_text_pairs_train_end_to_end(tmp_path, tiny_base):
                         until="teacher")
     assert results["recipe"]["data"]["text_pair"] == "body"
     assert results["steps"][0]["metrics"]["accuracy"] > 0.5  # 3 classes: chance is 1/3
+
+
+def test_schedule_is_transformers_linear_warmup_shifted_by_one_step():
+    """Reference: transformers.get_linear_schedule_with_warmup. Ours equals its factor one step later during
+    warm-up (no optimizer step at learning rate 0) and exactly its factor during the decay."""
+    import torch
+    from transformers import get_linear_schedule_with_warmup
+
+    from shrinkwrap.train import linear_schedule
+
+    warmup, total = 7, 40
+    ours, ref = [], []
+    for make, out in ((linear_schedule, ours), (get_linear_schedule_with_warmup, ref)):
+        opt = torch.optim.SGD([torch.nn.Parameter(torch.zeros(1))], lr=1.0)
+        sched = make(opt, warmup, total)
+        for _ in range(total):
+            out.append(opt.param_groups[0]["lr"])
+            opt.step()
+            sched.step()
+    assert ref[0] == 0.0 and ours[0] == 1 / warmup
+    for step in range(warmup):
+        assert abs(ours[step] - ref[step + 1]) < 1e-12 if step + 1 < warmup else abs(ours[step] - 1.0) < 1e-12
+    for step in range(warmup, total):
+        assert abs(ours[step] - ref[step]) < 1e-12
+    assert max(ours) == 1.0 and ours[-1] == 1 / (total - warmup)

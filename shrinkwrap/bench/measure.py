@@ -13,6 +13,7 @@ from typing import Callable, Optional
 
 import numpy as np
 
+from shrinkwrap import calibration
 from shrinkwrap.batches import all_logits
 from shrinkwrap.bench.grid import REAL, Point, point_batches
 from shrinkwrap.bench.latency import summarize, throughput_per_s, time_calls
@@ -88,6 +89,10 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
             logits = all_logits(target.logits, inputs.test, inputs.pad_id, inputs.n_labels, cfg.eval_batch_size)
             preds = logits.argmax(1)
             result["metrics"] = classification_metrics(inputs.labels, preds, inputs.n_labels)
+            result["metrics"].update(calibration.figures(logits, inputs.labels, target.temperature))
+            if target.temperature != 1.0:  # an artifact: its scores are calibrated; say what they were without
+                result["metrics"].update(temperature=target.temperature,
+                                         ece_raw=calibration.ece(calibration.softmax(logits), inputs.labels))
             result["predictions"] = preds.tolist()
         rows = []
         for point, batches in plan:

@@ -27,6 +27,7 @@ class Target:
     extra: dict = field(default_factory=dict)
     label_names: Optional[list[str]] = None     # class names by id; None for an encoder without a head
     max_length: Optional[int] = None            # longest input in tokens the model takes, when known
+    temperature: float = 1.0                    # an artifact's calibration temperature (scores = softmax(logits / T))
 
     @property
     def size_bytes(self) -> int:
@@ -164,13 +165,14 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
 
 def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     """An artifact: its hashes are checked before anything is loaded; labels and max length are its own."""
-    from shrinkwrap.artifact import read_labels, verify
+    from shrinkwrap.artifact import read_labels, temperature_of, verify
 
     manifest = verify(folder)
     target = _onnx(folder / MODEL_FILE, threads, ready)
     target.label_names = read_labels(folder)
     target.max_length = manifest["tokenizer"]["max_length"]
     target.extra["manifest"] = manifest
+    target.temperature = temperature_of(manifest)
     return target
 
 

@@ -1,0 +1,168 @@
+"""The training loop's behaviours (shrinkwrap/train.py), each on a 1-layer random BERT in about a second:
+early stopping with patience and the best epoch restored, the learning-rate schedule, gradient clipping;
+and the teacher's choice of the best seed by the validation metric."""
+import copy
+import math
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+from transformers import BertConfig, BertForSequenceClassification
+
+import shrinkwrap.train as train
+from shrinkwrap.train import FitResult, TrainSettings, fit
+
+N_TRAIN, N_VAL, K = 40, 12, 3
+
+
+def _model():
+    torch.manual_seed(0)
+    cfg = BertConfig(vocab_size=50, hidden_size=16, num_hidden_layers=1, num_attention_heads=2,
+                     intermediate_size=32, max_position_embeddings=32, num_labels=K)
+    return BertForSequenceClassification(cfg)
+
+
+def _examples(n, seed):
+    rng = np.random.default_rng(seed)
+    ex = [{"input_ids": [1, *rng.integers(2, 50, 6).tolist()], "attention_mask": [1] * 7} for _ in range(n)]
+    return ex, rng.integers(0, K, n)
+
+
+def _ce(model, batch, labels, _idx):
+    return F.cross_entropy(model(**batch).logits, labels)
+
+
+def _settings(**kw):
+    base = dict(epochs=3, learning_rate=1e-3, batch_size=8, collapse_share=1.0, stall_steps=0)
+    return TrainSettings(**(base | kw))
+
+
+def _fit(s, loss_fn=_ce, model=None):
+    model = model or _model()
+    tr, ytr = _examples(N_TRAIN, 0)
+    va, yva = _examples(N_VAL, 1)
+    return model, fit(model, tr, ytr, va, yva, loss_fn, s, pad_id=0)
+
+
+def test_stops_patience_epochs_after_the_peak_and_restores_the_best_epoch(monkeypatch):
+    # A scripted validation curve that peaks at epoch 3: with patience 2 the loop must run epochs 4 and 5
+    # (two without improvement), stop there rather than at the 10th, and hand back epoch 3's weights.
+    # Expected values worked out from the definition of patience (Prechelt, "Early Stopping — But When?",
+    # 1998: stop after `patience` evaluations without improvement; keep the best).
+    scripted = [0.40, 0.55, 0.90, 0.60, 0.70, 0.95, 0.95, 0.95, 0.95, 0.95]
+    weights_at_eval = []
+    real_predict = train.predict_logits
+
+    def recording_predict(model, *a, **kw):
+        weights_at_eval.append(copy.deepcopy(model.state_dict()))
+        return real_predict(model, *a, **kw)
+
+    def scripted_metrics(labels, preds, n):
+        e = len(weights_at_eval)
+        return {"accuracy": scripted[e - 1], "macro_f1": scripted[e - 1]}
+
+    monkeypatch.setattr(train, "predict_logits", recording_predict)
+    monkeypatch.setattr(train, "classification_metrics", scripted_metrics)
+    model, result = _fit(_settings(epochs=10, patience=2))
+    assert [c["epoch"] for c in result.curve] == [1, 2, 3, 4, 5]
+    assert result.best_epoch == 3 and result.best_metric == pytest.approx(0.90)
+    final = model.state_dict()
+    assert all(torch.equal(final[k], weights_at_eval[2][k]) for k in final)          # epoch 3's weights
+    assert not all(torch.equal(final[k], weights_at_eval[4][k]) for k in final)      # not the last epoch's
+
+
+def _recording_optimizer(monkeypatch):
+    """Keeps the optimizer fit builds, and the total gradient norm seen by each of its steps."""
+    seen = {"norms": []}
+    real = train._optimizer
+
+    def keep(model, s):
+        opt = real(model, s)
+        step = opt.step
+
+        def recording_step(*a, **kw):
+            grads = [p.grad.detach().double().flatten() for g in opt.param_groups for p in g["params"]
+                     if p.grad is not None]
+            seen["norms"].append(float(torch.cat(grads).norm()))   # the 2-norm over all parameters, by hand
+            return step(*a, **kw)
+
+        opt.step = recording_step
+        seen["opt"] = opt
+        return opt
+
+    monkeypatch.setattr(train, "_optimizer", keep)
+    return seen
+
+
+def test_learning_rate_follows_linear_warm_up_and_decay(monkeypatch):
+    seen = _recording_optimizer(monkeypatch)
+    lrs = []
+
+    def loss_recording_lr(model, batch, labels, idx):
+        lrs.append(seen["opt"].param_groups[0]["lr"])
+        return _ce(model, batch, labels, idx)
+
+    lr, epochs, bs, warmup = 1e-3, 4, 8, 0.25
+    _fit(_settings(epochs=epochs, batch_size=bs, learning_rate=lr, warmup_ratio=warmup, patience=99),
+         loss_fn=loss_recording_lr)
+    total = math.ceil(N_TRAIN / bs) * epochs          # 5 batches x 4 epochs = 20 optimizer steps
+    w = int(warmup * total)                            # 5 warm-up steps
+    # Hand-worked linear warm-up then linear decay (Devlin et al. 2019, BERT's schedule). Ours takes the
+    # warm-up one step earlier than transformers' scheduler, which gives the very first step a rate of 0:
+    # the t-th batch sees lr*(t+1)/w during warm-up, then lr*(total-t)/(total-w).
+    by_hand = [lr * (t + 1) / w if t < w else lr * (total - t) / (total - w) for t in range(total)]
+    assert lrs == pytest.approx(by_hand)
+    # Source: transformers' own scheduler on a throw-away optimizer, stepped `total` times: identical in the
+    # decay, and one step ahead of it during warm-up.
+    ref_opt = torch.optim.SGD([torch.nn.Parameter(torch.zeros(1))], lr=lr)
+    from transformers import get_linear_schedule_with_warmup
+    ref = get_linear_schedule_with_warmup(ref_opt, w, total)
+    expected = []
+    for _ in range(total + 1):
+        expected.append(ref_opt.param_groups[0]["lr"])
+        ref_opt.step(), ref.step()
+    assert lrs[:w] == pytest.approx(expected[1:w + 1])
+    assert lrs[w:] == pytest.approx(expected[w:total])
+    assert max(lrs) == pytest.approx(lr) and min(lrs) > 0
+
+
+def test_gradients_are_clipped_to_max_grad_norm(monkeypatch):
+    seen = _recording_optimizer(monkeypatch)
+
+    def huge_loss(model, batch, labels, idx):      # gradients far above any sensible norm
+        return 1e4 * _ce(model, batch, labels, idx)
+
+    _fit(_settings(epochs=1, max_grad_norm=0.5), loss_fn=huge_loss)
+    # torch.nn.utils.clip_grad_norm_ semantics: the total 2-norm is scaled down to max_norm (+1e-6 eps).
+    assert seen["norms"] and max(seen["norms"]) <= 0.5 * (1 + 1e-4)
+    assert min(seen["norms"]) > 0.5 * 0.99                 # they were above it, so clipping did the work
+
+
+def test_teacher_keeps_the_seed_with_the_best_validation_metric(tmp_path, tiny_base, keyword_csv, monkeypatch):
+    # fit is replaced by one that reports a scripted validation metric per seed and marks the model with
+    # its seed; the step must keep seed 1 (best 0.9), not the first (0) nor the last (2).
+    from conftest import tiny_recipe, write_recipe
+    from shrinkwrap.models import load_classifier
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import run_chain
+    import shrinkwrap.steps.finetune as finetune
+
+    metric = {0: 0.6, 1: 0.9, 2: 0.7}
+
+    def scripted_fit(model, *a, **kw):
+        seed = a[-2].seed
+        with torch.no_grad():
+            model.classifier.bias.fill_(float(seed))
+        return FitResult(curve=[{"epoch": 1, "accuracy": metric[seed], "macro_f1": metric[seed]}],
+                         best_epoch=1, best_metric=metric[seed])
+
+    monkeypatch.setattr(finetune, "fit", scripted_fit)
+    recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv,
+                                                                      teacher={"seeds": [0, 1, 2]})))
+    results = run_chain(recipe, tmp_path / "run", quiet=True, until="teacher")
+    info = results["steps"][0]["info"]
+    assert info["kept_seed"] == 1
+    assert [s["outcome"] for s in info["seeds"]] == ["worse", "kept", "worse"]
+    saved = load_classifier(tmp_path / "run" / "teacher")
+    assert torch.all(saved.classifier.bias == 1.0)
