@@ -103,3 +103,16 @@ def test_nothing_that_ships_names_a_build_machine_path(tiny_run, keyword_csv, tm
                 assert local not in text, (folder, name, local)
     manifest = json.loads((art / "manifest.json").read_text())
     assert manifest["data"]["path"] == keyword_csv.name and len(manifest["data"]["fingerprint"]) == 64
+
+
+def test_run_signs_the_artifact_it_ships(tiny_run, tiny_run_copy, tmp_path, capsys):
+    """`run --signing-key` end to end: the finished steps are reused, the artifact is rebuilt and signed, and
+    predict with the matching public key accepts it."""
+    private, public = _keys(tmp_path, "ours")
+    code, err = _run(capsys, "run", tiny_run.parent / "recipe.yaml", "--out", tiny_run_copy, "--signing-key", private)
+    assert code == 0, err
+    art = tiny_run_copy / "artifact"
+    assert (art / "manifest.sig").is_file()
+    assert _run(capsys, "predict", art, "my printer is broken", "--trusted-key", public)[0] == 0
+    _, stranger = _keys(tmp_path, "stranger")
+    assert _run(capsys, "predict", art, "hello", "--trusted-key", stranger)[0] == 2
