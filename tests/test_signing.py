@@ -113,6 +113,7 @@ def test_run_signs_the_artifact_it_ships(tiny_run, tiny_run_copy, tmp_path, caps
     assert code == 0, err
     art = tiny_run_copy / "artifact"
     assert (art / "manifest.sig").is_file()
-    assert _run(capsys, "predict", art, "my printer is broken", "--trusted-key", public)[0] == 0
+    code, err = _run(capsys, "predict", art, "my printer is broken", "--trusted-key", public)
+    assert code == 0, "\n".join(err)
     _, stranger = _keys(tmp_path, "stranger")
     assert _run(capsys, "predict", art, "hello", "--trusted-key", stranger)[0] == 2
