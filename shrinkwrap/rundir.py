@@ -9,6 +9,9 @@ import errno
 import json
 import os
 import shutil
+import socket
+import sys
+import time
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Callable, Iterator
@@ -27,6 +30,8 @@ LABELS_FILE = "labels.json"
 TOKENIZER_FILE = "tokenizer.json"
 CONFIG_FILE = "config.json"
 CARD_FILE = "README.md"           # an artifact's model card
+SIGNATURE_FILE = "manifest.sig"   # an artifact's optional Ed25519 signature of manifest.json (base64)
+LOCK_FILE = ".lock"               # who is running in a run folder now: pid, host, start time
 
 DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
 
@@ -143,3 +148,73 @@ def check_out_file(out: Path, flag: str = "--out") -> None:
     out = Path(out)
     if out.is_dir() or not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
         raise UserError(f"{flag} {out}: not a writable file path (its folder must exist)")
+
+
+def _holder_text(holder) -> str:
+    if not isinstance(holder, dict):
+        return "a holder that has not written its details yet"
+    return f"pid {holder.get('pid')} on {holder.get('host')}, started {holder.get('started')}"
+
+
+def _read_holder(fd: int):
+    os.lseek(fd, 0, os.SEEK_SET)
+    try:
+        return json.loads(os.read(fd, 4096) or b"null")
+    except ValueError:
+        return None
+
+
+@contextmanager
+def run_lock(out: Path, log: Callable[[str], None] = lambda m: print(m, file=sys.stderr, flush=True)) -> Iterator[None]:
+    """Holds an exclusive lock on `out`/.lock while the block runs, so that two runs never work in one
+    folder at once; the file says who holds it (pid, host, start time). A second run stops at once
+    (UserError naming the holder). The lock is the kernel's (flock), so a killed holder's lock is free;
+    the details it left are reported as a takeover. The folder is created if needed and removed again if
+    the block left it empty (bad input found by the preflight writes nothing)."""
+    import fcntl
+
+    out = Path(out)
+    check_out_dir(out)  # the preflight's own message for a file in the way or a read-only parent
+    created = not out.exists()
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UserError(f"--out {out}: cannot create the run folder — {e.strerror or e}") from None
+    lock = out / LOCK_FILE
+    for _ in range(5):
+        fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = _read_holder(fd)
+            os.close(fd)
+            raise UserError(f"--out {out}: busy — another run holds {lock} ({_holder_text(holder)}); wait for it "
+                            f"or use another --out") from None
+        # The previous holder may have removed the file between our open and our lock: then ours is a
+        # lock on a file nobody else sees, and we must start again on the one at the path.
+        try:
+            same = os.stat(lock).st_ino == os.fstat(fd).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        os.close(fd)
+    else:
+        raise UserError(f"--out {out}: cannot take the run-folder lock {lock} — try again")
+    left = _read_holder(fd)
+    if isinstance(left, dict):
+        log(f"note: {lock} was left by {_holder_text(left)}, which is no longer running — taking it over")
+    me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+          "command": " ".join(sys.argv)[:300]}
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, json.dumps(me).encode(), 0)
+    try:
+        yield
+    finally:
+        os.unlink(lock)  # before unlocking, so that a waiting opener sees the inode change (above)
+        os.close(fd)
+        if created:
+            try:
+                out.rmdir()  # only if empty
+            except OSError:
+                pass

@@ -197,3 +197,36 @@ def test_temperature_in_manifest_and_min_confidence_abstains(tiny_run, tmp_path)
     bad = subprocess.run([sys.executable, "-m", "shrinkwrap", "predict", str(tiny_run / "artifact"), "x",
                           "--min-confidence", "1.5"], capture_output=True, text=True)
     assert bad.returncode == 2 and "from 0 to 1" in bad.stderr
+
+
+def test_hostile_texts_are_classified_and_long_ones_noted(tiny_run, tmp_path):
+    """A 10 MB line, NUL bytes, control characters, mixed scripts and emoji: every line gets its row, in
+    order; the long one says it was truncated (the memory this takes is in benchmarks/predict_hostile.py)."""
+    words = ["refund", "router", "login", "please", "the", "offline", "invoice"]
+    huge = " ".join(words[i % len(words)] for i in range(1_500_000))[:10_000_000]
+    lines = [huge, "refund\x00\x00 invoice", "\x01\x02\x1b[31m router offline \x7f", "пароль 登录 كلمة 🔐🚀 login",
+             "\u200b\u202e reversed \ufeff", "🙂" * 5000]
+    path = tmp_path / "hostile.txt"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    out = _predict(tiny_run / "artifact", "--file", path)
+    assert out.returncode == 0, out.stderr
+    rows = [json.loads(x) for x in out.stdout.splitlines()]
+    assert [r["text"] for r in rows] == lines
+    assert all(r["label"] in {"refund", "outage", "login"} for r in rows)
+    assert rows[0].get("truncated") is True and "truncated" not in rows[1]
+
+
+def test_a_long_text_keeps_exactly_the_tokens_of_the_whole_text(tiny_run):
+    """The prefix the artifact tokenises a very long text from gives the same kept tokens as tokenising all of
+    it (the tokenizers library run on the whole text is the reference)."""
+    from shrinkwrap.artifact import load
+
+    art = load(tiny_run / "artifact")
+    rng = __import__("random").Random(0)
+    vocab = ["refund", "router", "unbelievably", "logins", "x", "ünïcödé", "登录", "🚀", "can't", "3.14"]
+    for n in (3000, 20000):
+        text = " ".join(rng.choice(vocab) for _ in range(n))
+        ours = art.encode([text])[0]
+        whole = art.tokenizer.encode(text)
+        assert ours.ids == whole.ids and len(ours.ids) == art.max_length
+        assert ours.overflowing and whole.overflowing

@@ -8,6 +8,7 @@ with dynamic padding sees on this traffic.
 from __future__ import annotations
 
 import itertools
+import sys
 from dataclasses import dataclass
 from typing import Optional, Union
 
@@ -97,7 +98,14 @@ def point_batches(point: Point, target, examples: Optional[list[dict]], pad_id: 
         return [fixed_batch(examples, pad_id, point.batch_size, point.sequence_length)]
     vocab = target.vocab_size()
     if vocab is None:
-        raise UserError(f"{where}: cannot tell its vocabulary size from the model — give --data to time real texts")
+        from shrinkwrap.bench.targets import SAFE_VOCAB
+
+        if not target.extra.get("vocab_noted"):
+            print(f"note: {where}: cannot tell its vocabulary size from the graph or a config.json beside it — "
+                  f"timing with token ids below {SAFE_VOCAB}, which every BERT-family vocabulary has",
+                  file=sys.stderr, flush=True)
+            target.extra["vocab_noted"] = True
+        vocab = SAFE_VOCAB
     return [synthetic_batch(target.input_names, vocab, point.batch_size, point.sequence_length, where)]
 
 

@@ -37,6 +37,10 @@ class Target:
         # Only when asked: parsing a large graph again would add to every load.
         if self.format == "onnx" and "vocab_size" not in self.extra:
             self.extra["vocab_size"], self.extra["graph_positions"] = onnx_embedding_rows(self.path)
+            if self.extra["vocab_size"] is None:  # else a config.json beside the graph
+                config = read_json_or_none(self.path.parent / CONFIG_FILE)
+                size = config.get("vocab_size") if isinstance(config, dict) else None
+                self.extra["vocab_size"] = size if isinstance(size, int) and size > 0 else None
 
     def vocab_size(self) -> Optional[int]:
         """Token ids must stay below this (synthetic inputs need it); None when it cannot be told."""
@@ -59,6 +63,12 @@ class Target:
 
 # Ops that pass token ids through unchanged on their way to the embedding lookup.
 _PASS_THROUGH = {"Cast", "Identity", "Unsqueeze", "Reshape", "Flatten", "Squeeze"}
+# Ops between a stored table and the lookup that keep its shape: dequantisation (DequantizeLinear, or the
+# Cast -> Sub zero point -> Mul scale of a hand-made one), fp16 casts, identities.
+_SAME_SHAPE = {"DequantizeLinear", "Cast", "Identity", "Mul", "Sub", "Add", "Div", "DynamicQuantizeLinear"}
+# Every BERT-family vocabulary (BERT, RoBERTa, ALBERT, ELECTRA, DistilBERT, MiniLM...) has at least this
+# many ids: synthetic ids below it are valid for a model that does not say its vocabulary size.
+SAFE_VOCAB = 1000
 
 
 def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
@@ -68,14 +78,22 @@ def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
 
     graph = onnx.load(str(path), load_external_data=False).graph
     dims = {i.name: list(i.dims) for i in graph.initializer}
+    for n in graph.node:  # a table may also be a Constant node's value
+        if n.op_type == "Constant" and n.attribute and n.attribute[0].name == "value":
+            dims[n.output[0]] = list(n.attribute[0].t.dims)
     made_by = {o: n for n in graph.node for o in n.output}
 
-    def table_rows(name: str) -> Optional[int]:
-        # A quantised table reaches the lookup through DequantizeLinear.
+    def table_rows(name: str, depth: int = 0) -> Optional[int]:
+        # Follow the lookup's data input back to the stored weight: a quantised table reaches the lookup
+        # through dequantisation and elementwise nodes; scales and zero points are scalars or 1-D, so the
+        # weight is the one input of rank 2.
+        if len(dims.get(name, [])) == 2:
+            return int(dims[name][0])
         node = made_by.get(name)
-        if name not in dims and node is not None and node.op_type == "DequantizeLinear":
-            name = node.input[0]
-        return dims[name][0] if dims.get(name) else None
+        if node is None or depth > 8 or node.op_type not in _SAME_SHAPE:
+            return None
+        rows = [table_rows(x, depth + 1) for x in node.input if x]
+        return next((r for r in rows if r), None)
 
     names = {i.name for i in graph.input if "input_ids" in i.name}
     for _ in range(8):  # follow the ids through a few pass-through ops at most
@@ -124,11 +142,15 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
     import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
     import onnxruntime  # noqa: F401
 
-    from shrinkwrap.onnx_tools import run_logits, session
+    from shrinkwrap.onnx_tools import check_external_data, run_logits, session
 
+    external = check_external_data(path)  # before ONNX Runtime opens anything the graph points to
     ready()
-    sess = session(path, threads)
-    files = [path] + [p for p in path.parent.glob(path.name + "*.data")]
+    try:
+        sess = session(path, threads)
+    except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
+        raise UserError(f"{path}: ONNX Runtime cannot load it — {(str(e).splitlines() or [''])[0][:300]}") from None
+    files = [path] + external
     tok = path.parent if (path.parent / TOKENIZER_FILE).exists() else None
     # A graph written by the chain has its model's config.json beside it: label names and positions.
     config = read_json_or_none(path.parent / CONFIG_FILE)
