@@ -17,8 +17,6 @@ meet the budget are found before any training. In order:
 """
 from __future__ import annotations
 
-import json
-import math
 import os
 import shutil
 import sys

@@ -149,6 +149,18 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
     assert "finished before: reusing it" in capsys.readouterr().err
     assert {p: p.stat().st_mtime_ns for p in (out / "candidates").glob("*/student*/step.json")} == before
 
+    # 4. Successive halving over the same two survivors: one short epoch each, the better half goes on to
+    #    full training (already finished above, so reused), the other is dropped with its reason.
+    assert main(["search", str(recipe), "--out", str(out), "--set", "search.strategy=halving"]) == 0
+    rows = json.loads((out / "search.json").read_text())["candidates"]
+    assert sorted(p.name[-3:] for p in (out / "halving").iterdir()) == ["-e1", "-e1"]
+    dropped = [i for i, r in enumerate(rows) if (r["reason"] or "").startswith("dropped by successive halving after "
+                                                                                 "1 epoch(s)")]
+    assert len(dropped) == 1 and rows[dropped[0]]["trained"] and not rows[dropped[0]]["meets_budget"]
+    kept = ({2, 3} - set(dropped)).pop()
+    assert rows[kept]["meets_budget"]
+    assert json.loads((out / "search.json").read_text())["winner"] == kept
+
 
 def test_teacher_relative_budget_keys_in_gate(tiny_run, tmp_path):
     """min_speedup and min_shrink against the teacher row of the same results: met just below the
