@@ -15,22 +15,15 @@ from shrinkwrap.rundir import check_out_dir
 
 def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     """Loads and checks everything the chain needs. Writes nothing."""
-    from transformers import AutoConfig
-
     from shrinkwrap.data import load_dataset
     from shrinkwrap.batches import encode
-    from shrinkwrap.models import load_tokenizer, resolve_base
+    from shrinkwrap.models import load_tokenizer
 
     where = recipe.source or "recipe"
     check_out_dir(out)
-    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    base, config = teacher_config(recipe, where)
     if recipe.teacher.trust_remote_code:
         warnings.warn(f"{where}: teacher.trust_remote_code is on — Python code shipped with {base} will run")
-    try:
-        config = AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
-    except (OSError, ValueError) as e:
-        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
-                        f"({str(e).splitlines()[0]})") from None
     check_student(recipe, config, where)
     tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
     if recipe.trim_vocab.enabled:
@@ -64,6 +57,20 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
                    teacher_hidden_size=config.hidden_size, transfer=transfer)
+
+
+def teacher_config(recipe: Recipe, where: str):
+    """(the teacher base's folder, its transformers config), or a UserError naming teacher.base."""
+    from transformers import AutoConfig
+
+    from shrinkwrap.models import resolve_base
+
+    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    try:
+        return base, AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
+    except (OSError, ValueError) as e:
+        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
+                        f"({str(e).splitlines()[0]})") from None
 
 
 def check_student(recipe: Recipe, config, where: str) -> None:

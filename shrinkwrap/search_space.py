@@ -134,17 +134,9 @@ def load_search(path: str | Path, overrides: list[str] = ()) -> Space:
 def _check_against_teacher(recipe: Recipe, candidates: list[Candidate], where: str) -> None:
     """Each candidate's student against the teacher's config (layers, length, heads) — what `run`'s
     preflight checks, for every candidate, before the teacher is trained."""
-    from transformers import AutoConfig
+    from shrinkwrap.preflight import check_student, teacher_config
 
-    from shrinkwrap.models import resolve_base
-    from shrinkwrap.preflight import check_student
-
-    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
-    try:
-        config = AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
-    except (OSError, ValueError) as e:
-        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
-                        f"({str(e).splitlines()[0]})") from None
+    _, config = teacher_config(recipe, where)
     for c in candidates:
         label = ", ".join(f"{k}={json.dumps(v)}" for k, v in c.settings.items())
         check_student(c.recipe, config, f"{where} (search candidate {label})")

@@ -83,6 +83,21 @@ def test_bad_search_sections_exit_2_before_anything_runs(tmp_path, tiny_base, ke
     assert not out.exists()
 
 
+def test_search_set_options_and_prune_amounts(tmp_path, tiny_base, keyword_csv):
+    """--set reaches the search section (nested, as key paths split on dots); a pruning amount above 0
+    switches the pruning step on for its candidate only; every candidate's recipe is a validated Recipe."""
+    from shrinkwrap.search_space import load_search
+
+    recipe = _recipe(tmp_path, tiny_base, keyword_csv, {"prune.neurons_removed_share": [0.0, 0.5]})
+    space = load_search(recipe, ["search.student.num_layers=[1, 2]", "search.strategy=halving"])
+    assert space.recipe.search.strategy == "halving"
+    assert [c.settings for c in space.candidates] == [
+        {"prune.neurons_removed_share": a, "student.num_layers": n} for a in (0.0, 0.5) for n in (1, 2)]
+    assert [c.recipe.prune.enabled for c in space.candidates] == [False, False, True, True]
+    assert [c.recipe.student.num_layers for c in space.candidates] == [1, 2, 1, 2]
+    assert len({c.folder_name for c in space.candidates}) == 4
+
+
 def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keyword_csv, capsys):
     # Size separates the candidates exactly (it depends on shapes alone, unlike time on a shared machine):
     # the cut vocabulary makes the 1-layer student a few hundred kB, the full one about 1 MB.
