@@ -23,7 +23,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.errors import EXIT_BUDGET, EXIT_OK
+from shrinkwrap.errors import EXIT_BUDGET, EXIT_OK, StepFailed
 from shrinkwrap.gate import FAIL, SKIP, Check, evaluate, speed_size_checks
 from shrinkwrap.rundir import (ARTIFACT_DIR, MODEL_FILE, RESULTS_FILE, STEP_FILE, read_json_or_none, run_lock,
                                scratch, write_json_atomic)
@@ -168,7 +168,11 @@ class Search:
                      + (f", {recipe.student.epochs} epoch(s)" if suffix else "")
                      + (" (finished before: reusing it)" if finished else
                         " (its student copied from a candidate with the same student settings)" if reused else ""))
-            done[i] = run_recipe(recipe, folder, quiet=True)
+            try:
+                done[i] = run_recipe(recipe, folder, quiet=True)
+            except StepFailed as e:  # one candidate that cannot be trained does not end the search
+                self.rows[i]["reason"] = f"its run failed — {e}"
+                self.log(f"candidate {i} {c.label()}: {self.rows[i]['reason']}")
         return done
 
     def _prepare_folder(self, folder: Path, recipe, where: str, suffix: str) -> bool:

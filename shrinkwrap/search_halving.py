@@ -38,6 +38,7 @@ def halving(search, order: list[int]) -> list[int]:
     while len(alive) > 1 and epochs < full:
         search.log(f"successive halving: {len(alive)} candidates, {epochs} epoch(s) each")
         done = search.train(alive, lambda c: _short(c.recipe, epochs), HALVING, f"-e{epochs}")
+        alive = [i for i in alive if i in done]  # a candidate whose run failed has its reason already
         score = {i: validation_accuracy(done[i]) for i in alive}
         ranked = sorted(alive, key=lambda i: -score[i])  # stable: ties keep the cheaper first
         keep = set(ranked[: math.ceil(len(alive) / 2)])
