@@ -102,8 +102,10 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
     # Size separates the candidates exactly (it depends on shapes alone, unlike time on a shared machine):
     # the cut vocabulary makes the 1-layer student a few hundred kB, the full one about 1 MB.
     recipe = _recipe(tmp_path, tiny_base, keyword_csv,
-                     {"trim_vocab.enabled": [False, True], "student.max_length": [16, 32]},
-                     student={"num_layers": 1, "epochs": 2}, budget={"size_mb": 0.6, "accuracy_drop_points": 100})
+                     {"trim_vocab.enabled": [False, True], "student.max_length": [16, 32], "rounds": 2},
+                     teacher={"epochs": 3}, student={"num_layers": 1, "epochs": 2}, quantize={"enabled": False},
+                     bench={"warmup_s": 0},
+                     budget={"size_mb": 0.6, "accuracy_drop_points": 100})
     out = tmp_path / "out"
 
     # 1. No candidate can be that fast: exit 1, nothing trained, the closest named with its miss.
