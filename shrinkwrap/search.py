@@ -76,7 +76,9 @@ class Search:
         self.space, self.out, self.quiet = space, Path(out), quiet
         self.recipe, self.budget = space.recipe, space.recipe.budget
         self.rows = [_row(c) for c in space.candidates]
-        self.checks: dict[int, list[Check]] = {}
+        self.checks: dict[int, list[Check]] = {}      # candidate -> its limits, as last measured
+        self.final_dir: dict[int, Path] = {}           # trained candidate -> its shipped step's folder
+        self.results: dict[int, dict] = {}             # trained candidate -> its run's results
 
     def log(self, message: str) -> None:
         if not self.quiet:
@@ -122,7 +124,7 @@ class Search:
                                        lat["p95_over_reference"], self._shape())
             failed = [k for k in checks if k.verdict == FAIL]
             self.checks[c.index] = checks
-            line = (f"{c.index + 1}/{len(self.rows)} {c.label()}: untrained p95 {lat['p95']:.2f} ms, "
+            line = (f"candidate {c.index} {c.label()}: untrained p95 {lat['p95']:.2f} ms, "
                     f"{row['speedup']:.2f}× the teacher, {size / 1e6:.2f} MB")
             if failed:
                 row["reason"] = "not trained — " + "; ".join(_miss(k) for k in failed)
@@ -164,7 +166,7 @@ class Search:
             folder = self.out / where / (c.folder_name + suffix)
             reused = self._prepare_folder(folder, recipe, where, suffix)
             finished = (read_json_or_none(folder / RESULTS_FILE) or {}).get("recipe_fingerprint") == recipe.fingerprint()
-            self.log(f"training {k + 1}/{len(order)} {c.label()}"
+            self.log(f"training {k + 1}/{len(order)}: candidate {i} {c.label()}"
                      + (f", {recipe.student.epochs} epoch(s)" if suffix else "")
                      + (" (finished before: reusing it)" if finished else
                         " (its student copied from a candidate with the same student settings)" if reused else ""))
@@ -197,9 +199,7 @@ class Search:
         final = results["steps"][-1]
         self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
                             accuracy_drop=final["accuracy_drop"])
-        self.final_dir = getattr(self, "final_dir", {})
         self.final_dir[i] = Path(final["path"])
-        self.results = getattr(self, "results", {})
         self.results[i] = results
 
     # ---- (4) timing again, together --------------------------------------------------------------------
@@ -231,7 +231,7 @@ class Search:
             row["meets_budget"] = not failed
             if row["reason"] is None:
                 row["reason"] = "; ".join(_miss(k) for k in failed) if failed else "meets every limit"
-            self.log(f"{i + 1}/{len(self.rows)} {self.space.candidates[i].label()}: accuracy {row['accuracy']:.4f} "
+            self.log(f"candidate {i} {self.space.candidates[i].label()}: accuracy {row['accuracy']:.4f} "
                      f"(drop {row['accuracy_drop']:.2f} points), p95 {lat['p95']:.2f} ms, {row['speedup']:.2f}× the "
                      f"teacher, {size / 1e6:.2f} MB — {row['reason']}")
 
@@ -243,6 +243,8 @@ class Search:
             src = self.out / CANDIDATES / self.space.candidates[w].folder_name / ARTIFACT_DIR
             with scratch(self.out / ARTIFACT_DIR) as tmp:
                 shutil.copytree(src, tmp, dirs_exist_ok=True)
+        elif (self.out / ARTIFACT_DIR).exists():  # an earlier search's winner is not this one's
+            shutil.rmtree(self.out / ARTIFACT_DIR)
         write_json_atomic(self.out / SEARCH_FILE, summary)
         from shrinkwrap.search_report import write_search_report
 
