@@ -99,6 +99,25 @@ def _print_cautions(lines: list[str]) -> None:
     sys.stderr.flush()
 
 
+def cmd_search(args) -> int:
+    from shrinkwrap.search import SEARCH_FILE, run_search
+    from shrinkwrap.search_space import load_search
+
+    from shrinkwrap import distributed
+
+    if distributed.world_size() > 1:  # the screen and the timing would run in every process at once
+        raise UserError("shrinkwrap search runs in one process — start it without accelerate launch / torchrun")
+    space = load_search(args.recipe, args.set)  # every candidate checked before anything runs
+    out = Path(args.out) if args.out else Path("runs") / f"{space.recipe.name}-search"
+    summary, code, line = run_search(space, out, quiet=args.json)
+    if args.json:
+        print(json.dumps(summary, indent=2))
+    else:
+        print(f"search: {out / SEARCH_FILE}\nreport: {out / 'report.html'}")
+    print(line, file=sys.stderr if args.json else sys.stdout)
+    return code
+
+
 def cmd_gate(args) -> int:
     from shrinkwrap.gate import format_table, gate_results, junit_xml
     from shrinkwrap.rundir import check_out_file, write_text_atomic
@@ -269,6 +288,21 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--signing-key", metavar="PRIVATE.pem", help="Ed25519 private key (PEM) to sign the artifact's manifest with (manifest.sig); an encrypted key "
                      "takes its passphrase from $SHRINKWRAP_SIGNING_PASSPHRASE")
     run.set_defaults(func=cmd_run)
+
+    search = sub.add_parser("search", help="find the most accurate student that meets the recipe's budget",
+                            description="Try every combination of the values in RECIPE's search: section (recipe "
+                                        "key paths -> lists of values). Candidates that cannot meet the latency or "
+                                        "size limits untrained are never trained; the rest are trained cheapest "
+                                        "first and timed again with the teacher; the most accurate one meeting "
+                                        "every limit gets DIR/artifact. Writes DIR/search.json and DIR/report.html. "
+                                        "Exit 0: a winner; 1: no candidate meets the budget; 2: bad input.")
+    search.add_argument("recipe", help="recipe YAML file with a search: section")
+    search.add_argument("--out", metavar="DIR", help="search folder (default: runs/<recipe name>-search)")
+    search.add_argument("--set", action="append", default=[], metavar="KEY.PATH=VALUE",
+                        help="override a recipe key, e.g. --set budget.min_speedup=4 or "
+                             "--set search.student.num_layers=[2,3] (repeatable)")
+    search.add_argument("--json", action="store_true", help="print search.json to stdout instead of a summary")
+    search.set_defaults(func=cmd_search)
 
     gate = sub.add_parser("gate", help="check a run's results against a budget: exit 0 pass, 1 a limit failed, 2 bad input",
                           description="Check one step of RESULTS (the final one by default) against the limits of a "

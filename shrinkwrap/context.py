@@ -38,7 +38,7 @@ class Context:
     teacher_hidden_size: int = 0
     transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
-    _tokens: dict[str, Tokens] = field(default_factory=dict)
+    _tokens: dict[tuple, Tokens] = field(default_factory=dict)
 
     @property
     def transfer_fingerprint(self) -> Optional[str]:
@@ -48,28 +48,42 @@ class Context:
         if not self.quiet:
             print(message, file=sys.stderr, flush=True)
 
-    def tokens_of(self, folder: Path) -> Tokens:
-        """The tokenizer a step's output carries and the splits encoded with it: the teacher's own
-        encodings, unless a step on the way changed the tokenizer (then encoded once, and kept)."""
+    @property
+    def student_length(self) -> int:
+        """Tokens per input the student (and every step after it, and the artifact) reads."""
+        return self.recipe.student.max_length or self.recipe.teacher.max_length
+
+    def length_of(self, step: str) -> int:
+        return self.recipe.teacher.max_length if step == "teacher" else self.student_length
+
+    def tokens_of(self, folder: Path, max_length: Optional[int] = None) -> Tokens:
+        """The tokenizer a step's output carries and the splits encoded with it, cut at `max_length`
+        (default: the teacher's): the teacher's own encodings, unless a step on the way changed the
+        tokenizer or the length differs (then encoded once, and kept)."""
         fp = tokenizer_fingerprint_of_file(Path(folder) / TOKENIZER_FILE)
-        if fp == self.tokenizer_fp:
+        n = max_length or self.recipe.teacher.max_length
+        if fp == self.tokenizer_fp and n == self.recipe.teacher.max_length:
             return Tokens(self.tokenizer, fp, self.encoded, self.pad_id)
-        if fp not in self._tokens:
+        if (fp, n) not in self._tokens:
             from shrinkwrap.batches import encode
             from shrinkwrap.models import load_tokenizer
 
-            tok = load_tokenizer(str(folder), str(folder))
-            n = self.recipe.teacher.max_length
+            tok = self.tokenizer if fp == self.tokenizer_fp else load_tokenizer(str(folder), str(folder))
             encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
-            self._tokens[fp] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
-        return self._tokens[fp]
+            self._tokens[(fp, n)] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
+        return self._tokens[(fp, n)]
 
-    def transfer_examples(self) -> list:
-        """The transfer texts encoded with the teacher's tokenizer (rows on disk), or none."""
+    def student_tokens(self, folder: Path) -> Tokens:
+        """tokens_of(folder) cut at the student's length: what a student step reads."""
+        return self.tokens_of(folder, self.student_length)
+
+    def transfer_examples(self, max_length: Optional[int] = None) -> list:
+        """The transfer texts encoded with the teacher's tokenizer (rows on disk), cut at `max_length`
+        (default: the teacher's), or none."""
         if self.transfer is None:
             return []
         return self.transfer.encoded(self.run_dir / "cache", self.tokenizer, self.tokenizer_fp,
-                                     self.recipe.teacher.max_length, quiet=self.quiet)
+                                     max_length or self.recipe.teacher.max_length, quiet=self.quiet)
 
     def transfer_batches(self, size: int = 1024):
         """The transfer texts a batch at a time."""

@@ -138,6 +138,12 @@ def soft_targets(ctx, teacher, layer_map: list[int], hidden: bool, attention: bo
     key = sha256_json({"teacher": ctx.fingerprints["teacher"], "data": ctx.data_fingerprint,
                        "transfer": ctx.transfer_fingerprint, "layers": layer_map if (hidden or attention) else None})
     targets, cache_info = teacher_outputs(ctx, teacher, examples, layer_map, key, hidden, attention)
+    if ctx.student_length != ctx.recipe.teacher.max_length:
+        # The teacher answers on the whole text it reads; a student that reads fewer tokens learns to
+        # give that answer from the start of the text. Token positions agree up to the student's cut
+        # (its closing [SEP] aside), so the hidden-state and attention targets stay aligned.
+        examples = Joined(ctx.tokens_of(ctx.outputs["teacher"], ctx.student_length).encoded["train"],
+                          ctx.transfer_examples(ctx.student_length))
     return examples, labels, targets, cache_info
 
 
@@ -175,7 +181,8 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
-        result = fit(student, examples, labels, ctx.encoded["validation"], ctx.data.validation.labels, loss_fn, s,
+        validation = ctx.tokens_of(ctx.outputs["teacher"], ctx.student_length).encoded["validation"]
+        result = fit(student, examples, labels, validation, ctx.data.validation.labels, loss_fn, s,
                      ctx.pad_id, desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
                                                       checkpoint_every, log=ctx.log))
     if hasattr(student, PROJECTION):

@@ -132,6 +132,28 @@ def _latency_shape(step: dict, budget: BudgetConfig, where: str) -> str:
     return f"batch {batch} × {length} tokens"
 
 
+def speed_size_checks(budget: BudgetConfig, p95_ms: float, size_bytes: float, teacher_p95_ms: float,
+                      teacher_size_bytes: float, p95_over_reference: Optional[float] = None, shape: str = "",
+                      teacher: str = "teacher") -> list[Check]:
+    """The limits a model's shapes decide, from its p95 and size and the teacher's, timed in the same run
+    (shared by the gate and `shrinkwrap search`, which checks them before training anything)."""
+    out, at = [], f", {shape}" if shape else ""
+    if budget.latency_p95_ms is not None:
+        out.append(_check("latency_p95_ms", f"p95 latency{at}", budget.latency_p95_ms, p95_ms, "<=", " ms"))
+    if budget.latency_p95_over_reference is not None:
+        out.append(_check("latency_p95_over_reference", f"p95 / reference matrix-product workload{at}",
+                          budget.latency_p95_over_reference, p95_over_reference, "<=", "×"))
+    if budget.size_mb is not None:
+        out.append(_check("size_mb", "size on disk, MB = 10^6 bytes", budget.size_mb, size_bytes / 1e6, "<=", " MB"))
+    if budget.min_speedup is not None:
+        out.append(_check("min_speedup", f"{teacher} p95 {_num(teacher_p95_ms)} ms / this p95 {_num(p95_ms)} ms, "
+                          f"same run{at}", budget.min_speedup, teacher_p95_ms / p95_ms, ">=", "×"))
+    if budget.min_shrink is not None:
+        out.append(_check("min_shrink", f"{teacher} size {_num(teacher_size_bytes / 1e6)} MB / this size "
+                          f"{_num(size_bytes / 1e6)} MB", budget.min_shrink, teacher_size_bytes / size_bytes, ">=", "×"))
+    return out
+
+
 def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str, base_where: str) -> list[Check]:
     out, tol = [], budget.regression
     if tol.p95_percent is not None:
@@ -188,19 +210,18 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
     step = pick_step(results, step_name, where)
     is_reference = step is teacher_row(results)
     checks = []
-    if budget.latency_p95_ms is not None:
-        shape = _latency_shape(step, budget, where)
-        checks.append(_check("latency_p95_ms", f"p95 latency, {shape}", budget.latency_p95_ms,
-                             _number(step, "latency_ms.p95", where), "<=", " ms"))
-    if budget.latency_p95_over_reference is not None:
-        shape = _latency_shape(step, budget, where)
-        ratio = _number(step, "latency_ms.p95_over_reference", where,
-                        "these results predate the reference workload; benchmark again with this version")
-        checks.append(_check("latency_p95_over_reference", f"p95 / reference matrix-product workload, {shape}",
-                             budget.latency_p95_over_reference, ratio, "<=", "×"))
-    if budget.size_mb is not None:
-        checks.append(_check("size_mb", "size on disk, MB = 10^6 bytes", budget.size_mb,
-                             _number(step, "size_bytes", where) / 1e6, "<=", " MB"))
+    limits = budget.speed_size_limits()
+    if limits:
+        shape = _latency_shape(step, budget, where) if set(limits) - {"size_mb", "min_shrink"} else ""
+        ref = teacher_row(results)
+        if "min_speedup" in limits:
+            _latency_shape(ref, budget, where)
+        ratio = (_number(step, "latency_ms.p95_over_reference", where,
+                         "these results predate the reference workload; benchmark again with this version")
+                 if "latency_p95_over_reference" in limits else None)
+        checks += speed_size_checks(budget, _number(step, "latency_ms.p95", where), _number(step, "size_bytes", where),
+                                    _number(ref, "latency_ms.p95", where), _number(ref, "size_bytes", where),
+                                    ratio, shape, ref["name"])
     if budget.accuracy_drop_points is not None:
         ref = teacher_row(results)["name"]
         if budget.accuracy_drop_upper_bound and not is_reference:

@@ -163,7 +163,8 @@ def from_run(results: dict, run_dir: Path) -> Path:
         "data": {"path": Path(results["data"]["path"]).name, "sizes": results["data"]["sizes"],
                  "fingerprint": results["data"]["fingerprint"]},
     }
-    tokenizer = {"max_length": recipe["teacher"]["max_length"], "pad_id": _pad_id(src),
+    # The artifact is a student: it reads what the student was trained to read.
+    tokenizer = {"max_length": recipe["student"].get("max_length") or recipe["teacher"]["max_length"], "pad_id": _pad_id(src),
                  "text_pair": recipe["data"].get("text_pair") is not None}
     return write_artifact(run_dir / ARTIFACT_DIR, src, results["data"]["label_names"], tokenizer, describe,
                           lambda manifest: run_card(manifest, results))

@@ -15,36 +15,16 @@ from shrinkwrap.rundir import check_out_dir
 
 def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     """Loads and checks everything the chain needs. Writes nothing."""
-    from transformers import AutoConfig
-
     from shrinkwrap.data import load_dataset
     from shrinkwrap.batches import encode
-    from shrinkwrap.models import load_tokenizer, resolve_base
+    from shrinkwrap.models import load_tokenizer
 
     where = recipe.source or "recipe"
     check_out_dir(out)
-    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    base, config = teacher_config(recipe, where)
     if recipe.teacher.trust_remote_code:
         warnings.warn(f"{where}: teacher.trust_remote_code is on — Python code shipped with {base} will run")
-    try:
-        config = AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
-    except (OSError, ValueError) as e:
-        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
-                        f"({str(e).splitlines()[0]})") from None
-    n_layers = getattr(config, "num_hidden_layers", None) or getattr(config, "n_layers", None)
-    layers = recipe.student.layers
-    if layers is not None and n_layers is not None and max(layers) >= n_layers:
-        bad = next(i for i, v in enumerate(layers) if v >= n_layers)
-        raise UserError(f"{where}: student.layers[{bad}] = {layers[bad]} — the teacher has {n_layers} layers "
-                        f"(0–{n_layers - 1})")
-    if layers is None and n_layers is not None and recipe.student.num_layers > n_layers:
-        raise UserError(f"{where}: student.num_layers = {recipe.student.num_layers} — the teacher has {n_layers} layers")
-    max_pos = getattr(config, "max_position_embeddings", None)
-    if max_pos and recipe.teacher.max_length > max_pos:
-        raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
-    from shrinkwrap.pruning import check_prune
-
-    check_prune(recipe, config, where)
+    check_student(recipe, config, where)
     tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
     if recipe.trim_vocab.enabled:
         from shrinkwrap.vocab import check_trim
@@ -77,3 +57,41 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
                    teacher_hidden_size=config.hidden_size, transfer=transfer)
+
+
+def teacher_config(recipe: Recipe, where: str):
+    """(the teacher base's folder, its transformers config), or a UserError naming teacher.base."""
+    from transformers import AutoConfig
+
+    from shrinkwrap.models import resolve_base
+
+    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    try:
+        return base, AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
+    except (OSError, ValueError) as e:
+        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
+                        f"({str(e).splitlines()[0]})") from None
+
+
+def check_student(recipe: Recipe, config, where: str) -> None:
+    """The student's settings against the teacher's config: layers, length, pruning (also used by
+    `shrinkwrap search` on every candidate before anything runs)."""
+    n_layers = getattr(config, "num_hidden_layers", None) or getattr(config, "n_layers", None)
+    layers = recipe.student.layers
+    if layers is not None and n_layers is not None and max(layers) >= n_layers:
+        bad = next(i for i, v in enumerate(layers) if v >= n_layers)
+        raise UserError(f"{where}: student.layers[{bad}] = {layers[bad]} — the teacher has {n_layers} layers "
+                        f"(0–{n_layers - 1})")
+    if layers is None and n_layers is not None and recipe.student.num_layers > n_layers:
+        raise UserError(f"{where}: student.num_layers = {recipe.student.num_layers} — the teacher has {n_layers} layers")
+    max_pos = getattr(config, "max_position_embeddings", None)
+    if max_pos and recipe.teacher.max_length > max_pos:
+        raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
+    student_length = recipe.student.max_length
+    if student_length is not None and student_length > recipe.teacher.max_length:
+        raise UserError(f"{where}: student.max_length = {student_length} — at most teacher.max_length "
+                        f"({recipe.teacher.max_length}): the teacher's outputs the student learns from are computed "
+                        f"on texts cut there")
+    from shrinkwrap.pruning import check_prune
+
+    check_prune(recipe, config, where)

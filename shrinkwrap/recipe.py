@@ -81,6 +81,9 @@ class StudentConfig(_Section):
     transfer_column: Optional[str] = Field(None, description="text column of transfer_path when it is a table (default: data.text)")
     temperature: float = Field(2.0, gt=0, description="softmax temperature of the soft-label term")
     alpha: float = Field(0.5, ge=0, le=1, description="weight of the soft-label term; 1 - alpha weighs the hard-label loss")
+    max_length: Optional[int] = Field(None, ge=8, le=4096, description="tokens per input the student and the artifact "
+                                      "read (default: teacher.max_length, at most that): input length is one of the "
+                                      "strongest levers on latency")
     epochs: int = Field(3, ge=1, description="distillation epochs")
     learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
     batch_size: int = Field(16, ge=1, description="texts per optimizer step")
@@ -216,6 +219,10 @@ class BudgetConfig(_Section):
                                       "must have been measured at it")
     sequence_length: Optional[int] = Field(None, ge=1, description="tokens per input the latency limits are meant at")
     size_mb: Optional[float] = Field(None, gt=0, description="largest size of the gated step, MB (10^6 bytes)")
+    min_speedup: Optional[float] = Field(
+        None, gt=0, description="smallest teacher p95 / gated step p95, both timed in the same run at the budget's "
+        "batch size and length (holds across faster and slower machines better than ms)")
+    min_shrink: Optional[float] = Field(None, gt=0, description="smallest teacher size / gated step size, same run")
     accuracy_drop_points: Optional[float] = Field(None, ge=0, description="largest accuracy drop vs the teacher, points")
     accuracy_drop_upper_bound: bool = Field(
         False, description="limit the upper end of the drop's 95 % bootstrap interval instead of the measured drop (stricter)")
@@ -232,18 +239,58 @@ class BudgetConfig(_Section):
 
     @model_validator(mode="after")
     def _latency_shape(self) -> "BudgetConfig":
-        has_latency = self.latency_p95_ms or self.latency_p95_over_reference or self.regression.p95_percent is not None
+        has_latency = (self.latency_p95_ms or self.latency_p95_over_reference or self.min_speedup
+                       or self.regression.p95_percent is not None)
         if (self.batch_size or self.sequence_length) and not has_latency:
             raise ValueError("batch_size / sequence_length say where latency is measured — set a latency limit too")
         if self.accuracy_drop_upper_bound and self.accuracy_drop_points is None:
             raise ValueError("accuracy_drop_upper_bound is set — set accuracy_drop_points too")
         return self
 
+    def speed_size_limits(self) -> dict:
+        """The limits a model's shapes alone decide (no training needed to check them): name -> value."""
+        names = ("latency_p95_ms", "latency_p95_over_reference", "size_mb", "min_speedup", "min_shrink")
+        return {n: getattr(self, n) for n in names if getattr(self, n) is not None}
+
     def limits_set(self) -> bool:
         """Whether a limit is set that needs no baseline (what `shrinkwrap run` can check at its end)."""
         return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
-                                           self.accuracy_drop_points, self.min_accuracy,
+                                           self.min_speedup, self.min_shrink, self.accuracy_drop_points, self.min_accuracy,
                                            self.max_class_recall_drop_points, self.min_agreement, self.max_ece))
+
+
+class SearchConfig(_Section):
+    """`shrinkwrap search`: recipe key paths -> the values tried; the candidates are every combination.
+    Written with dotted keys beside `strategy`: `search: {student.num_layers: [2, 3], strategy: grid}`."""
+    strategy: Literal["grid", "halving"] = Field(
+        "grid", description="grid: every candidate that can meet the latency and size limits is trained in full; "
+        "halving: successive halving (Jamieson & Talwalkar 2016) — a short distillation for all, then twice as "
+        "many epochs for the better half by validation accuracy, until student.epochs")
+    short_epochs: int = Field(1, ge=1, description="halving: distillation epochs of its first round")
+    rounds: int = Field(5, ge=1, description="interleaved timing rounds of the candidates and the teacher (each "
+                        "round times every model in turn, so that the machine's drift hits them alike)")
+    space: dict[str, Any] = Field(
+        default_factory=dict, description="the key paths and their values (any dotted key under search:, e.g. "
+        "student.num_layers: [2, 3, 4]); data.*, teacher.*, train.*, bench.* and budget.* are refused")
+
+    @model_validator(mode="before")
+    @classmethod
+    def _dotted_keys(cls, raw: Any) -> Any:
+        """Dotted keys (and nested mappings, as `--set search.student.num_layers=[2,3]` makes) -> space."""
+        if not isinstance(raw, dict):
+            return raw
+        raw, space = dict(raw), dict(raw.pop("space", None) or {})
+
+        def flatten(prefix: str, node: dict) -> None:
+            for k, v in node.items():
+                if isinstance(v, dict):
+                    flatten(f"{prefix}{k}.", v)
+                else:
+                    space[f"{prefix}{k}"] = v
+        for key in [k for k in raw if k not in cls.model_fields]:
+            value = raw.pop(key)
+            flatten(f"{key}.", value) if isinstance(value, dict) else space.__setitem__(str(key), value)
+        return {**raw, "space": space}
 
 
 class Recipe(_Section):
@@ -260,6 +307,7 @@ class Recipe(_Section):
     onnx_quantize: OnnxQuantizeConfig = Field(default_factory=OnnxQuantizeConfig)
     bench: BenchConfig = Field(default_factory=BenchConfig)
     budget: BudgetConfig = Field(default_factory=BudgetConfig)
+    search: SearchConfig = Field(default_factory=SearchConfig)
 
     # Where the recipe file lives: relative paths in it resolve against this folder.
     source: Optional[str] = Field(None, exclude=True)

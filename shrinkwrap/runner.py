@@ -116,16 +116,23 @@ def bench_step(ctx: Context, step: Step) -> dict:
     from shrinkwrap.batches import encode
 
     folder = ctx.outputs[step.name]
-    key = sha256_json({"bench": ctx.recipe.model_dump(mode="json")["bench"], "step": ctx.fingerprints[step.name]})
+    key = sha256_json({"bench": ctx.recipe.model_dump(mode="json")["bench"], "step": ctx.fingerprints[step.name],
+                       "tokens_read": min(ctx.length_of(step.name), ctx.recipe.bench.sequence_length)})
     cached = read_json_or_none(folder / BENCH_FILE)
     if cached and cached.get("key") == key:
         return cached["result"]
     b = ctx.recipe.bench
-    tokens = ctx.tokens_of(folder)  # a step after one that changed the tokenizer reads texts with its own
+    # A step after one that changed the tokenizer reads texts with its own; a student cut at fewer
+    # tokens than the benchmark's texts serves them at the cost of the tokens it reads.
+    length = ctx.length_of(step.name)
+    tokens = ctx.tokens_of(folder, length)
     timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length)
-    ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
+    read = min(length, b.sequence_length)
+    ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens"
+            + (f", the first {read} read" if read < b.sequence_length else "") + f", {b.threads} threads)")
     result = measure(folder, tokens.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
-                     tokens.pad_id, b)
+                     tokens.pad_id, b.model_copy(update={"sequence_length": read}))
+    result["latency_ms"].update(sequence_length=b.sequence_length, tokens_read=read)
     write_json_atomic(folder / BENCH_FILE, {"key": key, "result": result})
     return result
 
@@ -139,7 +146,7 @@ def calibrate_step(ctx: Context, step: Step) -> dict:
     from shrinkwrap.bench.targets import load_target
 
     folder, b = ctx.outputs[step.name], ctx.recipe.bench
-    tokens = ctx.tokens_of(folder)
+    tokens = ctx.tokens_of(folder, ctx.length_of(step.name))
     n = len(ctx.data.label_names)
     target = load_target(folder, b.threads)
     try:

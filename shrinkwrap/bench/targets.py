@@ -138,7 +138,7 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
                   max_length=getattr(model.config, "max_position_embeddings", None))
 
 
-def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
+def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:
     import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
     import onnxruntime  # noqa: F401
 
@@ -147,7 +147,7 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
     external = check_external_data(path)  # before ONNX Runtime opens anything the graph points to
     ready()
     try:
-        sess = session(path, threads)
+        sess = session(path, threads, spin=spin)
     except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
         raise UserError(f"{path}: ONNX Runtime cannot load it — {(str(e).splitlines() or [''])[0][:300]}") from None
     files = [path] + external
@@ -163,12 +163,12 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
                   max_length=config.get("max_position_embeddings"))
 
 
-def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
+def _artifact(folder: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:
     """An artifact: its hashes are checked before anything is loaded; labels and max length are its own."""
     from shrinkwrap.artifact import read_labels, temperature_of, verify
 
     manifest = verify(folder)
-    target = _onnx(folder / MODEL_FILE, threads, ready)
+    target = _onnx(folder / MODEL_FILE, threads, ready, spin)
     target.label_names = read_labels(folder)
     target.max_length = manifest["tokenizer"]["max_length"]
     target.extra["manifest"] = manifest
@@ -176,20 +176,22 @@ def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     return target
 
 
-def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = lambda: None) -> Target:
+def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = lambda: None,
+                spin: bool = True) -> Target:
     """Loads the target at `path`. `ready` is called once the runtime's libraries are imported and
     before the model is read, so that load time and memory measured from there are the model's own,
-    not the one-off cost of a first import in this process."""
+    not the one-off cost of a first import in this process. spin=False: an ONNX session's idle threads
+    sleep instead of busy-waiting (several sessions timed in turn would otherwise slow each other)."""
     path = Path(path)
     if not path.exists():
         raise UserError(f"{path}: no such file or folder — expected a transformers folder, a folder with "
                         f"{MODEL_FILE}, or a .onnx file")
     if path.is_file() and path.suffix == ".onnx":
-        return _onnx(path, threads, ready)
+        return _onnx(path, threads, ready, spin)
     if path.is_dir() and is_artifact(path):
-        return _artifact(path, threads, ready)
+        return _artifact(path, threads, ready, spin)
     if path.is_dir() and (path / MODEL_FILE).exists():
-        return _onnx(path / MODEL_FILE, threads, ready)
+        return _onnx(path / MODEL_FILE, threads, ready, spin)
     if path.is_dir() and (path / CONFIG_FILE).exists():
         return _pytorch(path, threads, ready)
     raise UserError(f"{path}: not a benchmark target — expected a transformers folder, a folder with {MODEL_FILE}, "

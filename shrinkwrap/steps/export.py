@@ -16,9 +16,10 @@ __all__ = ["GRAPH_RULE", "run"]  # GRAPH_RULE: part of this step's fingerprint (
 def run(ctx, src: Path, out: Path) -> dict:
     cfg, bench = ctx.recipe.export, ctx.recipe.bench
     model = load_classifier(str(src))
-    tokens = ctx.tokens_of(src)  # the student's own tokenizer (a trimmed one when the vocabulary was cut)
-    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
-                           tokens.pad_id, length=bench.sequence_length)
+    tokens = ctx.student_tokens(src)  # the student's own tokenizer (a trimmed one when the vocabulary was cut)
+    length = min(bench.sequence_length, ctx.student_length)  # the student never reads more
+    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, length)[: bench.batch_size],
+                           tokens.pad_id, length=length)
 
     info = export_checked(model, tokens.encoded["test"], tokens.pad_id, timing_batch, cfg, bench.threads, out)
 

@@ -25,7 +25,7 @@ def _shape(model) -> dict:
 
 def run(ctx, src: Path, out: Path) -> dict:
     cfg, st = ctx.recipe.prune, ctx.recipe.student
-    tokens = ctx.tokens_of(src)
+    tokens = ctx.student_tokens(src)
     model = load_classifier(str(src))
     n = min(cfg.importance_texts, len(ctx.data.train))
     head_scores, neuron_scores = importance(model, tokens.encoded["train"][:n], ctx.data.train.labels[:n],

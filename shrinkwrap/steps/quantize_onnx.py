@@ -24,7 +24,7 @@ from shrinkwrap.rundir import BENCH_FILE, MODEL_FILE, STEP_FILE
 
 def run(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.onnx_quantize
-    tokens = ctx.tokens_of(src)
+    tokens = ctx.student_tokens(src)
 
     quantize_dynamic(src / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.op_types)
 
@@ -40,7 +40,7 @@ def run(ctx, src: Path, out: Path) -> dict:
 def run_static(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.onnx_quantize
     op_types = [t for t in cfg.op_types if t in STATIC_OP_TYPES]
-    tokens = ctx.tokens_of(src)
+    tokens = ctx.student_tokens(src)
     calibration = tokens.encoded["train"][: cfg.static_calibration_texts]
     model = load_classifier(str(src))
 

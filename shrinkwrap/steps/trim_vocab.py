@@ -26,7 +26,7 @@ def text_batches(ctx, size: int = 1024):
 
 
 def run(ctx, src: Path, out: Path) -> dict:
-    tokens = ctx.tokens_of(src)
+    tokens = ctx.student_tokens(src)
     tokenizer = tokens.tokenizer
     special = special_ids(tokenizer)
     used = set(special)
@@ -58,5 +58,5 @@ def run(ctx, src: Path, out: Path) -> dict:
     return {"vocab_size_before": vocab_before, "vocab_size": len(kept), "special_tokens": len(special),
             "texts": checked, "embedding_bytes_before": vocab_before * width * element,
             "embedding_bytes": len(kept) * width * element,
-            # under the original tokenizer, the tokens the model reads (cut at teacher.max_length), specials excluded
+            # under the original tokenizer, the tokens the model reads (cut at the student's max_length), specials excluded
             "test_oov_rate": round(rate, 6), "test_tokens": test_tokens}
