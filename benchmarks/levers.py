@@ -46,7 +46,7 @@ VARIANTS = {
 SEEDS = {"trim": ("neither", ["teacher", "student", "cache"]), "prune": ("neither", ["teacher", "student", "cache"]),
          "both": ("prune", ["teacher", "student", "cache", "student-pruned"])}
 # The chains' own per-step benchmark is kept short: the table comes from the loop at the end.
-CHAIN = ["quantize.enabled=false", "bench.repeats=5", "bench.min_time_s=0.2", "bench.warmup_s=0"]
+CHAIN = ["quantize.enabled=false", "bench.repeats=5", "bench.timed_seconds=0.2", "bench.warm_seconds=0"]
 
 
 def shape_of(folder: Path) -> dict:
@@ -65,7 +65,7 @@ def measure_all(ctx, targets: dict[str, Path], rounds: int = 2) -> dict[str, dic
     from shrinkwrap.batches import encode
     from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
 
-    cfg = ctx.recipe.bench.model_copy(update={"repeats": 30, "min_time_s": 1.0, "warmup_s": 0.3})
+    cfg = ctx.recipe.bench.model_copy(update={"repeats": 30, "timed_seconds": 1.0, "warm_seconds": 0.3})
     encodings: dict[str, tuple] = {}
 
     def inputs_for(with_test: bool):

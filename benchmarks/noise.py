@@ -61,7 +61,7 @@ sys.path.insert(0, str(ROOT))
 SEQUENCE_LENGTH = 64
 THREADS = 2
 BENCH_OPTIONS = ["--batch-size", "1", "--sequence-length", str(SEQUENCE_LENGTH), "--threads", str(THREADS),
-                 "--warmup", "5", "--warmup-time", "0.2", "--repeats", "15", "--min-time", "0.4", "--json"]
+                 "--warmup", "5", "--warm-seconds", "0.2", "--repeats", "15", "--timed-seconds", "0.4", "--json"]
 
 
 def export_encoder(folder: Path) -> Path:

@@ -157,7 +157,7 @@ def write_recipe(path: Path, base: Path, transfer: Path) -> Path:
                     "learning_rate": 3e-3, "stall_steps": 0, "collapse_share": 1.0},
         "student": {"num_layers": 1, "epochs": 1, "batch_size": 128, "learning_rate": 3e-3,
                     "transfer_path": str(transfer), "transfer_column": "text"},
-        "bench": {"repeats": 5, "min_time_s": 0, "warmup": 1, "sequence_length": MAX_LENGTH},
+        "bench": {"repeats": 5, "timed_seconds": 0, "warmup": 1, "sequence_length": MAX_LENGTH},
     }
     path.write_text(yaml.safe_dump(recipe, sort_keys=False))
     return path

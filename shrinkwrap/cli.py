@@ -58,6 +58,9 @@ def _finish(results: dict, out: Path, quiet: bool, signing_key: Path | None = No
 
 
 def cmd_run(args) -> int:
+    from shrinkwrap.extras import require_train
+
+    require_train("shrinkwrap run")
     from shrinkwrap.recipe import load_recipe
     from shrinkwrap.report import step_table
     from shrinkwrap.rundir import REPORT_FILE, REPORT_HTML_FILE, RESULTS_FILE
@@ -100,6 +103,9 @@ def _print_cautions(lines: list[str]) -> None:
 
 
 def cmd_search(args) -> int:
+    from shrinkwrap.extras import require_train
+
+    require_train("shrinkwrap search")
     from shrinkwrap.search import SEARCH_FILE, run_search
     from shrinkwrap.search_space import load_search
 
@@ -158,11 +164,15 @@ def cmd_bench(args) -> int:
         if not is_artifact(args.target):
             raise UserError(f"--trusted-key: {args.target} is not an artifact folder — only artifacts carry signatures")
         check_signature(Path(args.target), Path(args.trusted_key))
+    if args.data:  # reading a table and the model's tokenizer is the training side's code
+        from shrinkwrap.extras import require_train
+
+        require_train("bench --data")
     if "real" in args.sequence_length and not args.data:
         raise UserError("--sequence-length real needs --data: real lengths come from real texts")
     table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
-    cfg = BenchConfig(threads=args.threads, warmup=args.warmup, warmup_s=args.warmup_time, repeats=args.repeats,
-                      min_time_s=args.min_time, eval_batch_size=args.eval_batch_size)
+    cfg = BenchConfig(threads=args.threads, warmup=args.warmup, warm_seconds=args.warm_seconds, repeats=args.repeats,
+                      timed_seconds=args.timed_seconds, eval_batch_size=args.eval_batch_size)
     log = (lambda m: None) if args.json else (lambda m: print(f"[bench] {m}", file=sys.stderr, flush=True))
     result = bench_target(args.target, cfg, grid(args.batch_size, args.sequence_length),
                           inputs_for(table, args.max_length), log)
@@ -185,6 +195,9 @@ def cmd_predict(args) -> int:
 
 
 def cmd_package(args) -> int:
+    from shrinkwrap.extras import require_train
+
+    require_train("shrinkwrap package")
     from shrinkwrap.package import from_folder
     from shrinkwrap.rundir import MANIFEST_FILE, read_json
 
@@ -251,6 +264,19 @@ def _seconds(text: str) -> float:
     if not math.isfinite(value) or value < 0:
         raise argparse.ArgumentTypeError(f"{text!r} — a finite number of seconds, 0 or more")
     return value
+
+
+# Options renamed since they first shipped: the old name is refused with the new one.
+RENAMED_OPTIONS = {"--warmup-time": "--warm-seconds", "--min-time": "--timed-seconds"}
+
+
+class _Renamed(argparse.Action):
+    def __init__(self, option_strings, dest, new: str, **kwargs):
+        self.new = new
+        super().__init__(option_strings, dest, nargs="?", **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        parser.error(f"{option_string} is now {self.new}")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -355,12 +381,14 @@ def build_parser() -> argparse.ArgumentParser:
                        help=f"intra-op threads of the model and of the reference workload (default: {default['threads']})")
     bench.add_argument("--warmup", type=_count, default=default["warmup"], metavar="N",
                        help=f"untimed runs before each row (default: {default['warmup']})")
-    bench.add_argument("--warmup-time", type=_seconds, default=default["warmup_s"], metavar="SECONDS",
-                       help=f"and keep warming up at least this long (default: {default['warmup_s']})")
+    bench.add_argument("--warm-seconds", type=_seconds, default=default["warm_seconds"], metavar="SECONDS",
+                       help=f"and keep warming up at least this long (default: {default['warm_seconds']})")
     bench.add_argument("--repeats", type=_at_least(repeats_min), default=default["repeats"], metavar="N",
                        help=f"timed runs per row, at least (default: {default['repeats']})")
-    bench.add_argument("--min-time", type=_seconds, default=default["min_time_s"], metavar="SECONDS",
-                       help=f"keep timing each row at least this long (default: {default['min_time_s']})")
+    bench.add_argument("--timed-seconds", type=_seconds, default=default["timed_seconds"], metavar="SECONDS",
+                       help=f"keep timing each row at least this long (default: {default['timed_seconds']})")
+    for old, new in RENAMED_OPTIONS.items():
+        bench.add_argument(old, action=_Renamed, new=new, help=argparse.SUPPRESS)
     bench.add_argument("--eval-batch-size", type=_positive_int, default=default["eval_batch_size"], metavar="N",
                        help=f"batch size of the accuracy pass (default: {default['eval_batch_size']})")
     bench.add_argument("--json", action="store_true", help="print the figures as JSON instead of the table")

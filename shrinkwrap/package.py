@@ -287,9 +287,9 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
     if int8:
         log("quantising to int8 (ONNX Runtime dynamic)")
         q = OnnxQuantizeConfig(per_channel=per_channel)
-        quantize_dynamic(export_dir / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.op_types)
+        quantize_dynamic(export_dir / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.int8_operators)
         facts.update(quantization={"method": "ONNX Runtime dynamic int8", "per_channel": q.per_channel,
-                                   "op_types": list(q.op_types)},
+                                   "int8_operators": list(q.int8_operators)},
                      **agreement(export_dir / MODEL_FILE, tmp / MODEL_FILE, examples, pad_id, len(model.config.id2label),
                                  threads))
     else:

@@ -168,14 +168,14 @@ class ExportConfig(_Section):
     parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed absolute logit difference between ONNX fp32 and PyTorch")
 
 
-# Operator types ONNX Runtime's static (QDQ) quantiser handles among those op_types allows: it has no
+# Operator types ONNX Runtime's static (QDQ) quantiser handles among those int8_operators allows: it has no
 # form of the fused Attention and EmbedLayerNormalization.
 STATIC_OP_TYPES = ("MatMul", "Gather", "Gemm")
 
 
 class OnnxQuantizeConfig(_Section):
     per_channel: bool = Field(False, description="per-channel weight scales instead of one per tensor")
-    op_types: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
+    int8_operators: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
         default_factory=lambda: ["MatMul", "Attention", "Gather", "EmbedLayerNormalization"],
         min_length=1, description="operator types quantised. The embedding lookup (about half of a small model's "
                                   "bytes) is Gather in an unfused graph and EmbedLayerNormalization in a fused one; "
@@ -186,8 +186,8 @@ class OnnxQuantizeConfig(_Section):
 
     @model_validator(mode="after")
     def _static_ops(self) -> "OnnxQuantizeConfig":
-        if self.static and not set(self.op_types) & set(STATIC_OP_TYPES):
-            raise ValueError(f"op_types = {json.dumps(self.op_types)} with static: true — the static step "
+        if self.static and not set(self.int8_operators) & set(STATIC_OP_TYPES):
+            raise ValueError(f"int8_operators = {json.dumps(self.int8_operators)} with static: true — the static step "
                              f"quantises only {', '.join(STATIC_OP_TYPES)}; list at least one of them")
         return self
 
@@ -197,9 +197,9 @@ class BenchConfig(_Section):
     sequence_length: int = Field(128, ge=1, description="tokens per text in the timed calls (real texts padded or cut to it)")
     threads: int = Field(2, ge=1, description="intra-op threads of PyTorch and ONNX Runtime while timing")
     warmup: int = Field(5, ge=0, description="untimed runs before timing")
-    warmup_s: float = Field(0.2, ge=0, description="keep warming up until this many seconds have passed, too")
+    warm_seconds: float = Field(0.2, ge=0, description="keep warming up until this many seconds have passed, too")
     repeats: int = Field(30, ge=3, description="timed runs, at least")
-    min_time_s: float = Field(1.0, ge=0, description="keep timing until this many seconds have passed")
+    timed_seconds: float = Field(1.0, ge=0, description="keep timing until this many seconds have passed")
     eval_batch_size: int = Field(32, ge=1, description="batch size of the accuracy pass over the test split")
 
 
@@ -354,6 +354,11 @@ def _dig(data: Any, loc: tuple) -> Any:
     return data
 
 
+# Keys renamed since they first shipped: a recipe with the old name gets the new one in its error.
+RENAMED_KEYS = {"bench.warmup_s": "bench.warm_seconds", "bench.min_time_s": "bench.timed_seconds",
+                "onnx_quantize.op_types": "onnx_quantize.int8_operators"}
+
+
 def _loc(err: dict) -> tuple:
     return tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
 
@@ -369,6 +374,9 @@ def _explain_raw(err: dict, raw: dict, where: str, root: Any = None) -> str:
     msg = err["msg"].removeprefix("Value error, ")
     if kind == "extra_forbidden":
         parent = _place(loc[:-1])
+        renamed = RENAMED_KEYS.get(place)
+        if renamed:
+            return f"{where}: {place} is now {renamed} — rename the key"
         model: Any = root or Recipe
         for part in loc[:-1]:
             model = model.model_fields[part].annotation if isinstance(part, str) else model

@@ -1,8 +1,8 @@
-"""The recipe's keys as documentation: the Markdown key table README.md carries (tests/test_docs.py
-keeps the two in step).
+"""The recipe's keys and the commands' options as documentation: the Markdown tables README.md carries
+(tests/test_docs.py keeps them in step with the schema and the argument parser).
 
-    python -m shrinkwrap.recipe_doc                          # prints the table
-    python -m shrinkwrap.recipe_doc --write-readme README.md # rewrites the block between the markers
+    python -m shrinkwrap.recipe_doc                          # prints the key table
+    python -m shrinkwrap.recipe_doc --write-readme README.md # rewrites every block between the markers
 
 """
 from __future__ import annotations
@@ -57,11 +57,59 @@ def with_key_table(readme: str) -> str:
     return f"{head}{README_BEGIN}\n{key_table()}\n{README_END}{tail}"
 
 
+def _commands() -> dict:
+    import argparse
+
+    from shrinkwrap.cli import build_parser
+
+    parser = build_parser()
+    return next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
+
+
+def options_block(name: str) -> str:
+    """One command's usage line and a table of its options, from the argument parser itself."""
+    import argparse
+
+    parser = _commands()[name]
+    usage = " ".join(parser.format_usage().removeprefix("usage: ").split())
+    rows = [f"    {usage}", "", "| option | meaning |", "|---|---|"]
+    for action in parser._actions:
+        if action.help == argparse.SUPPRESS or isinstance(action, argparse._HelpAction):
+            continue
+        if action.option_strings:
+            flags = ", ".join(action.option_strings)
+            metavar = "" if action.nargs == 0 else f" {action.metavar or action.dest.upper()}"
+            if action.nargs == "+":
+                metavar += " ..."
+            name_cell = f"`{flags}{metavar}`"
+        else:
+            name_cell = f"`{action.metavar or action.dest.upper()}`"
+        text = (action.help or "") % {"default": action.default} if "%(" in (action.help or "") else (action.help or "")
+        rows.append(f"| {name_cell} | {text.replace('|', '/')} |")
+    return "\n".join(rows)
+
+
+def _marks(name: str) -> tuple[str, str]:
+    return f"<!-- options of {name}: begin -->", f"<!-- options of {name}: end -->"
+
+
+def with_option_blocks(readme: str) -> str:
+    """README text with every command's options block (where its markers are) replaced by the current one."""
+    for name in _commands():
+        begin, end = _marks(name)
+        if begin in readme and end in readme:
+            head, rest = readme.split(begin, 1)
+            _, tail = rest.split(end, 1)
+            readme = f"{head}{begin}\n{options_block(name)}\n{end}{tail}"
+    return readme
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["--write-readme"]:
         target = Path(argv[1])
-        target.write_text(with_key_table(target.read_text(encoding="utf-8")), encoding="utf-8")
+        text = target.read_text(encoding="utf-8")
+        target.write_text(with_option_blocks(with_key_table(text)), encoding="utf-8")
     else:
         print(key_table())
 

@@ -87,12 +87,12 @@ def class_changes(results: dict, step: dict) -> list[dict]:
 
 
 def _lost_too_many(lost: int, support: int, average_drop_points: float) -> tuple[bool, float]:
-    from scipy.stats import binomtest
+    from shrinkwrap.bench.exact import binomial_upper_tail
 
     if lost < CLASS_MIN_LOST or support == 0:
         return False, 1.0
     rate = max(CLASS_FLOOR_RATE, average_drop_points / 100)
-    p = float(binomtest(lost, support, min(rate, 1.0), alternative="greater").pvalue)
+    p = binomial_upper_tail(lost, support, min(rate, 1.0))
     return p < CLASS_P, p
 
 
@@ -384,11 +384,26 @@ window.addEventListener("load", function () {
 """
 
 
+NO_PLOTS = "No plots: matplotlib is not installed (pip install matplotlib, or the [train] extra)."
+
+
+def _has_matplotlib() -> bool:
+    import importlib.util
+
+    try:
+        return importlib.util.find_spec("matplotlib") is not None
+    except (ImportError, ValueError):
+        return False
+
+
 def html_report(results: dict) -> str:
     title = f"shrinkwrap report — {results['recipe']['name']}"
     header, rows, caption = step_rows(results)
-    figures = "".join(f'<figure><img src="{uri}" alt="{html.escape(cap)}"><figcaption>{html.escape(cap)}</figcaption>'
-                      f"</figure>" for cap, uri in plots(results))
+    if _has_matplotlib():
+        figures = "".join(f'<figure><img src="{uri}" alt="{html.escape(cap)}"><figcaption>{html.escape(cap)}'
+                          f"</figcaption></figure>" for cap, uri in plots(results))
+    else:  # the plain (serving) install: the tables alone, and how to get the plots
+        figures = f"<p>{html.escape(NO_PLOTS)}</p>"
     found = cautions(results) or [NO_CAUTION]
     parts = [
         f"<h1>{html.escape(title)}</h1>",

@@ -97,7 +97,7 @@ class Shapes:
             export_checked(student, examples, pad, timing, recipe.export, b.threads, fp32,
                            what="search (an untrained candidate)")
             q = recipe.onnx_quantize
-            quantize_dynamic(fp32 / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.op_types)
+            quantize_dynamic(fp32 / MODEL_FILE, tmp / MODEL_FILE, q.per_channel, q.int8_operators)
             shutil.rmtree(fp32)
             student.config.save_pretrained(tmp)
             tokenizer.save_pretrained(tmp)

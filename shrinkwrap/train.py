@@ -8,6 +8,7 @@ import contextlib
 import copy
 import math
 import random
+import sys
 import time
 from dataclasses import dataclass, field
 from typing import Callable, Optional
@@ -164,8 +165,10 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
         checkpoint.log(f"{desc}: resuming from a checkpoint at step {result.steps} (epoch {first_epoch}, "
                        f"batch {first_batch})")
 
+    # A bar only where a person watches (stderr is a terminal); elsewhere, e.g. a CI log, one line per epoch.
+    on_terminal = sys.stderr.isatty()
     bar = tqdm(total=steps_per_epoch * s.epochs, initial=result.steps, desc=desc, unit="batch", leave=False,
-               dynamic_ncols=True, disable=not distributed.is_main())
+               dynamic_ncols=True, disable=not (distributed.is_main() and on_terminal))
     try:
         for epoch in range(first_epoch, s.epochs + 1):
             model.train()
@@ -217,6 +220,9 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
             entry = {"epoch": epoch, "step": result.steps, "train_loss": float(np.mean(losses[-steps_per_epoch:])),
                      "accuracy": metrics["accuracy"], "macro_f1": metrics["macro_f1"]}
             result.curve.append(entry)
+            if distributed.is_main() and not on_terminal:
+                print(f"{desc}: epoch {epoch}/{s.epochs}, training loss {entry['train_loss']:.4f}, validation "
+                      f"{s.metric} {entry[s.metric]:.4f}", file=sys.stderr, flush=True)
             if s.collapse_share < 1 and top_share >= s.collapse_share and majority < s.collapse_share:
                 result.status = "degenerate"
                 result.reason = (f"validation predictions collapsed: {top_share:.0%} in one class at epoch {epoch} "

@@ -82,7 +82,7 @@ def tiny_recipe(base: Path, data: Path, **sections) -> dict:
         "teacher": {"base": str(base), "epochs": 8, "patience": 3, "max_length": 32, "batch_size": 16, "learning_rate": 3e-3,
                     "stall_steps": 0, "collapse_share": 1.0},
         "student": {"num_layers": 2, "epochs": 3, "learning_rate": 3e-3, "batch_size": 16},
-        "bench": {"repeats": 5, "min_time_s": 0, "warmup": 1, "sequence_length": 32},
+        "bench": {"repeats": 5, "timed_seconds": 0, "warmup": 1, "sequence_length": 32},
     }
     for key, value in sections.items():
         recipe.setdefault(key, {}).update(value)

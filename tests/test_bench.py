@@ -14,7 +14,7 @@ import pytest
 from conftest import ROOT
 from shrinkwrap.cli import main
 
-FAST = ["--warmup", "1", "--warmup-time", "0", "--repeats", "5", "--min-time", "0", "--threads", "1"]
+FAST = ["--warmup", "1", "--warm-seconds", "0", "--repeats", "5", "--timed-seconds", "0", "--threads", "1"]
 STEPS = ["teacher", "student", "student-int8", "student-onnx", "student-onnx-int8"]
 
 

@@ -26,3 +26,15 @@ def test_readme_describes_every_command():
 def test_every_recipe_key_has_a_description():
     missing = [path for path, info in key_paths() if not info.description]
     assert not missing, missing
+
+
+def test_readme_option_tables_are_current():
+    """Every command's usage line and options in README.md are the parser's own (regenerate with
+    python -m shrinkwrap.recipe_doc --write-readme README.md)."""
+    from shrinkwrap.recipe_doc import _commands, _marks, with_option_blocks
+
+    text = README.read_text(encoding="utf-8")
+    for name in _commands():
+        begin, end = _marks(name)
+        assert begin in text and end in text, f"README.md has no options block for {name}"
+    assert with_option_blocks(text) == text, "run: python -m shrinkwrap.recipe_doc --write-readme README.md"

@@ -26,7 +26,7 @@ def bbc_run(tmp_path_factory):
         "data": {"path": "bbc.csv", "text": "text", "label": "topic", "test_size": 0.25, "validation_size": 0.15},
         "teacher": {"base": "bundled", "epochs": 2, "max_length": 64, "learning_rate": 1e-4, "batch_size": 16},
         "student": {"num_layers": 2, "epochs": 2, "learning_rate": 2e-4},
-        "bench": {"sequence_length": 64, "repeats": 10, "min_time_s": 0.2},
+        "bench": {"sequence_length": 64, "repeats": 10, "timed_seconds": 0.2},
     }
     path = write_recipe(folder / "recipe.yaml", recipe)  # data.path is relative: resolved against this folder
     assert data.parent == path.parent

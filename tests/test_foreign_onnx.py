@@ -21,7 +21,7 @@ from shrinkwrap.cli import main
 from shrinkwrap.errors import UserError
 
 VOCAB = 30522  # the bundled uncased WordPiece of tiny_base
-FAST = ["--repeats", "3", "--min-time", "0", "--warmup", "0", "--warmup-time", "0", "--sequence-length", "16",
+FAST = ["--repeats", "3", "--timed-seconds", "0", "--warmup", "0", "--warm-seconds", "0", "--sequence-length", "16",
         "--json"]
 
 

@@ -16,9 +16,9 @@ BAD = {
     ("bench", "--sequence-length"): ["0", "-3", "long"],
     ("bench", "--threads"): ["0", "two"],
     ("bench", "--warmup"): ["-3", "1.5"],
-    ("bench", "--warmup-time"): ["nan", "-1", "inf", "soon"],
+    ("bench", "--warm-seconds"): ["nan", "-1", "inf", "soon"],
     ("bench", "--repeats"): ["2", "0", "-1"],
-    ("bench", "--min-time"): ["-1", "nan", "-inf"],
+    ("bench", "--timed-seconds"): ["-1", "nan", "-inf"],
     ("bench", "--eval-batch-size"): ["0", "-2"],
     ("predict", "--batch-size"): ["0", "-1"],
     ("predict", "--threads"): ["-1", "x"],
@@ -51,8 +51,8 @@ def test_bad_value_is_exit_2_and_one_line(command, option, value, capsys):
     assert "Traceback" not in err[0]
 
 
-@pytest.mark.parametrize("option,value", [("--repeats", "3"), ("--warmup", "0"), ("--min-time", "0"),
-                                          ("--warmup-time", "0.5")])
+@pytest.mark.parametrize("option,value", [("--repeats", "3"), ("--warmup", "0"), ("--timed-seconds", "0"),
+                                          ("--warm-seconds", "0.5")])
 def test_edge_values_are_accepted(option, value):
     args = build_parser().parse_args(["bench", "m.onnx", option, value])
     assert getattr(args, option[2:].replace("-", "_")) == float(value)

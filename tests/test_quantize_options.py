@@ -106,7 +106,7 @@ def test_static_step_is_its_own_row_and_keeps_the_dynamic_step_final(tiny_run_co
     names = [s["name"] for s in results["steps"]]
     assert names[-2:] == ["student-onnx-int8-static", "student-onnx-int8"]
     static = results["steps"][-2]
-    assert static["info"]["calibration_texts"] == 20 and static["info"]["op_types"] == ["MatMul", "Gather"]
+    assert static["info"]["calibration_texts"] == 20 and static["info"]["int8_operators"] == ["MatMul", "Gather"]
     assert static["info"]["embeddings_int8"] is True
     assert 0 <= static["agreement_with_fp32"] <= 1
     model = tiny_run_copy / "student-onnx-int8-static" / "model.onnx"
@@ -122,9 +122,9 @@ def test_static_step_is_its_own_row_and_keeps_the_dynamic_step_final(tiny_run_co
 
 
 @pytest.mark.parametrize("keys, needle", [
-    ({"static": True, "op_types": ["Attention"]}, "onnx_quantize"),
+    ({"static": True, "int8_operators": ["Attention"]}, "onnx_quantize"),
     ({"static_calibration_texts": 0}, "onnx_quantize.static_calibration_texts = 0"),
-    ({"op_types": ["Conv"]}, "onnx_quantize.op_types[0]"),
+    ({"int8_operators": ["Conv"]}, "onnx_quantize.int8_operators[0]"),
 ])
 def test_bad_quantize_keys_are_one_line_errors(keys, needle):
     from shrinkwrap.errors import UserError

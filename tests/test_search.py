@@ -104,7 +104,7 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
     recipe = _recipe(tmp_path, tiny_base, keyword_csv,
                      {"trim_vocab.enabled": [False, True], "student.max_length": [16, 32], "rounds": 2},
                      teacher={"epochs": 3}, student={"num_layers": 1, "epochs": 2}, quantize={"enabled": False},
-                     bench={"warmup_s": 0},
+                     bench={"warm_seconds": 0},
                      budget={"size_mb": 0.6, "accuracy_drop_points": 100})
     out = tmp_path / "out"
 

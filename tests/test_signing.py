@@ -15,7 +15,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from shrinkwrap.cli import main
 
-FAST = ["--repeats", "3", "--min-time", "0", "--warmup", "0", "--warmup-time", "0", "--sequence-length", "16", "--json"]
+FAST = ["--repeats", "3", "--timed-seconds", "0", "--warmup", "0", "--warm-seconds", "0", "--sequence-length", "16", "--json"]
 
 
 def _keys(folder: Path, name: str) -> tuple[Path, Path]:

@@ -143,7 +143,7 @@ def bench_text(result: dict) -> str:
     machine = result["machine"]
     versions = ", ".join(f"{k} {v}" for k, v in machine["versions"].items())
     lines += ["", format_table(result["latency"]), "",
-              f"{p['threads']} threads; warm-up {p['warmup']} runs and {p['warmup_s']:g} s; then at least "
-              f"{p['repeats']} runs and {p['min_time_s']:g} s per row.",
+              f"{p['threads']} threads; warm-up {p['warmup']} runs and {p['warm_seconds']:g} s; then at least "
+              f"{p['repeats']} runs and {p['timed_seconds']:g} s per row.",
               f"machine: {machine['cpu']}, {machine['cores_available']} of {machine['cores_total']} cores; {versions}"]
     return "\n".join(lines)

@@ -57,13 +57,11 @@ def summarize(samples_ms: np.ndarray) -> dict:
     out = {f"p{q}": float(np.percentile(s, q)) for q in PERCENTILES}
     mean = float(s.mean())
     if len(s) > 1:
-        # stdtrit is the t distribution's quantile (scipy.stats.t.ppf) without importing scipy.stats,
-        # which costs seconds on a busy machine.
-        from scipy.special import stdtrit
+        from shrinkwrap.bench.exact import t_quantile
 
         # Student's t interval of the mean; successive calls are not fully independent (caches,
         # clock), so read it as a lower bound on the true uncertainty.
-        half = float(stdtrit(len(s) - 1, 0.975) * s.std(ddof=1) / math.sqrt(len(s)))
+        half = float(t_quantile(0.975, len(s) - 1) * s.std(ddof=1) / math.sqrt(len(s)))
     else:
         half = float("nan")
     out.update(mean=mean, mean_ci95=[mean - half, mean + half], n=int(len(s)),

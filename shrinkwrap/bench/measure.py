@@ -51,7 +51,7 @@ def _time_point(target: Target, point: Point, batches: list[dict], cfg, referenc
         raise UserError(f"{target.path}: fails on a batch of {point.batch_size} × {point.sequence_length} tokens — "
                         f"{type(e).__name__}: {(str(e).splitlines() or [''])[0][:300]}") from None
     ref_ms: list[float] = []
-    samples = time_calls(call, cfg.warmup, cfg.repeats, cfg.min_time_s, warmup_s=cfg.warmup_s,
+    samples = time_calls(call, cfg.warmup, cfg.repeats, cfg.timed_seconds, warmup_s=cfg.warm_seconds,
                          pause=lambda: ref_ms.extend(reference.burst()), pause_every_s=EVERY_S)
     row = summarize(samples)
     row.update(batch_size=point.batch_size, sequence_length=point.sequence_length, threads=cfg.threads,
@@ -62,11 +62,9 @@ def _time_point(target: Target, point: Point, batches: list[dict], cfg, referenc
 
 def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], Inputs] = lambda t: Inputs(),
                  log: Callable[[str], None] = lambda message: None) -> dict:
-    """Measures the target at `path`. `cfg` gives threads, warmup, warmup_s, repeats, min_time_s and
+    """Measures the target at `path`. `cfg` gives threads, warmup, warm_seconds, repeats, timed_seconds and
     eval_batch_size (a recipe's bench section, or the command's options); `inputs_for` builds the
     inputs once the target is loaded (its tokenizer and label names may be needed)."""
-    import scipy.special  # noqa: F401  (summarize needs it: imported before the memory window opens)
-
     reference = Reference(cfg.threads)  # built before the memory window and the load clock start
     start = {"window": PeakWindow(), "clock": time.perf_counter()}
 
@@ -106,8 +104,8 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
     result["latency"] = rows
     result["reference"] = {"workload": describe_reference(cfg.threads), "ms": float(np.median(reference.samples)),
                            "runs": len(reference.samples)}
-    result["protocol"] = {"threads": cfg.threads, "warmup": cfg.warmup, "warmup_s": cfg.warmup_s,
-                          "repeats": cfg.repeats, "min_time_s": cfg.min_time_s, "clock": "time.perf_counter",
+    result["protocol"] = {"threads": cfg.threads, "warmup": cfg.warmup, "warm_seconds": cfg.warm_seconds,
+                          "repeats": cfg.repeats, "timed_seconds": cfg.timed_seconds, "clock": "time.perf_counter",
                           "lengths": f"fixed: texts padded or cut to that many tokens (synthetic ids without "
                                      f"data); {REAL}: consecutive texts padded to their batch's longest"}
     return result

@@ -23,7 +23,7 @@ from shrinkwrap.bench.targets import load_target
 def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
                    log: Callable[[str], None] = lambda message: None) -> list[dict]:
     """Latency of each (path, batch) in `models`, as bench's rows are (percentiles, mean, n, and the
-    reference workload of the same run). `cfg`: a recipe's bench section; its repeats and min_time_s are
+    reference workload of the same run). `cfg`: a recipe's bench section; its repeats and timed_seconds are
     shared out over the rounds, its warm-up is repeated before each model's turn in every round."""
     reference = Reference(cfg.threads)
     targets = [load_target(path, cfg.threads, spin=False) for path, _ in models]
@@ -36,7 +36,7 @@ def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
                 i = (k + r) % len(models)
                 batch, target = models[i][1], targets[i]
                 samples[i] += time_calls(lambda: target.logits(batch), max(1, cfg.warmup), repeats,
-                                         cfg.min_time_s / rounds, warmup_s=cfg.warmup_s).tolist()
+                                         cfg.timed_seconds / rounds, warmup_s=cfg.warm_seconds).tolist()
             reference.burst()
     finally:
         for t in targets:

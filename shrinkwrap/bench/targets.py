@@ -115,6 +115,9 @@ def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
 
 
 def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
+    from shrinkwrap.extras import require_train
+
+    require_train(f"{folder}: a PyTorch model folder")
     import torch
     import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
 

@@ -41,6 +41,9 @@ def run(ctx, src: None, out: Path) -> dict:
         best = next(r for r in runs if r["seed"] == done["best_seed"])
         best_model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
         best_model.load_state_dict(done["best_model"])
+    if any(all(r["seed"] != seed for r in runs) for seed in cfg.seeds):
+        ctx.log("teacher: a fresh classification head on the base (the library's 'newly initialized' "
+                "notice for it is expected, so it is not shown)")
     for seed in cfg.seeds:
         if any(r["seed"] == seed for r in runs):
             continue

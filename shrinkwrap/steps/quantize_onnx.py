@@ -26,20 +26,20 @@ def run(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.onnx_quantize
     tokens = ctx.student_tokens(src)
 
-    quantize_dynamic(src / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.op_types)
+    quantize_dynamic(src / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.int8_operators)
 
     for f in src.iterdir():  # tokenizer and config travel with the model
         if f.is_file() and f.name not in (MODEL_FILE, STEP_FILE, BENCH_FILE):
             shutil.copyfile(f, out / f.name)
     return {"method": "ONNX Runtime dynamic int8", "per_channel": cfg.per_channel,
-            "op_types": list(cfg.op_types), **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
+            "int8_operators": list(cfg.int8_operators), **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
             **agreement(src / MODEL_FILE, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id,
                         len(ctx.data.label_names), ctx.recipe.bench.threads)}
 
 
 def run_static(ctx, src: Path, out: Path) -> dict:
     cfg = ctx.recipe.onnx_quantize
-    op_types = [t for t in cfg.op_types if t in STATIC_OP_TYPES]
+    op_types = [t for t in cfg.int8_operators if t in STATIC_OP_TYPES]
     tokens = ctx.student_tokens(src)
     calibration = tokens.encoded["train"][: cfg.static_calibration_texts]
     model = load_classifier(str(src))
@@ -54,6 +54,6 @@ def run_static(ctx, src: Path, out: Path) -> dict:
     tokens.tokenizer.save_pretrained(out)
     return {"method": "ONNX Runtime static int8 (QDQ)", "graph": "plain",
             "per_channel": cfg.per_channel,
-            "op_types": op_types, "calibration_texts": len(calibration), "calibration": "MinMax",
+            "int8_operators": op_types, "calibration_texts": len(calibration), "calibration": "MinMax",
             "activations": "uint8", "weights": "int8",
             **int8_summary(out / MODEL_FILE, model.config.vocab_size), **agrees}

@@ -1,0 +1,3 @@
+from shrinkwrap.cli import main
+
+raise SystemExit(main())

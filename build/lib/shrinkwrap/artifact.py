@@ -1,0 +1,201 @@
+"""The artifact: one folder a service runs with onnxruntime, tokenizers and numpy alone.
+
+    model.onnx        the graph
+    tokenizer.json    (and the other tokenizer files) the tokenizer the model was trained with
+    labels.json       class names by id
+    README.md         the model card
+    config.json       the transformers config, for tools that want it
+    manifest.json     sha256 and size of every other file, opset, inputs and outputs, tokenizer
+                      fingerprint, max sequence length, metrics at export, versions
+
+This module reads and checks artifacts; building them (which needs torch) is in shrinkwrap.package.
+It imports nothing beyond the standard library, numpy, onnxruntime, tokenizers and shrinkwrap's
+fingerprint/errors/onnx_tools/rundir/batches/calibration modules: keep it that way (tests/test_predict.py checks).
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional
+
+import numpy as np
+
+from shrinkwrap.batches import all_logits
+from shrinkwrap.calibration import softmax
+from shrinkwrap.errors import UserError
+from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
+# Label names live in their own file (LABELS_FILE) rather than in the manifest: the manifest cannot
+# hash itself, so anything in it could be edited unnoticed, while labels.json is covered by its hash.
+from shrinkwrap.rundir import LABELS_FILE, MANIFEST_FILE, MODEL_FILE, TOKENIZER_FILE, read_json
+
+FORMAT = "shrinkwrap-artifact"
+FORMAT_VERSION = 1
+CARD_FILE = "README.md"
+REQUIRED_FILES = (MODEL_FILE, TOKENIZER_FILE, LABELS_FILE)
+# The same default as the chain's accuracy pass (bench.eval_batch_size): with the same length-sorted
+# batches, predict gives exactly the logits the chain recorded.
+DEFAULT_BATCH_SIZE = 32
+
+
+def is_artifact(path: str | Path) -> bool:
+    return Path(path).is_dir() and (Path(path) / MANIFEST_FILE).is_file()
+
+
+def file_entries(folder: Path, names: list[str]) -> dict[str, dict]:
+    return {n: {"sha256": sha256_file(folder / n), "bytes": (folder / n).stat().st_size} for n in sorted(names)}
+
+
+def read_manifest(folder: Path) -> dict:
+    path = folder / MANIFEST_FILE
+    if not folder.is_dir():
+        raise UserError(f"{folder}: no such artifact folder")
+    if not path.is_file():
+        raise UserError(f"{folder}: no {MANIFEST_FILE} — not a shrinkwrap artifact (build one with "
+                        f"`shrinkwrap package` or `shrinkwrap run`)")
+    manifest = read_json(path, "artifact manifest")
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        raise UserError(f"{path}: not a shrinkwrap artifact manifest (format must be {FORMAT!r})")
+    if manifest.get("format_version") != FORMAT_VERSION:
+        raise UserError(f"{path}: format_version = {manifest.get('format_version')!r} — this shrinkwrap reads "
+                        f"version {FORMAT_VERSION}")
+    if not isinstance(manifest.get("files"), dict):
+        raise UserError(f"{path}: no `files` table — rebuild the artifact")
+    return manifest
+
+
+def verify(folder: str | Path) -> dict:
+    """The manifest, once every file it lists is present with its recorded size and sha256; a
+    one-line UserError otherwise. Nothing is loaded before this passes."""
+    folder = Path(folder)
+    manifest = read_manifest(folder)
+    files = manifest["files"]
+    for name in REQUIRED_FILES:
+        if name not in files:
+            raise UserError(f"{folder}: incomplete artifact — its manifest does not list {name}")
+    for name, entry in files.items():
+        # Names are plain file names: a manifest must never point outside its folder.
+        if not isinstance(name, str) or Path(name).name != name or name in (".", "..", MANIFEST_FILE):
+            raise UserError(f"{folder / MANIFEST_FILE}: file name {name!r} — only plain file names of the folder")
+        if not isinstance(entry, dict) or not isinstance(entry.get("sha256"), str) or \
+                not isinstance(entry.get("bytes"), int):
+            raise UserError(f"{folder / MANIFEST_FILE}: files[{name!r}] = {json.dumps(entry)} — expected "
+                            f"{{\"sha256\": ..., \"bytes\": ...}}")
+        path = folder / name
+        if not path.is_file():
+            raise UserError(f"{path}: missing — the artifact's manifest lists it; the artifact is incomplete")
+        size = path.stat().st_size
+        if size != entry["bytes"]:
+            raise UserError(f"{path}: {size} bytes where the manifest records {entry['bytes']} — modified after "
+                            f"packaging; rebuild the artifact")
+        digest = sha256_file(path)
+        if digest != entry["sha256"]:
+            raise UserError(f"{path}: sha256 {digest[:16]}… differs from the manifest's {entry['sha256'][:16]}… — "
+                            f"modified after packaging; rebuild the artifact")
+    expected = (manifest.get("tokenizer") or {}).get("fingerprint")
+    got = tokenizer_fingerprint_of_file(folder / TOKENIZER_FILE)
+    if expected != got:
+        raise UserError(f"{folder / TOKENIZER_FILE}: tokenizer fingerprint {got[:12]} differs from the manifest's "
+                        f"{str(expected)[:12]} — rebuild the artifact")
+    return manifest
+
+
+def temperature_of(manifest: dict) -> float:
+    """The calibration temperature the manifest records (1.0 for an artifact packaged without one)."""
+    t = (manifest.get("calibration") or {}).get("temperature", 1.0)
+    if isinstance(t, bool) or not isinstance(t, (int, float)) or not np.isfinite(t) or t <= 0:
+        raise UserError(f"{MANIFEST_FILE}: calibration.temperature = {t!r} — expected a positive number")
+    return float(t)
+
+
+@dataclass
+class Artifact:
+    folder: Path
+    manifest: dict
+    labels: list[str]
+    session: object
+    tokenizer: object
+
+    @property
+    def max_length(self) -> int:
+        return int(self.manifest["tokenizer"]["max_length"])
+
+    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
+        """Logits of every text, in order, in the chain's own length-sorted batches (batches.all_logits),
+        so that padding costs little and the logits are those the chain recorded."""
+        from shrinkwrap.onnx_tools import run_logits
+
+        examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
+                    for e in self.tokenizer.encode_batch(list(texts))]
+        pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
+        return all_logits(lambda batch: run_logits(self.session, batch),
+                          examples, pad_id, len(self.labels), batch_size)
+
+    @property
+    def temperature(self) -> float:
+        return temperature_of(self.manifest)
+
+    def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
+                min_confidence: float = 0.0) -> list[dict]:
+        """{"text", "label", "scores": {label: probability}} for each text, in order. Scores are the softmax of
+        the logits divided by the artifact's temperature; a text whose top score is below `min_confidence`
+        gets label None (abstains), its scores still given."""
+        probs = softmax(self.logits(texts, batch_size), self.temperature)
+        return [{"text": t, "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
+                 "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)}}
+                for t, p in zip(texts, probs)]
+
+
+def read_labels(folder: Path) -> list[str]:
+    path = folder / LABELS_FILE
+    labels = read_json(path, "label list")
+    if not isinstance(labels, list) or not labels or not all(isinstance(x, str) for x in labels):
+        raise UserError(f"{path}: expected a non-empty list of label names")
+    return labels
+
+
+def labels_of_config(config: dict) -> Optional[list[str]]:
+    """Class names by id from a transformers config's id2label (keys are strings once saved as JSON);
+    None when it has none."""
+    id2label = config.get("id2label")
+    if not id2label:
+        return None
+    return [str(id2label.get(str(i), id2label.get(i))) for i in range(len(id2label))]
+
+
+def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None) -> Artifact:
+    """Verifies the artifact (unless `verified` is the manifest `verify` just returned), then loads it.
+    threads = 0 lets ONNX Runtime choose."""
+    folder = Path(folder)
+    manifest = verified if verified is not None else verify(folder)
+    return open_folder(folder, manifest, read_labels(folder), threads)
+
+
+def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 0) -> Artifact:
+    """Loads model and tokenizer without checking hashes: for `load`, and for the packager measuring
+    the artifact it is building through this very code path."""
+    from tokenizers import Tokenizer
+
+    from shrinkwrap.onnx_tools import check_external_data, session
+
+    check_external_data(folder / MODEL_FILE)  # before ONNX Runtime opens anything the graph points to
+    tok_info = manifest.get("tokenizer") or {}
+    if not isinstance(tok_info.get("max_length"), int) or tok_info["max_length"] < 1:
+        raise UserError(f"{folder / MANIFEST_FILE}: tokenizer.max_length = {tok_info.get('max_length')!r} — "
+                        f"expected a whole number of tokens")
+    try:
+        tokenizer = Tokenizer.from_file(str(folder / TOKENIZER_FILE))
+    except Exception as e:  # the Rust library raises plain Exception for a file it cannot parse
+        raise UserError(f"{folder / TOKENIZER_FILE}: cannot load — {str(e).splitlines()[0]}") from None
+    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours.
+    tokenizer.no_padding()
+    tokenizer.enable_truncation(tok_info["max_length"])
+    try:
+        sess = session(folder / MODEL_FILE, threads)
+    except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
+        raise UserError(f"{folder / MODEL_FILE}: ONNX Runtime cannot load it — {str(e).splitlines()[0]}") from None
+    temperature_of(manifest)  # a bad temperature fails at load, not at the first prediction
+    n_out = sess.get_outputs()[0].shape[-1]
+    if isinstance(n_out, int) and n_out != len(labels):
+        raise UserError(f"{folder / LABELS_FILE}: {len(labels)} labels but the model outputs {n_out} scores")
+    return Artifact(folder=folder, manifest=manifest, labels=labels, session=sess, tokenizer=tokenizer)

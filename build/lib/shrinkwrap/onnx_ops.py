@@ -1,0 +1,186 @@
+"""ONNX conversions shared by the ONNX steps and by `shrinkwrap package`: the fp32 export proven against
+PyTorch, the transformer-graph fusion, the two int8 variants, and what a graph holds after them.
+
+The exporter is optimum's (torch.onnx underneath): it knows the text-classification task's inputs,
+outputs and dynamic batch/sequence axes for every BERT-family architecture, so the graph it writes
+is the same one we would write by hand with torch.onnx, without per-architecture code here.
+Sessions and feeds come from shrinkwrap.onnx_tools, the torch-free part the predict path uses.
+"""
+from __future__ import annotations
+
+import logging
+import shutil
+import tempfile
+import warnings
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import onnx
+
+from shrinkwrap.bench.latency import summarize, time_calls
+from shrinkwrap.batches import all_logits, collate
+from shrinkwrap.errors import StepFailed
+from shrinkwrap.onnx_tools import run_logits, session
+from shrinkwrap.rundir import CONFIG_FILE, MODEL_FILE, read_json_or_none
+from shrinkwrap.train import predict_logits
+
+# Part of the student-onnx step's fingerprint: a run folder whose export was chosen by an earlier rule is redone.
+GRAPH_RULE = "fused when it passes parity, never by timing"
+
+_EIGHT_BIT = (onnx.TensorProto.INT8, onnx.TensorProto.UINT8)
+_INT8_OPS = ("MatMulInteger", "QAttention", "QEmbedLayerNormalization", "QuantizeLinear", "DequantizeLinear",
+             "DynamicQuantizeLinear", "QGemm")
+
+
+# ---- fp32 export -----------------------------------------------------------------------------------------
+
+
+def export_onnx(model, folder: Path, opset: int) -> Path:
+    """folder/model.onnx: the classifier's fp32 graph, checked by onnx.checker."""
+    from optimum.exporters.onnx import onnx_export_from_model
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        onnx_export_from_model(model, str(folder), task="text-classification", opset=opset, do_validation=False)
+    path = folder / MODEL_FILE
+    onnx.checker.check_model(str(path), full_check=True)
+    return path
+
+
+def fuse(path: Path, config, out_path: Path) -> Path:
+    """ONNX Runtime's transformer optimizer: fuses attention, LayerNorm, GELU and the embedding layer."""
+    from onnxruntime.transformers.optimizer import optimize_model
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        # Its BERT fusions serve every encoder family we export (BERT, RoBERTa, DistilBERT, ELECTRA alike).
+        opt = optimize_model(str(path), model_type="bert", num_heads=config.num_attention_heads,
+                             hidden_size=config.hidden_size, opt_level=1)
+    opt.save_model_to_file(str(out_path))
+    onnx.checker.check_model(str(out_path), full_check=True)
+    return out_path
+
+
+def p50_ms(path: Path, batch: dict, threads: int) -> float:
+    sess = session(path, threads)
+    return summarize(time_calls(lambda: run_logits(sess, batch), warmup=3, repeats=20, min_time_s=0.5))["p50"]
+
+
+def parity(path: Path, torch_logits: np.ndarray, examples: list[dict], pad_id: int, threads: int) -> dict:
+    sess = session(path, threads)
+    logits = all_logits(lambda b: run_logits(sess, b), examples, pad_id, torch_logits.shape[1])
+    return {"max_abs_logit_diff": float(np.abs(logits - torch_logits).max()),
+            "label_mismatches": int((logits.argmax(1) != torch_logits.argmax(1)).sum()),
+            "texts": len(examples)}
+
+
+def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict, cfg, threads: int, out: Path,
+                   what: str = "student-onnx") -> dict:
+    """Writes out/model.onnx: the fp32 export, fused unless `cfg.optimize` is `never`, proven to give
+    PyTorch's logits on `examples`. Raises StepFailed naming `what` when no graph passes (with `always`:
+    when the fused one does not).
+
+    The choice never depends on the timings, which are recorded for both graphs: on a busy 2-core machine
+    the two are within noise of each other, and a choice by speed made the same recipe ship different
+    artifacts (different int8 graphs, different accuracy) from run to run."""
+    torch_logits = predict_logits(model, examples, pad_id)
+    with tempfile.TemporaryDirectory(dir=out) as tmp:
+        tmp = Path(tmp)
+        plain = export_onnx(model, tmp, cfg.opset)
+        candidates = {"plain": plain}
+        if cfg.optimize != "never":
+            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx")
+        report = {}
+        for name, path in candidates.items():
+            report[name] = parity(path, torch_logits, examples, pad_id, threads)
+            report[name]["p50_ms"] = p50_ms(path, timing_batch, threads)
+            report[name]["passes"] = (report[name]["max_abs_logit_diff"] <= cfg.parity_tolerance
+                                      and report[name]["label_mismatches"] == 0)
+        shippable = ["fused"] if cfg.optimize == "always" else list(candidates)
+        passing = [n for n in shippable if report[n]["passes"]]
+        if not passing:
+            worst = min((report[n] for n in shippable), key=lambda r: r["max_abs_logit_diff"])
+            raise StepFailed(f"{what}: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
+                             f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels"
+                             + (" (export.optimize = always: the fused graph)" if cfg.optimize == "always" else ""))
+        chosen = "fused" if "fused" in passing else "plain"
+        shutil.move(str(candidates[chosen]), out / MODEL_FILE)
+    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
+            "parity": report[chosen]}
+
+
+# ---- int8 ------------------------------------------------------------------------------------------------
+
+
+def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str]) -> None:
+    """Dynamic int8 of `src`: the weights of `op_types` int8 (per tensor or per channel), activations
+    quantised on the fly at run time."""
+    from onnxruntime.quantization import QuantType
+    from onnxruntime.quantization import quantize_dynamic as ort_quantize_dynamic
+
+    logging.getLogger().setLevel(logging.ERROR)  # its advice to pre-process is for static CNN quantisation
+    ort_quantize_dynamic(str(src), str(dst), per_channel=per_channel, weight_type=QuantType.QInt8,
+                         op_types_to_quantize=list(op_types),
+                         # a graph already fused by the transformer optimizer fails type inference without this
+                         extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    onnx.checker.check_model(str(dst), full_check=True)
+
+
+def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: int, per_channel: bool,
+                        op_types: list[str]) -> None:
+    """QDQ int8 of `src`: int8 weights, uint8 activations (the pairing ONNX Runtime's CPU kernels are
+    fastest with), ranges from the min/max seen on `calibration` (one unpadded text per run)."""
+    from onnxruntime.quantization import (CalibrationDataReader, CalibrationMethod, QuantFormat, QuantType,
+                                          quantize_static)
+
+    graph_inputs = {i.name for i in onnx.load(str(src), load_external_data=False).graph.input}
+
+    class Texts(CalibrationDataReader):
+        def __init__(self):
+            self._left = iter(calibration)
+
+        def get_next(self):
+            example = next(self._left, None)
+            if example is None:
+                return None
+            return {k: v for k, v in collate([example], pad_id).items() if k in graph_inputs}
+
+    logging.getLogger().setLevel(logging.ERROR)
+    quantize_static(str(src), str(dst), Texts(), quant_format=QuantFormat.QDQ, per_channel=per_channel,
+                    weight_type=QuantType.QInt8, activation_type=QuantType.QUInt8,
+                    op_types_to_quantize=list(op_types), calibrate_method=CalibrationMethod.MinMax,
+                    extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    onnx.checker.check_model(str(dst), full_check=True)
+
+
+# ---- what a graph holds ----------------------------------------------------------------------------------
+
+
+def int8_summary(path: Path, vocab_size: int | None) -> dict:
+    """What really became int8, read back from the graph (an op type in the recipe that the graph does
+    not have, or that the quantiser skips, changes nothing, silently)."""
+    graph = onnx.load(str(path), load_external_data=False).graph
+    eight = sum(int(np.prod(i.dims)) for i in graph.initializer if i.data_type in _EIGHT_BIT)
+    floats = sum(int(np.prod(i.dims)) * 4 for i in graph.initializer if i.data_type == onnx.TensorProto.FLOAT)
+    table = [i for i in graph.initializer if len(i.dims) == 2 and vocab_size and i.dims[0] == vocab_size]
+    ops = Counter(n.op_type for n in graph.node)
+    return {"embeddings_int8": bool(table) and all(t.data_type in _EIGHT_BIT for t in table),
+            "weight_bytes_int8_share": round(eight / max(1, eight + floats), 4),
+            "int8_nodes": {k: v for k, v in ops.items() if k in _INT8_OPS}}
+
+
+def vocab_size_of(folder: Path) -> int | None:
+    """The vocabulary size in the folder's config.json; None without one."""
+    config = read_json_or_none(folder / CONFIG_FILE)
+    return config.get("vocab_size") if isinstance(config, dict) else None
+
+
+def agreement(fp32_path: Path, int8_path: Path, examples: list[dict], pad_id: int, n_labels: int,
+              threads: int) -> dict:
+    """How often the int8 graph's label is the fp32 graph's on `examples`, and the largest logit gap."""
+    fp32_sess, int8_sess = session(fp32_path, threads), session(int8_path, threads)
+    fp32 = all_logits(lambda b: run_logits(fp32_sess, b), examples, pad_id, n_labels)
+    int8 = all_logits(lambda b: run_logits(int8_sess, b), examples, pad_id, n_labels)
+    return {"agreement_with_fp32": float((fp32.argmax(1) == int8.argmax(1)).mean()),
+            "max_abs_logit_diff_vs_fp32": float(np.abs(fp32 - int8).max())}

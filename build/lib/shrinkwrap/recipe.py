@@ -1,0 +1,413 @@
+"""The recipe: one YAML file that says what to shrink and how.
+
+This is the only module that knows the recipe's keys. Everything else receives the validated
+`Recipe` object (plain data) and reads its fields.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any, Literal, Optional
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from shrinkwrap.errors import UserError
+from shrinkwrap.fingerprint import sha256_json
+
+
+class _Section(BaseModel):
+    # Unknown keys are a typo until proven otherwise.
+    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+
+
+class DataConfig(_Section):
+    path: str = Field(description="CSV, JSONL or Parquet file, or a `datasets` folder saved with save_to_disk")
+    text: str = Field("text", description="column holding the text")
+    text_pair: Optional[str] = Field(None, description="optional second text column: inputs become [CLS] a [SEP] b [SEP]")
+    label: str = Field("label", description="column holding the class label")
+    test_size: float = Field(0.2, gt=0, lt=1, description="share held out for the test split (when the data has no splits)")
+    validation_size: float = Field(0.1, gt=0, lt=1, description="share of the rest held out for validation")
+    seed: int = Field(0, description="seed of the stratified split")
+    drop_empty: bool = Field(False, description="drop rows whose text is empty or whitespace (otherwise they are an error)")
+
+    @model_validator(mode="after")
+    def _shares(self) -> "DataConfig":
+        if self.test_size + self.validation_size >= 1:
+            raise ValueError(f"test_size + validation_size = {self.test_size + self.validation_size:g} — must be below 1")
+        return self
+
+
+class TeacherConfig(_Section):
+    base: str = Field("bundled", description="`bundled` (the packaged MiniLM-L6-H384), a local transformers folder with safetensors weights (relative to the recipe's folder), or a hub id already in the local Hugging Face cache (nothing is downloaded)")
+    epochs: int = Field(3, ge=1, description="fine-tuning epochs")
+    max_length: int = Field(128, ge=8, le=4096, description="tokens per input after truncation")
+    learning_rate: float = Field(5e-5, gt=0, lt=1, description="peak learning rate of AdamW (after warm-up, decays linearly to 0)")
+    batch_size: int = Field(16, ge=1, description="texts per optimizer step")
+    weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay (not on biases and LayerNorm)")
+    warmup_ratio: float = Field(0.1, ge=0, lt=1, description="share of steps with linear warm-up")
+    max_grad_norm: float = Field(1.0, gt=0, description="gradient norm clipping")
+    seeds: list[int] = Field(default_factory=lambda: [0], min_length=1, description="one fine-tuning run per seed; the best on validation is kept")
+    patience: int = Field(2, ge=1, description="epochs without improvement before stopping early")
+    metric: Literal["accuracy", "macro_f1"] = Field("accuracy", description="validation metric for early stopping and seed choice")
+    class_weights: bool = Field(False, description="weight the loss by inverse class frequency")
+    trust_remote_code: bool = Field(False, description="allow code shipped with a hub model to run (off unless you trust it)")
+    stall_steps: int = Field(100, ge=0, description="a run whose loss has not fallen by stall_fraction after this many steps is degenerate (0 = off)")
+    stall_fraction: float = Field(0.1, ge=0, lt=1, description="share of the starting loss it must have lost after stall_steps")
+    collapse_share: float = Field(0.95, gt=0, le=1, description="validation predictions this concentrated on one class = a degenerate run")
+    checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
+
+    @field_validator("seeds")
+    @classmethod
+    def _unique_seeds(cls, v: list[int]) -> list[int]:
+        if len(set(v)) != len(v):
+            raise ValueError(f"seed {next(i for i in v if v.count(i) > 1)} is repeated")
+        return v
+
+
+class StudentConfig(_Section):
+    init: Literal["teacher_layers", "pretrained", "config"] = Field(
+        "teacher_layers", description="teacher_layers: copy of the teacher keeping `layers`; pretrained: the model in "
+        "`base` (its tokenizer must equal the teacher's); config: random weights of a smaller shape (needs far more data)")
+    layers: Optional[list[int]] = Field(None, description="teacher layer indices kept to initialise the student (default: evenly spaced)")
+    num_layers: int = Field(3, ge=1, description="how many layers to keep when `layers` is not given (also the depth with init: config)")
+    base: Optional[str] = Field(None, description="with init: pretrained — a local transformers folder")
+    hidden_size: Optional[int] = Field(None, ge=8, description="with init: config — width (default: the teacher's)")
+    intermediate_size: Optional[int] = Field(None, ge=8, description="with init: config — feed-forward width (default: 4 × hidden_size)")
+    num_attention_heads: Optional[int] = Field(None, ge=1, description="with init: config — heads (default: the teacher's)")
+    hidden_weight: float = Field(0.0, ge=0, description="weight of the hidden-state MSE between mapped layers (0 = off)")
+    attention_weight: float = Field(0.0, ge=0, description="weight of the attention-distribution KL between mapped layers (0 = off)")
+    transfer_path: Optional[str] = Field(None, description="unlabeled in-domain texts the teacher labels softly: .txt (one per line), .csv, .jsonl or .parquet")
+    transfer_column: Optional[str] = Field(None, description="text column of transfer_path when it is a table (default: data.text)")
+    temperature: float = Field(2.0, gt=0, description="softmax temperature of the soft-label term")
+    alpha: float = Field(0.5, ge=0, le=1, description="weight of the soft-label term; 1 - alpha weighs the hard-label loss")
+    epochs: int = Field(3, ge=1, description="distillation epochs")
+    learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
+    batch_size: int = Field(16, ge=1, description="texts per optimizer step")
+    weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay")
+    warmup_ratio: float = Field(0.1, ge=0, lt=1, description="share of steps with linear warm-up")
+    patience: int = Field(2, ge=1, description="epochs without improvement before stopping early")
+    seed: int = Field(0, description="seed of the data order (and of the weights with init: config)")
+    checkpoint_every_steps: int = Field(50, ge=0, description="save a resumable checkpoint every this many optimizer steps and at each epoch end (0 = never)")
+
+    @model_validator(mode="after")
+    def _init_keys(self) -> "StudentConfig":
+        if self.init == "pretrained" and not self.base:
+            raise ValueError("init is pretrained — set student.base to the pre-trained student's folder")
+        if self.init != "pretrained" and self.base:
+            raise ValueError(f"base is set but init is {self.init} — base goes with init: pretrained")
+        if self.init != "teacher_layers" and self.layers is not None:
+            raise ValueError(f"layers is set but init is {self.init} — layers goes with init: teacher_layers")
+        if self.init != "config" and (self.hidden_size or self.intermediate_size or self.num_attention_heads):
+            raise ValueError(f"hidden_size / intermediate_size / num_attention_heads go with init: config, not {self.init}")
+        if self.hidden_size and self.num_attention_heads and self.hidden_size % self.num_attention_heads:
+            raise ValueError(f"hidden_size {self.hidden_size} is not a multiple of num_attention_heads {self.num_attention_heads}")
+        return self
+
+    @field_validator("layers")
+    @classmethod
+    def _layers(cls, v: Optional[list[int]]) -> Optional[list[int]]:
+        if v is None:
+            return v
+        if not v:
+            raise ValueError("keep at least one layer")
+        if any(i < 0 for i in v):
+            raise ValueError("layer indices start at 0")
+        if len(set(v)) != len(v):
+            raise ValueError(f"layer {next(i for i in v if v.count(i) > 1)} is repeated")
+        if sorted(v) != v:
+            raise ValueError("list the layers in increasing order")
+        return v
+
+
+class PruneConfig(_Section):
+    """Step student-pruned (off by default): structured pruning of the student, then a short distillation."""
+    enabled: bool = Field(False, description="run step student-pruned: remove the least important attention heads and "
+                          "feed-forward neurons of every student layer, then distil briefly to recover")
+    heads_removed: int = Field(0, ge=0, description="attention heads removed from every layer, least important first "
+                               "(importance: mean size of the loss's gradient with respect to a head mask, Michel, Levy & Neubig 2019)")
+    neurons_removed_share: float = Field(0.0, ge=0, lt=1, description="share of the feed-forward neurons removed from "
+                                         "every layer, least important first (importance: gradient × activation)")
+    importance_texts: int = Field(512, ge=1, description="training texts the importance is measured on (the first ones)")
+    epochs: int = Field(2, ge=0, description="distillation epochs after pruning, on the teacher's cached outputs (0 = none)")
+    learning_rate: float = Field(5e-5, gt=0, lt=1, description="learning rate of that distillation (the rest as in student)")
+
+    @model_validator(mode="after")
+    def _something_to_remove(self) -> "PruneConfig":
+        if self.enabled and self.heads_removed == 0 and self.neurons_removed_share == 0:
+            raise ValueError("enabled is true but nothing is removed — set heads_removed or neurons_removed_share")
+        return self
+
+
+class TrimVocabConfig(_Section):
+    """Step student-trimmed (off by default): the vocabulary cut to the pieces the training texts use."""
+    enabled: bool = Field(False, description="run step student-trimmed: keep only the vocabulary pieces (and special "
+                          "tokens) that the training and transfer texts are split into, with their embedding rows; "
+                          "the tokenizer becomes a smaller one that splits those texts exactly as before")
+
+
+class TrainConfig(_Section):
+    precision: Literal["fp32", "bf16", "fp16"] = Field(
+        "fp32", description="training precision on a GPU (bf16/fp16 mixed precision); a CPU always trains in fp32, with a notice")
+    gradient_accumulation_steps: int = Field(
+        1, ge=1, description="batches whose gradients add up before one optimizer step (effective batch = batch_size × this × processes)")
+
+
+class QuantizeConfig(_Section):
+    enabled: bool = Field(True, description="run PyTorch dynamic int8 on the student")
+
+
+class ExportConfig(_Section):
+    opset: int = Field(18, ge=14, le=21, description="ONNX opset")
+    optimize: Literal["auto", "always", "never"] = Field(
+        "auto", description="ONNX Runtime transformer fusion: `auto` ships the fused graph when it passes the parity check, "
+                            "else the plain export; `always` fails the step instead; `never` ships the plain export")
+    parity_tolerance: float = Field(1e-4, gt=0, description="largest allowed absolute logit difference between ONNX fp32 and PyTorch")
+
+
+# Operator types ONNX Runtime's static (QDQ) quantiser handles among those int8_operators allows: it has no
+# form of the fused Attention and EmbedLayerNormalization.
+STATIC_OP_TYPES = ("MatMul", "Gather", "Gemm")
+
+
+class OnnxQuantizeConfig(_Section):
+    per_channel: bool = Field(False, description="per-channel weight scales instead of one per tensor")
+    int8_operators: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
+        default_factory=lambda: ["MatMul", "Attention", "Gather", "EmbedLayerNormalization"],
+        min_length=1, description="operator types quantised. The embedding lookup (about half of a small model's "
+                                  "bytes) is Gather in an unfused graph and EmbedLayerNormalization in a fused one; "
+                                  "Attention holds a fused graph's query/key/value weights")
+    static: bool = Field(False, description="also run step student-onnx-int8-static: weights and activations int8 "
+                                            "(QDQ), activation ranges calibrated on training texts")
+    static_calibration_texts: int = Field(100, ge=1, description="training texts the static step calibrates on")
+
+    @model_validator(mode="after")
+    def _static_ops(self) -> "OnnxQuantizeConfig":
+        if self.static and not set(self.int8_operators) & set(STATIC_OP_TYPES):
+            raise ValueError(f"int8_operators = {json.dumps(self.int8_operators)} with static: true — the static step "
+                             f"quantises only {', '.join(STATIC_OP_TYPES)}; list at least one of them")
+        return self
+
+
+class BenchConfig(_Section):
+    batch_size: int = Field(1, ge=1, description="texts per timed call")
+    sequence_length: int = Field(128, ge=1, description="tokens per text in the timed calls (real texts padded or cut to it)")
+    threads: int = Field(2, ge=1, description="intra-op threads of PyTorch and ONNX Runtime while timing")
+    warmup: int = Field(5, ge=0, description="untimed runs before timing")
+    warm_seconds: float = Field(0.2, ge=0, description="keep warming up until this many seconds have passed, too")
+    repeats: int = Field(30, ge=3, description="timed runs, at least")
+    timed_seconds: float = Field(1.0, ge=0, description="keep timing until this many seconds have passed")
+    eval_batch_size: int = Field(32, ge=1, description="batch size of the accuracy pass over the test split")
+
+
+class RegressionTolerance(_Section):
+    p95_percent: Optional[float] = Field(None, ge=0, description="largest rise of p95 latency over the baseline's same step, percent")
+    accuracy_points: Optional[float] = Field(None, ge=0, description="largest fall of accuracy below the baseline's same step, points")
+    size_percent: Optional[float] = Field(None, ge=0, description="largest growth of size over the baseline's same step, percent")
+
+
+class BudgetConfig(_Section):
+    """Release limits on the gated step (the final one unless `shrinkwrap gate --step` names another)."""
+    latency_p95_ms: Optional[float] = Field(None, gt=0, description="largest p95 latency of the gated step, ms")
+    latency_p95_over_reference: Optional[float] = Field(
+        None, gt=0, description="largest p95 latency as a multiple of the reference matrix-product workload timed in "
+        "the same run (steadier across machines than ms)")
+    batch_size: Optional[int] = Field(None, ge=1, description="batch size the latency limits are meant at: the step "
+                                      "must have been measured at it")
+    sequence_length: Optional[int] = Field(None, ge=1, description="tokens per input the latency limits are meant at")
+    size_mb: Optional[float] = Field(None, gt=0, description="largest size of the gated step, MB (10^6 bytes)")
+    accuracy_drop_points: Optional[float] = Field(None, ge=0, description="largest accuracy drop vs the teacher, points")
+    accuracy_drop_upper_bound: bool = Field(
+        False, description="limit the upper end of the drop's 95 % bootstrap interval instead of the measured drop (stricter)")
+    min_accuracy: Optional[float] = Field(None, ge=0, le=1, description="smallest accuracy of the gated step, as a fraction")
+    max_class_recall_drop_points: Optional[float] = Field(
+        None, ge=0, le=100, description="largest recall loss of any one class vs the teacher, points (the gate names the class)")
+    min_agreement: Optional[float] = Field(
+        None, ge=0, le=1, description="smallest share of test texts given the teacher's label, as a fraction")
+    max_ece: Optional[float] = Field(
+        None, ge=0, le=1, description="largest expected calibration error (15 bins) of the shipped artifact on the test "
+        "split, with its temperature")
+    regression: RegressionTolerance = Field(
+        default_factory=RegressionTolerance, description="limits against a baseline results.json (shrinkwrap gate --baseline)")
+
+    @model_validator(mode="after")
+    def _latency_shape(self) -> "BudgetConfig":
+        has_latency = self.latency_p95_ms or self.latency_p95_over_reference or self.regression.p95_percent is not None
+        if (self.batch_size or self.sequence_length) and not has_latency:
+            raise ValueError("batch_size / sequence_length say where latency is measured — set a latency limit too")
+        if self.accuracy_drop_upper_bound and self.accuracy_drop_points is None:
+            raise ValueError("accuracy_drop_upper_bound is set — set accuracy_drop_points too")
+        return self
+
+    def limits_set(self) -> bool:
+        """Whether a limit is set that needs no baseline (what `shrinkwrap run` can check at its end)."""
+        return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
+                                           self.accuracy_drop_points, self.min_accuracy,
+                                           self.max_class_recall_drop_points, self.min_agreement, self.max_ece))
+
+
+class Recipe(_Section):
+    name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$",
+                      description="the run's name: letters, digits, . _ - (default run folder: runs/<name>)")
+    data: DataConfig
+    teacher: TeacherConfig = Field(default_factory=TeacherConfig)
+    student: StudentConfig = Field(default_factory=StudentConfig)
+    train: TrainConfig = Field(default_factory=TrainConfig)
+    prune: PruneConfig = Field(default_factory=PruneConfig)
+    trim_vocab: TrimVocabConfig = Field(default_factory=TrimVocabConfig)
+    quantize: QuantizeConfig = Field(default_factory=QuantizeConfig)
+    export: ExportConfig = Field(default_factory=ExportConfig)
+    onnx_quantize: OnnxQuantizeConfig = Field(default_factory=OnnxQuantizeConfig)
+    bench: BenchConfig = Field(default_factory=BenchConfig)
+    budget: BudgetConfig = Field(default_factory=BudgetConfig)
+
+    # Where the recipe file lives: relative paths in it resolve against this folder.
+    source: Optional[str] = Field(None, exclude=True)
+
+    @model_validator(mode="after")
+    def _budget_shape(self) -> "Recipe":
+        # Caught before the run rather than by the gate after an hour of training.
+        for key in ("batch_size", "sequence_length"):
+            want, have = getattr(self.budget, key), getattr(self.bench, key)
+            if want is not None and want != have:
+                raise ValueError(f"budget.{key} = {want} but bench.{key} = {have} — the latency limits are meant at "
+                                 f"the shape the benchmark measures; make them equal")
+        return self
+
+    def resolve(self, path: str) -> Path:
+        p = Path(path).expanduser()
+        if not p.is_absolute() and self.source:
+            p = Path(self.source).parent / p
+        return p
+
+    def fingerprint(self) -> str:
+        return sha256_json(self.model_dump(mode="json"))
+
+
+def _place(loc: tuple) -> str:
+    out = ""
+    for part in loc:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
+    return out
+
+
+def _dig(data: Any, loc: tuple) -> Any:
+    for part in loc:
+        try:
+            data = data[part]
+        except (KeyError, IndexError, TypeError):
+            return None
+    return data
+
+
+# Keys renamed since they first shipped: a recipe with the old name gets the new one in its error.
+RENAMED_KEYS = {"bench.warmup_s": "bench.warm_seconds", "bench.min_time_s": "bench.timed_seconds",
+                "onnx_quantize.op_types": "onnx_quantize.int8_operators"}
+
+
+def _loc(err: dict) -> tuple:
+    return tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
+
+
+def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
+    loc = _loc(err)
+    place = _place(loc) or "(top level)"
+    kind = err["type"]
+    msg = err["msg"].removeprefix("Value error, ")
+    if kind == "extra_forbidden":
+        parent = _place(loc[:-1])
+        renamed = RENAMED_KEYS.get(place)
+        if renamed:
+            return f"{where}: {place} is now {renamed} — rename the key"
+        model: Any = root or Recipe
+        for part in loc[:-1]:
+            model = model.model_fields[part].annotation if isinstance(part, str) else model
+        allowed = (", ".join(k for k, f in model.model_fields.items() if not f.exclude)
+                   if hasattr(model, "model_fields") else "")
+        return f"{where}: unknown key {place!s}" + (f" — allowed keys in {parent or 'the top level'}: {allowed}" if allowed else "")
+    if kind == "missing":
+        return f"{where}: {place} is missing — it is required"
+    value = _dig(raw, loc)
+    if not loc or isinstance(value, dict):  # a rule across several keys: its message names them
+        return f"{where}: {place + ' — ' if loc else ''}{msg}"
+    return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'} — {msg}"
+
+
+def parse_override(text: str) -> tuple[list[str], Any]:
+    if "=" not in text:
+        raise UserError(f"--set {text} — expected key.path=value")
+    key, value = text.split("=", 1)
+    if not key or any(not p for p in key.split(".")):
+        raise UserError(f"--set {text} — expected key.path=value")
+    try:
+        return key.split("."), yaml.safe_load(value) if value != "" else ""
+    except yaml.YAMLError as e:
+        raise UserError(f"--set {text} — the value is not valid YAML ({getattr(e, 'problem', None) or e})") from None
+
+
+def apply_overrides(raw: dict, overrides: list[str]) -> dict:
+    for text in overrides:
+        path, value = parse_override(text)
+        node = raw
+        for part in path[:-1]:
+            if not isinstance(node.get(part, {}), dict):
+                raise UserError(f"--set {text} — {part} is not a section")
+            node = node.setdefault(part, {})
+        node[path[-1]] = value
+    return raw
+
+
+def _read_yaml_mapping(path: Path, kind: str) -> dict:
+    where = str(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise UserError(f"{where}: no such {kind} file")
+    except UnicodeDecodeError as e:
+        line = path.read_bytes()[:e.start].count(b"\n") + 1
+        raise UserError(f"{where}: not UTF-8 text — line {line} (byte {e.start})") from None
+    except OSError as e:
+        raise UserError(f"{where}: cannot read — {e.strerror}")
+    try:
+        raw = yaml.safe_load(text)  # safe_load: a file we read can never construct Python objects
+    except yaml.YAMLError as e:
+        mark = getattr(e, "problem_mark", None)
+        line = f" line {mark.line + 1}" if mark else ""
+        problem = getattr(e, "problem", None) or str(e).splitlines()[0]
+        raise UserError(f"{where}:{line} is not valid YAML — {problem}") from None
+    if not isinstance(raw, dict):
+        raise UserError(f"{where}: expected a mapping of keys at the top level")
+    return raw
+
+
+def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
+    path = Path(path)
+    raw = apply_overrides(_read_yaml_mapping(path, "recipe"), list(overrides))
+    overridden = {".".join(parse_override(text)[0]): text for text in overrides}
+    return validate_recipe(raw, str(path), source=str(path.resolve()), overridden=overridden)
+
+
+def load_budget(path: str | Path) -> BudgetConfig:
+    """A budget file: YAML whose keys are those of a recipe's `budget:` section."""
+    path = Path(path)
+    return validate_budget(_read_yaml_mapping(path, "budget"), str(path))
+
+
+def validate_budget(raw: dict, where: str) -> BudgetConfig:
+    try:
+        return BudgetConfig.model_validate(raw)
+    except ValidationError as e:
+        raise UserError(_explain(e.errors()[0], raw, where, BudgetConfig)) from None
+
+
+def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None,
+                    overridden: Optional[dict[str, str]] = None) -> Recipe:
+    try:
+        recipe = Recipe.model_validate(raw)
+    except ValidationError as e:
+        # One line, the first problem: fixing one usually changes the rest.
+        err = e.errors()[0]
+        text = (overridden or {}).get(_place(_loc(err)))
+        raise UserError(_explain(err, raw, f"{where} (--set {text})" if text else where)) from None
+    recipe.source = source
+    return recipe

@@ -1,0 +1,33 @@
+"""Student: a smaller model trained on the teacher's softened outputs (Hinton, Vinyals & Dean 2015).
+
+How the student starts, the teacher-outputs cache and the distillation terms are shrinkwrap.distillation's.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+from shrinkwrap.distillation import build_student, fit_to_teacher, soft_targets, student_settings
+from shrinkwrap.models import load_classifier, save_classifier
+
+
+def run(ctx, src: Path, out: Path) -> dict:
+    cfg = ctx.recipe.student
+    teacher = load_classifier(str(src))
+    student, layer_map = build_student(ctx, teacher)
+    examples, labels, targets, cache_info = soft_targets(ctx, teacher, layer_map, cfg.hidden_weight > 0,
+                                                         cfg.attention_weight > 0)
+    del teacher
+
+    s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
+    result = fit_to_teacher(ctx, student, examples, labels, targets, layer_map, s, cfg.hidden_weight,
+                            cfg.attention_weight, out, "student", cfg.checkpoint_every_steps)
+
+    save_classifier(student, ctx.tokenizer, out)
+    epochs_run = result.curve[-1]["epoch"] if result.curve else 0
+    # Without the cache, every epoch would run the teacher over the same texts again.
+    per_pass = cache_info.get("seconds_when_computed", cache_info["seconds"])
+    saved = per_pass * (epochs_run - 1 if cache_info["cache"] == "miss" else epochs_run)
+    return {"init": cfg.init, "layer_map": layer_map, "curve": result.curve, "best_epoch": result.best_epoch,
+            "seconds": round(result.seconds, 2), "transfer_texts": len(ctx.transfer or ()),
+            "teacher_outputs": cache_info | {"seconds_saved_by_cache": round(max(0.0, saved), 2)},
+            "status": result.status, "reason": result.reason}

@@ -1,0 +1,74 @@
+"""Teacher: fine-tune a pre-trained encoder with a fresh classification head, one run per seed.
+
+Never from scratch: the encoder always comes from `teacher.base`. Runs that degenerate are stopped
+early and the next seed is tried; the best run on validation is kept.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import torch
+from torch.nn import functional as F
+
+from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
+from shrinkwrap.errors import StepFailed
+from shrinkwrap.models import load_classifier, save_classifier
+from shrinkwrap.train import FitResult, fit, seed_everything, settings_from
+
+
+def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
+    """Inverse-frequency weights normalised to mean 1 (the `balanced` rule of scikit-learn)."""
+    from sklearn.utils.class_weight import compute_class_weight
+
+    return torch.tensor(compute_class_weight("balanced", classes=np.arange(n_classes), y=labels), dtype=torch.float32)
+
+
+def run(ctx, src: None, out: Path) -> dict:
+    cfg = ctx.recipe.teacher
+    n_classes = len(ctx.data.label_names)
+    weight = class_weights(ctx.data.train.labels, n_classes) if cfg.class_weights else None
+
+    def loss_fn(model, batch, labels, _idx):
+        return F.cross_entropy(model(**batch).logits, labels, weight=weight)
+
+    # The seeds a killed run finished, with the best one's weights, so that a resumed run skips them.
+    folder, fp, every = out / CHECKPOINT_DIR, ctx.fingerprints["teacher"], cfg.checkpoint_every_steps
+    sweep = Checkpoint(folder, fp, every, name="sweep", log=ctx.log)
+    done = sweep.load() or {"runs": [], "best_seed": None, "best_model": None}
+    runs, best, best_model = done["runs"], None, None
+    if done["best_seed"] is not None:
+        best = next(r for r in runs if r["seed"] == done["best_seed"])
+        best_model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
+        best_model.load_state_dict(done["best_model"])
+    if any(all(r["seed"] != seed for r in runs) for seed in cfg.seeds):
+        ctx.log("teacher: a fresh classification head on the base (the library's 'newly initialized' "
+                "notice for it is expected, so it is not shown)")
+    for seed in cfg.seeds:
+        if any(r["seed"] == seed for r in runs):
+            continue
+        seed_everything(seed)  # the new head's initialisation depends on the seed
+        model = load_classifier(ctx.base, label_names=ctx.data.label_names, trust_remote_code=cfg.trust_remote_code)
+        checkpoint = Checkpoint(folder, f"{fp} seed {seed}", every, log=ctx.log)
+        result: FitResult = fit(model, ctx.encoded["train"], ctx.data.train.labels, ctx.encoded["validation"],
+                                ctx.data.validation.labels, loss_fn, settings_from(cfg, ctx.recipe.train, seed=seed),
+                                ctx.pad_id, desc=f"teacher seed {seed}", checkpoint=checkpoint)
+        entry = {"seed": seed, "status": result.status, "reason": result.reason, "curve": result.curve,
+                 "best_epoch": result.best_epoch, "best_metric": result.best_metric if result.best_epoch else None,
+                 "seconds": round(result.seconds, 2), "steps": result.steps}
+        runs.append(entry)
+        ctx.log(f"teacher seed {seed}: {result.status}"
+                + (f" — {result.reason}" if result.reason else f", validation {cfg.metric} {result.best_metric:.4f}"))
+        if result.status == "ok" and (best is None or result.best_metric > best["best_metric"]):
+            best, best_model = entry, model
+        sweep.save({"runs": runs, "best_seed": best["seed"] if best else None,
+                    "best_model": best_model.state_dict() if best_model is not None else None})
+        checkpoint.clear()  # after the sweep records the seed: a kill in between re-runs nothing
+    if best is None:
+        reasons = "; ".join(f"seed {r['seed']}: {r['reason']}" for r in runs)
+        raise StepFailed(f"teacher: every seed degenerated — {reasons}. Try other seeds, a lower "
+                         f"teacher.learning_rate or more teacher.epochs")
+    for r in runs:
+        r["outcome"] = "kept" if r is best else ("degenerate" if r["status"] == "degenerate" else "worse")
+    save_classifier(best_model, ctx.tokenizer, out)
+    return {"seeds": runs, "kept_seed": best["seed"], "validation": {cfg.metric: best["best_metric"]}}

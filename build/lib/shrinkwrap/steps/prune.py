@@ -1,0 +1,58 @@
+"""Student pruned: the student without its least important attention heads and feed-forward neurons,
+then distilled briefly on the teacher's cached outputs to recover.
+
+Importance is measured on training texts (shrinkwrap.pruning: Michel et al. 2019 for heads, gradient
+× activation for neurons); every layer loses the same number of each. The removal is physical —
+smaller query/key/value/output matrices and a narrower feed-forward block — so the later steps
+(int8, ONNX) work on less.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+from shrinkwrap.distillation import fit_to_teacher, soft_targets, student_settings
+from shrinkwrap.models import encoder_layers, load_classifier, save_classifier
+from shrinkwrap.pruning import importance, least_important, neurons_to_remove, remove_heads, remove_neurons
+
+
+def _shape(model) -> dict:
+    owner, name = encoder_layers(model)
+    layer = getattr(owner, name)[0]
+    return {"heads_per_layer": layer.attention.self.num_attention_heads,
+            "intermediate_size": layer.intermediate.dense.out_features,
+            "parameters": sum(p.numel() for p in model.parameters())}
+
+
+def run(ctx, src: Path, out: Path) -> dict:
+    cfg, st = ctx.recipe.prune, ctx.recipe.student
+    tokens = ctx.tokens_of(src)
+    model = load_classifier(str(src))
+    n = min(cfg.importance_texts, len(ctx.data.train))
+    head_scores, neuron_scores = importance(model, tokens.encoded["train"][:n], ctx.data.train.labels[:n],
+                                            tokens.pad_id, st.batch_size)
+    before = _shape(model)
+    heads = least_important(head_scores, cfg.heads_removed)
+    neurons = least_important(neuron_scores, neurons_to_remove(before["intermediate_size"], cfg.neurons_removed_share))
+    remove_heads(model, heads)
+    remove_neurons(model, neurons)
+    info = {"importance": {"heads": "E|dL/d head mask| (Michel, Levy & Neubig 2019)",
+                           "neurons": "E|sum over tokens of activation x gradient| (first-order Taylor, "
+                                      "Molchanov et al. 2017)",
+                           "loss": "cross-entropy", "texts": n},
+            "heads_removed": {str(k): v for k, v in heads.items()},
+            "head_importance": [[round(float(x), 6) for x in row] for row in head_scores],
+            "neurons_removed_per_layer": len(next(iter(neurons.values()), [])),
+            "before": before, "after": _shape(model)}
+
+    if cfg.epochs:
+        teacher = load_classifier(str(ctx.outputs["teacher"]))
+        examples, labels, targets, cache_info = soft_targets(ctx, teacher, [], False, False)
+        del teacher
+        s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
+        result = fit_to_teacher(ctx, model, examples, labels, targets, [], s, 0.0, 0.0, out, "student-pruned",
+                                st.checkpoint_every_steps)
+        info["recovery"] = {"epochs": cfg.epochs, "curve": result.curve, "best_epoch": result.best_epoch,
+                            "seconds": round(result.seconds, 2), "teacher_outputs": cache_info,
+                            "status": result.status, "reason": result.reason}
+    save_classifier(model, tokens.tokenizer, out)
+    return info
