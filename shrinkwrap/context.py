@@ -37,6 +37,7 @@ class Context:
     quiet: bool = False
     teacher_hidden_size: int = 0
     transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
+    teacher_weights: Optional[str] = None        # with teacher.trained: the fingerprint of the weights used as is
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[str, Tokens] = field(default_factory=dict)
 

@@ -9,7 +9,7 @@ from shrinkwrap import distributed
 from shrinkwrap.context import Context
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import tokenizer_fingerprint_of
-from shrinkwrap.recipe import Recipe
+from shrinkwrap.recipe import TRAINING_ONLY_TEACHER_KEYS, Recipe
 from shrinkwrap.rundir import check_out_dir
 
 
@@ -17,7 +17,7 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     """Loads and checks everything the chain needs. Writes nothing."""
     from transformers import AutoConfig
 
-    from shrinkwrap.data import load_dataset
+    from shrinkwrap.data import in_label_order, load_dataset
     from shrinkwrap.batches import encode
     from shrinkwrap.models import load_tokenizer, resolve_base
 
@@ -31,6 +31,14 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     except (OSError, ValueError) as e:
         raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
                         f"({str(e).splitlines()[0]})") from None
+    if recipe.teacher.trained:
+        from shrinkwrap import trained
+
+        trained.check_head(Path(base), config, where)
+        ignored = trained.unused_keys(recipe.teacher, TRAINING_ONLY_TEACHER_KEYS)
+        if ignored and not quiet:
+            warnings.warn(f"{where}: teacher.trained is true — the teacher is used as is, so "
+                          f"{', '.join('teacher.' + k for k in ignored)} no longer apply")
     n_layers = getattr(config, "num_hidden_layers", None) or getattr(config, "n_layers", None)
     layers = recipe.student.layers
     if layers is not None and n_layers is not None and max(layers) >= n_layers:
@@ -54,6 +62,10 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     if not data_path.exists():
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
     data = load_dataset(recipe.data, data_path, str(data_path))
+    weights = None
+    if recipe.teacher.trained:  # the model's own class order: its logit k is the data's class k
+        data = in_label_order(data, trained.match_labels(trained.model_labels(config), data.label_names, where))
+        weights = trained.weights_fingerprint(Path(base))
     encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
     transfer = None
     st = recipe.student
@@ -76,4 +88,4 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
-                   teacher_hidden_size=config.hidden_size, transfer=transfer)
+                   teacher_hidden_size=config.hidden_size, transfer=transfer, teacher_weights=weights)
