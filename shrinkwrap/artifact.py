@@ -120,13 +120,19 @@ class Artifact:
     def max_length(self) -> int:
         return int(self.manifest["tokenizer"]["max_length"])
 
-    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
-        """Logits of every text, in order, in the chain's own length-sorted batches (batches.all_logits),
-        so that padding costs little and the logits are those the chain recorded."""
+    @property
+    def reads_pairs(self) -> bool:
+        return bool(self.manifest["tokenizer"].get("text_pair"))
+
+    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
+               pairs: Optional[list[str]] = None) -> np.ndarray:
+        """Logits of every text (or pair: texts[i] with pairs[i]), in order, in the chain's own length-sorted
+        batches (batches.all_logits), so that padding costs little and the logits are those the chain recorded."""
         from shrinkwrap.onnx_tools import run_logits
 
+        inputs = list(texts) if pairs is None else list(zip(texts, pairs))
         examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
-                    for e in self.tokenizer.encode_batch(list(texts))]
+                    for e in self.tokenizer.encode_batch(inputs)]
         pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
         return all_logits(lambda batch: run_logits(self.session, batch),
                           examples, pad_id, len(self.labels), batch_size)
@@ -136,14 +142,15 @@ class Artifact:
         return temperature_of(self.manifest)
 
     def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
-                min_confidence: float = 0.0) -> list[dict]:
-        """{"text", "label", "scores": {label: probability}} for each text, in order. Scores are the softmax of
-        the logits divided by the artifact's temperature; a text whose top score is below `min_confidence`
-        gets label None (abstains), its scores still given."""
-        probs = softmax(self.logits(texts, batch_size), self.temperature)
-        return [{"text": t, "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
+                min_confidence: float = 0.0, pairs: Optional[list[str]] = None) -> list[dict]:
+        """{"text", "label", "scores": {label: probability}} for each text (with "text_pair" for a pair), in
+        order. Scores are the softmax of the logits divided by the artifact's temperature; a text whose top
+        score is below `min_confidence` gets label None (abstains), its scores still given."""
+        probs = softmax(self.logits(texts, batch_size, pairs), self.temperature)
+        return [{"text": t, **({"text_pair": pairs[i]} if pairs is not None else {}),
+                 "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
                  "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)}}
-                for t, p in zip(texts, probs)]
+                for i, (t, p) in enumerate(zip(texts, probs))]
 
 
 def read_labels(folder: Path) -> list[str]:

@@ -113,6 +113,59 @@ def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict,
 # ---- int8 ------------------------------------------------------------------------------------------------
 
 
+def _outer_names(graph) -> set[str]:
+    """Names a subgraph reads from the graphs around it: used by its nodes (or theirs), defined nowhere in it."""
+    defined = {i.name for i in graph.input} | {i.name for i in graph.initializer}
+    used: set[str] = set()
+    for node in graph.node:
+        defined.update(node.output)
+        used |= _node_reads(node)
+    return used - defined
+
+
+def _node_reads(node) -> set[str]:
+    reads = {x for x in node.input if x}
+    for attr in node.attribute:
+        for sub in ([attr.g] if attr.type == onnx.AttributeProto.GRAPH else []) + list(attr.graphs):
+            reads |= _outer_names(sub)
+    return reads
+
+
+def sort_topologically(path: Path) -> None:
+    """Reorders the graph's nodes so that every node comes after what it reads, the outer values its
+    subgraphs (If branches) read included, keeping the original order wherever it already holds (Kahn's
+    algorithm, earliest node first). ONNX Runtime's quantiser can leave a value a DeBERTa If branch reads
+    defined after the If, which onnx.checker refuses ("nodes must be topologically sorted")."""
+    import heapq
+
+    model = onnx.load(str(path))
+    nodes = list(model.graph.node)
+    producer = {o: k for k, n in enumerate(nodes) for o in n.output if o}
+    deps = [{producer[x] for x in _node_reads(n) if x in producer and producer[x] != k} for k, n in enumerate(nodes)]
+    waiting = [len(d) for d in deps]
+    users: dict[int, list[int]] = {}
+    for k, d in enumerate(deps):
+        for j in d:
+            users.setdefault(j, []).append(k)
+    ready = [k for k, w in enumerate(waiting) if w == 0]
+    heapq.heapify(ready)
+    order = []
+    while ready:
+        k = heapq.heappop(ready)
+        order.append(k)
+        for u in users.get(k, []):
+            waiting[u] -= 1
+            if waiting[u] == 0:
+                heapq.heappush(ready, u)
+    if len(order) != len(nodes):
+        raise RuntimeError(f"{path}: the graph has a cycle; it cannot be sorted")
+    if order == list(range(len(nodes))):
+        return
+    del model.graph.node[:]
+    model.graph.node.extend(nodes[k] for k in order)
+    onnx.save(model, str(path))
+
+
 def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str]) -> None:
     """Dynamic int8 of `src`: the weights of `op_types` int8 (per tensor or per channel), activations
     quantised on the fly at run time."""
@@ -124,6 +177,7 @@ def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str
                          op_types_to_quantize=list(op_types),
                          # a graph already fused by the transformer optimizer fails type inference without this
                          extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    sort_topologically(dst)
     onnx.checker.check_model(str(dst), full_check=True)
 
 
@@ -151,6 +205,7 @@ def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: i
                     weight_type=QuantType.QInt8, activation_type=QuantType.QUInt8,
                     op_types_to_quantize=list(op_types), calibrate_method=CalibrationMethod.MinMax,
                     extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    sort_topologically(dst)
     onnx.checker.check_model(str(dst), full_check=True)
 
 
