@@ -105,9 +105,33 @@ def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict,
                              f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels"
                              + (" (export.optimize = always: the fused graph)" if cfg.optimize == "always" else ""))
         chosen = "fused" if "fused" in passing else "plain"
+        fusion = fusion_summary(candidates["fused"], model.config) if "fused" in candidates else None
         shutil.move(str(candidates[chosen]), out / MODEL_FILE)
-    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
+    info = {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
             "parity": report[chosen]}
+    if fusion is not None:
+        info["fusion"] = fusion
+    if chosen == "plain":
+        info["why_plain"] = ("export.optimize = never" if cfg.optimize == "never" else
+                             f"the fused graph's logits differ from PyTorch by {report['fused']['max_abs_logit_diff']:.2e} "
+                             f"(allowed {cfg.parity_tolerance:g}) with {report['fused']['label_mismatches']} different labels")
+    return info
+
+
+_FUSED_OPS = ("Attention", "MultiHeadAttention", "EmbedLayerNormalization", "SkipLayerNormalization",
+              "LayerNormalization", "BiasGelu", "FastGelu", "Gelu")
+
+
+def fusion_summary(path: Path, config) -> dict:
+    """What ONNX Runtime's transformer optimizer fused, read back from the graph; a note when it fused no
+    attention (families whose attention is not BERT's: DeBERTa's disentangled, MPNet's relative bias)."""
+    ops = Counter(n.op_type for n in onnx.load(str(path), load_external_data=False).graph.node)
+    summary = {"fused_ops": {k: ops[k] for k in _FUSED_OPS if ops[k]},
+               "attention_fused": bool(ops["Attention"] or ops["MultiHeadAttention"])}
+    if not summary["attention_fused"]:
+        summary["note"] = (f"ONNX Runtime's optimizer has no attention fusion for {config.model_type!r}: only "
+                           f"layer norms and activations are fused")
+    return summary
 
 
 # ---- int8 ------------------------------------------------------------------------------------------------

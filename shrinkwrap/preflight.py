@@ -50,6 +50,8 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     max_pos = getattr(config, "max_position_embeddings", None)
     if max_pos and recipe.teacher.max_length > max_pos:
         raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
+    if recipe.student.init == "teacher_layers":
+        check_layers(config, where)
     from shrinkwrap.pruning import check_prune
 
     check_prune(recipe, config, where)
@@ -57,7 +59,7 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     if recipe.trim_vocab.enabled:
         from shrinkwrap.vocab import check_trim
 
-        check_trim(tokenizer, where)
+        check_trim(tokenizer, where, getattr(config, "model_type", None))
     data_path = recipe.resolve(recipe.data.path)
     if not data_path.exists():
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
@@ -89,3 +91,28 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
                    teacher_hidden_size=config.hidden_size, transfer=transfer, teacher_weights=weights)
+
+
+def check_layers(config, where: str) -> None:
+    """Refuses, before anything runs, student.init: teacher_layers for a family whose layers cannot be
+    kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT)."""
+    import torch
+    from transformers import AutoModelForSequenceClassification
+
+    from shrinkwrap.models import encoder_layers
+
+    family = getattr(config, "model_type", "?")
+    if getattr(config, "num_hidden_groups", None) is not None:  # ALBERT: every layer runs the same weights
+        raise UserError(f"{where}: student.init = teacher_layers — a {family!r} model shares one layer's weights "
+                        f"across its depth, so step student cannot keep some of its layers; use init: pretrained or config")
+    try:
+        with torch.device("meta"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model = AutoModelForSequenceClassification.from_config(config)
+    except (ValueError, KeyError):
+        return  # not a classifier family transformers knows: loading the teacher reports it
+    try:
+        encoder_layers(model)
+    except UserError:
+        raise UserError(f"{where}: student.init = teacher_layers — step student finds no list of layers in a "
+                        f"{family!r} model to keep some of; use init: pretrained or config") from None

@@ -16,12 +16,13 @@ from torch import nn
 from shrinkwrap.errors import StepFailed, UserError
 
 
-def check_trim(tokenizer, where: str) -> None:
+def check_trim(tokenizer, where: str, family: str | None = None) -> None:
     """Refuses, before anything runs, trimming a tokenizer that is not WordPiece (the only kind it renumbers)."""
     kind = json.loads(tokenizer.backend_tokenizer.to_str())["model"].get("type")
     if kind != "WordPiece":
-        raise UserError(f"{where}: trim_vocab.enabled — the teacher's tokenizer is {kind}; trimming supports WordPiece "
-                        f"(BERT-family) tokenizers only")
+        model = f" of the {family!r} teacher" if family else ""
+        raise UserError(f"{where}: trim_vocab.enabled — the tokenizer{model} is {kind}; step student-trimmed "
+                        f"rebuilds WordPiece tokenizers only (BPE and Unigram vocabularies are not trimmed)")
 
 
 def special_ids(tokenizer) -> set[int]:
