@@ -21,7 +21,7 @@ from typing import Optional
 
 import numpy as np
 
-from shrinkwrap.batches import all_logits
+from shrinkwrap.batches import TRUNCATION_RULES, all_logits, encode_head_tail
 from shrinkwrap.calibration import softmax
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
@@ -100,6 +100,14 @@ def verify(folder: str | Path) -> dict:
     return manifest
 
 
+def truncation_of(manifest: dict) -> str:
+    """Which tokens of a long text the model was trained on (recipe key data.truncation; head when not recorded)."""
+    rule = (manifest.get("tokenizer") or {}).get("truncation", "head")
+    if rule not in TRUNCATION_RULES:
+        raise UserError(f"{MANIFEST_FILE}: tokenizer.truncation = {rule!r} — expected one of {', '.join(TRUNCATION_RULES)}")
+    return rule
+
+
 def temperature_of(manifest: dict) -> float:
     """The calibration temperature the manifest records (1.0 for an artifact packaged without one)."""
     t = (manifest.get("calibration") or {}).get("temperature", 1.0)
@@ -121,6 +129,10 @@ class Artifact:
         return int(self.manifest["tokenizer"]["max_length"])
 
     @property
+    def truncation(self) -> str:
+        return truncation_of(self.manifest)
+
+    @property
     def reads_pairs(self) -> bool:
         return bool(self.manifest["tokenizer"].get("text_pair"))
 
@@ -131,8 +143,11 @@ class Artifact:
         from shrinkwrap.onnx_tools import run_logits
 
         inputs = list(texts) if pairs is None else list(zip(texts, pairs))
-        examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
-                    for e in self.tokenizer.encode_batch(inputs)]
+        if self.truncation == "head_tail":  # the chain's own cut (batches.encode_head_tail), single texts only
+            examples = encode_head_tail(self.tokenizer, inputs, self.max_length)
+        else:
+            examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
+                        for e in self.tokenizer.encode_batch(inputs)]
         pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
         return all_logits(lambda batch: run_logits(self.session, batch),
                           examples, pad_id, len(self.labels), batch_size)
@@ -194,9 +209,14 @@ def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 
         tokenizer = Tokenizer.from_file(str(folder / TOKENIZER_FILE))
     except Exception as e:  # the Rust library raises plain Exception for a file it cannot parse
         raise UserError(f"{folder / TOKENIZER_FILE}: cannot load — {str(e).splitlines()[0]}") from None
-    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours.
+    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours, the
+    # rule the chain cut texts by (head_tail cuts in Artifact.logits, from the whole text).
     tokenizer.no_padding()
-    tokenizer.enable_truncation(tok_info["max_length"])
+    rule = truncation_of(manifest)
+    if rule == "head_tail":
+        tokenizer.no_truncation()
+    else:
+        tokenizer.enable_truncation(tok_info["max_length"], direction="left" if rule == "tail" else "right")
     try:
         sess = session(folder / MODEL_FILE, threads)
     except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load

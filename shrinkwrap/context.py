@@ -61,7 +61,8 @@ class Context:
 
             tok = load_tokenizer(str(folder), str(folder))
             n = self.recipe.teacher.max_length
-            encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
+            encoded = {s: encode(tok, getattr(self.data, s), n, truncation=self.recipe.data.truncation)
+                       for s in ("train", "validation", "test")}
             self._tokens[fp] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
         return self._tokens[fp]
 
@@ -70,7 +71,8 @@ class Context:
         if self.transfer is None:
             return []
         return self.transfer.encoded(self.run_dir / "cache", self.tokenizer, self.tokenizer_fp,
-                                     self.recipe.teacher.max_length, quiet=self.quiet)
+                                     self.recipe.teacher.max_length, quiet=self.quiet,
+                                     truncation=self.recipe.data.truncation)
 
     def transfer_batches(self, size: int = 1024):
         """The transfer texts a batch at a time."""

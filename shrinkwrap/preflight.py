@@ -68,7 +68,8 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     if recipe.teacher.trained:  # the model's own class order: its logit k is the data's class k
         data = in_label_order(data, trained.match_labels(trained.model_labels(config), data.label_names, where))
         weights = trained.weights_fingerprint(Path(base))
-    encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
+    encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length, truncation=recipe.data.truncation)
+               for s in ("train", "validation", "test")}
     transfer = None
     st = recipe.student
     if st.transfer_path:

@@ -30,11 +30,18 @@ class DataConfig(_Section):
     validation_size: float = Field(0.1, gt=0, lt=1, description="share of the rest held out for validation")
     seed: int = Field(0, description="seed of the stratified split")
     drop_empty: bool = Field(False, description="drop rows whose text is empty or whitespace (otherwise they are an error)")
+    truncation: Literal["head", "tail", "head_tail"] = Field(
+        "head", description="which tokens of a text longer than teacher.max_length are kept: its start, its end, or "
+                            "both (head_tail: a quarter of the tokens from the start, the rest from the end; single "
+                            "texts only); every step, the benchmark and predict cut the same way")
 
     @model_validator(mode="after")
     def _shares(self) -> "DataConfig":
         if self.test_size + self.validation_size >= 1:
             raise ValueError(f"test_size + validation_size = {self.test_size + self.validation_size:g} — must be below 1")
+        if self.truncation == "head_tail" and self.text_pair:
+            raise ValueError(f"truncation = head_tail with text_pair = {self.text_pair!r} — head_tail cuts single "
+                             f"texts; pairs take head or tail")
         return self
 
 

@@ -122,7 +122,7 @@ def bench_step(ctx: Context, step: Step) -> dict:
         return cached["result"]
     b = ctx.recipe.bench
     tokens = ctx.tokens_of(folder)  # a step after one that changed the tokenizer reads texts with its own
-    timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length)
+    timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length, truncation=ctx.recipe.data.truncation)
     ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
     result = measure(folder, tokens.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
                      tokens.pad_id, b)

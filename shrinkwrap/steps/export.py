@@ -17,7 +17,8 @@ def run(ctx, src: Path, out: Path) -> dict:
     cfg, bench = ctx.recipe.export, ctx.recipe.bench
     model = load_classifier(str(src))
     tokens = ctx.tokens_of(src)  # the student's own tokenizer (a trimmed one when the vocabulary was cut)
-    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, bench.sequence_length)[: bench.batch_size],
+    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, bench.sequence_length,
+                                  truncation=ctx.recipe.data.truncation)[: bench.batch_size],
                            tokens.pad_id, length=bench.sequence_length)
 
     info = export_checked(model, tokens.encoded["test"], tokens.pad_id, timing_batch, cfg, bench.threads, out)
