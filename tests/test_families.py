@@ -217,3 +217,25 @@ def test_a_graph_whose_if_branch_reads_a_later_value_is_sorted(tmp_path):
     assert [n.op_type for n in onnx.load(str(path)).graph.node] == ["Add", "Constant", "If"]
     out = session(path, 1).run(None, {"x": np.array([1.5], dtype=np.float32)})[0]
     assert out.tolist() == [3.0]
+
+
+def test_a_family_s_encoder_is_fine_tuned_too(tmp_path, keyword_csv):
+    """teacher.trained: false on a DistilBERT encoder (no head): the fresh head is fine-tuned, fed only the
+    inputs DistilBERT takes though the WordPiece tokenizer gives segment ids."""
+    import torch
+    from transformers import AutoTokenizer, DistilBertModel
+
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import run_chain
+
+    tok = AutoTokenizer.from_pretrained(bundled_path())
+    torch.manual_seed(0)
+    config = tiny_config("distilbert", tok.vocab_size)
+    DistilBertModel(config).save_pretrained(tmp_path / "encoder", safe_serialization=True)
+    tok.save_pretrained(tmp_path / "encoder")
+    raw = tiny_recipe(tmp_path / "encoder", keyword_csv, teacher={"max_length": 30},
+                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+    results = run_chain(load_recipe(write_recipe(tmp_path / "r.yaml", raw)), tmp_path / "run", quiet=True,
+                        until="teacher")
+    info = results["steps"][0]["info"]
+    assert info["kept_seed"] == 0 and info["seeds"][0]["steps"] > 0
