@@ -22,6 +22,7 @@ BAD = {
     ("bench", "--eval-batch-size"): ["0", "-2"],
     ("predict", "--batch-size"): ["0", "-1"],
     ("predict", "--threads"): ["-1", "x"],
+    ("predict", "--min-confidence"): ["-0.1", "1.5", "nan", "x"],
     ("package", "--max-length"): ["0", "-1"],
     ("package", "--opset"): ["13", "99", "-1", "x"],
     ("package", "--threads"): ["0"],
