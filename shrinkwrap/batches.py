@@ -41,8 +41,9 @@ def encode_head_tail(backend, texts: list[str], max_length: int) -> list[dict[st
     return out
 
 
-def _plain(tokenizer):
-    """A copy of a transformers tokenizer's backend that neither truncates nor pads."""
+def plain_backend(tokenizer):
+    """A copy of a transformers tokenizer's `tokenizers` backend that neither truncates nor pads: a saved
+    tokenizer.json may carry both settings (the bundled one pads every text to 128 tokens)."""
     from tokenizers import Tokenizer
 
     backend = Tokenizer.from_str(tokenizer.backend_tokenizer.to_str())
@@ -62,7 +63,7 @@ def encode(tokenizer, split, max_length: int, chunk: int = 4096, truncation: str
         raise ValueError("truncation head_tail goes with single texts, not pairs")
     out: list[dict[str, list[int]]] = []
     side = getattr(tokenizer, "truncation_side", "right")
-    backend = _plain(tokenizer) if truncation == "head_tail" else None
+    backend = plain_backend(tokenizer) if truncation == "head_tail" else None
     try:
         tokenizer.truncation_side = "left" if truncation == "tail" else "right"
         for start in range(0, len(split), chunk):
