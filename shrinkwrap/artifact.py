@@ -21,7 +21,7 @@ from typing import Optional
 
 import numpy as np
 
-from shrinkwrap.batches import all_logits
+from shrinkwrap.batches import TRUNCATION_RULES, all_logits, encode_head_tail
 from shrinkwrap.calibration import softmax
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
@@ -100,6 +100,14 @@ def verify(folder: str | Path) -> dict:
     return manifest
 
 
+def truncation_of(manifest: dict) -> str:
+    """Which tokens of a long text the model was trained on (recipe key data.truncation; head when not recorded)."""
+    rule = (manifest.get("tokenizer") or {}).get("truncation", "head")
+    if rule not in TRUNCATION_RULES:
+        raise UserError(f"{MANIFEST_FILE}: tokenizer.truncation = {rule!r} — expected one of {', '.join(TRUNCATION_RULES)}")
+    return rule
+
+
 def temperature_of(manifest: dict) -> float:
     """The calibration temperature the manifest records (1.0 for an artifact packaged without one)."""
     t = (manifest.get("calibration") or {}).get("temperature", 1.0)
@@ -120,22 +128,41 @@ class Artifact:
     def max_length(self) -> int:
         return int(self.manifest["tokenizer"]["max_length"])
 
-    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE) -> np.ndarray:
-        """Logits of every text, in order, in the chain's own length-sorted batches (batches.all_logits),
-        so that padding costs little and the logits are those the chain recorded."""
-        return self._logits(self.encode(texts), batch_size)
+    @property
+    def truncation(self) -> str:
+        return truncation_of(self.manifest)
 
-    def encode(self, texts: list[str]) -> list:
-        """The tokenizer's encodings of the texts, cut at max_length tokens. A very long text is tokenised
-        from a prefix ending at whitespace, grown until it yields more tokens than are kept: the kept tokens
-        are those of the whole text (words are tokenised apart), without tokenising megabytes only to
-        throw them away — a 10 MB line would otherwise take seconds and gigabytes."""
+    @property
+    def reads_pairs(self) -> bool:
+        return bool(self.manifest["tokenizer"].get("text_pair"))
+
+    def logits(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
+               pairs: Optional[list[str]] = None) -> np.ndarray:
+        """Logits of every text (or pair: texts[i] with pairs[i]), in order, in the chain's own length-sorted
+        batches (batches.all_logits), so that padding costs little and the logits are those the chain recorded."""
+        return self._logits(self.encode(texts, pairs)[0], batch_size)
+
+    def encode(self, texts: list[str], pairs: Optional[list[str]] = None) -> tuple[list[dict], list[bool]]:
+        """The model inputs of every text (or pair), cut at max_length tokens by the artifact's truncation rule,
+        and whether each was cut. With the `head` rule, a very long single text is tokenised from a prefix
+        ending at whitespace, grown until it yields more tokens than are kept: the kept tokens are those of the
+        whole text (words are tokenised apart), without tokenising megabytes only to throw them away — a
+        10 MB line would otherwise take seconds and gigabytes."""
+        if self.truncation == "head_tail":  # the chain's own cut (batches.encode_head_tail), single texts only
+            examples = encode_head_tail(self.tokenizer, list(texts), self.max_length)
+            cut = [len(e["input_ids"]) >= self.max_length
+                   and len(self.tokenizer.encode(t).ids) > self.max_length for t, e in zip(texts, examples)]
+            return examples, cut
+        inputs = list(texts) if pairs is None else list(zip(texts, pairs))
         limit = max(4096, 16 * self.max_length)
-        out = self.tokenizer.encode_batch([t if len(t) <= limit else "" for t in texts])
-        for i, text in enumerate(texts):
-            if len(text) > limit:
-                out[i] = self._encode_long(text, limit)
-        return out
+        prefix = pairs is None and self.truncation == "head"
+        encodings = self.tokenizer.encode_batch([t if not prefix or len(t) <= limit else "" for t in inputs])
+        if prefix:
+            for i, text in enumerate(texts):
+                if len(text) > limit:
+                    encodings[i] = self._encode_long(text, limit)
+        return ([{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
+                 for e in encodings], [bool(e.overflowing) for e in encodings])
 
     def _encode_long(self, text: str, size: int):
         while size < len(text):
@@ -146,11 +173,9 @@ class Artifact:
             size *= 4
         return self.tokenizer.encode(text)
 
-    def _logits(self, encodings: list, batch_size: int) -> np.ndarray:
+    def _logits(self, examples: list[dict], batch_size: int) -> np.ndarray:
         from shrinkwrap.onnx_tools import run_logits
 
-        examples = [{"input_ids": e.ids, "attention_mask": e.attention_mask, "token_type_ids": e.type_ids}
-                    for e in encodings]
         pad_id = int(self.manifest["tokenizer"].get("pad_id", 0))
         return all_logits(lambda batch: run_logits(self.session, batch),
                           examples, pad_id, len(self.labels), batch_size)
@@ -160,17 +185,19 @@ class Artifact:
         return temperature_of(self.manifest)
 
     def predict(self, texts: list[str], batch_size: int = DEFAULT_BATCH_SIZE,
-                min_confidence: float = 0.0) -> list[dict]:
-        """{"text", "label", "scores": {label: probability}} for each text, in order. Scores are the softmax of
-        the logits divided by the artifact's temperature; a text whose top score is below `min_confidence`
-        gets label None (abstains), its scores still given. A text longer than the artifact's max_length
-        tokens is cut there, as in training, and its row says "truncated": true."""
-        encodings = self.encode(texts)
-        probs = softmax(self._logits(encodings, batch_size), self.temperature)
-        return [{"text": t, "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
+                min_confidence: float = 0.0, pairs: Optional[list[str]] = None) -> list[dict]:
+        """{"text", "label", "scores": {label: probability}} for each text (with "text_pair" for a pair), in
+        order. Scores are the softmax of the logits divided by the artifact's temperature; a text whose top
+        score is below `min_confidence` gets label None (abstains), its scores still given. A text longer than
+        the artifact's max_length tokens is cut by its truncation rule, as in training, and its row says
+        "truncated": true."""
+        examples, cut = self.encode(texts, pairs)
+        probs = softmax(self._logits(examples, batch_size), self.temperature)
+        return [{"text": t, **({"text_pair": pairs[i]} if pairs is not None else {}),
+                 "label": self.labels[int(p.argmax())] if p.max() >= min_confidence else None,
                  "scores": {name: round(float(v), 6) for name, v in zip(self.labels, p)},
-                 **({"truncated": True} if e.overflowing else {})}
-                for t, p, e in zip(texts, probs, encodings)]
+                 **({"truncated": True} if cut[i] else {})}
+                for i, (t, p) in enumerate(zip(texts, probs))]
 
 
 def read_labels(folder: Path) -> list[str]:
@@ -214,9 +241,14 @@ def open_folder(folder: Path, manifest: dict, labels: list[str], threads: int = 
         tokenizer = Tokenizer.from_file(str(folder / TOKENIZER_FILE))
     except Exception as e:  # the Rust library raises plain Exception for a file it cannot parse
         raise UserError(f"{folder / TOKENIZER_FILE}: cannot load — {str(e).splitlines()[0]}") from None
-    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours.
+    # Truncation and padding are per-call settings a saved tokenizer may or may not carry: set ours, the
+    # rule the chain cut texts by (head_tail cuts in Artifact.logits, from the whole text).
     tokenizer.no_padding()
-    tokenizer.enable_truncation(tok_info["max_length"])
+    rule = truncation_of(manifest)
+    if rule == "head_tail":
+        tokenizer.no_truncation()
+    else:
+        tokenizer.enable_truncation(tok_info["max_length"], direction="left" if rule == "tail" else "right")
     try:
         sess = session(folder / MODEL_FILE, threads)
     except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load

@@ -13,19 +13,73 @@ from typing import Optional
 import numpy as np
 
 
-def encode(tokenizer, split, max_length: int, chunk: int = 4096) -> list[dict[str, list[int]]]:
+TRUNCATION_RULES = ("head", "tail", "head_tail")
+
+
+def head_tokens(budget: int) -> int:
+    """Tokens kept from the start of a text cut by head_tail: a quarter of the budget, the rest from its end
+    (Sun et al. 2019, "How to Fine-Tune BERT for Text Classification?", kept 128 + 382 of 510 — quoted from
+    memory, not checked against the paper here)."""
+    return budget // 4
+
+
+def encode_head_tail(backend, texts: list[str], max_length: int) -> list[dict[str, list[int]]]:
+    """Single texts longer than `max_length` tokens (special tokens included) cut in the middle: the first
+    head_tokens and the last of the rest, then the special tokens added as the tokenizer's post-processor
+    adds them. `backend` is a `tokenizers.Tokenizer` that neither truncates nor pads."""
+    budget = max_length - backend.num_special_tokens_to_add(False)
+    out = []
+    for text, enc in zip(texts, backend.encode_batch(list(texts), add_special_tokens=False)):
+        if len(enc.ids) > budget:
+            tail = backend.encode(text, add_special_tokens=False)
+            n_head = head_tokens(budget)
+            enc.truncate(n_head, direction="right")
+            tail.truncate(budget - n_head, direction="left")
+            enc = type(enc).merge([enc, tail], growing_offsets=True)
+        enc = backend.post_process(enc, None, True)
+        out.append({"input_ids": enc.ids, "attention_mask": enc.attention_mask, "token_type_ids": enc.type_ids})
+    return out
+
+
+def plain_backend(tokenizer):
+    """A copy of a transformers tokenizer's `tokenizers` backend that neither truncates nor pads: a saved
+    tokenizer.json may carry both settings (the bundled one pads every text to 128 tokens)."""
+    from tokenizers import Tokenizer
+
+    backend = Tokenizer.from_str(tokenizer.backend_tokenizer.to_str())
+    backend.no_truncation()
+    backend.no_padding()
+    return backend
+
+
+def encode(tokenizer, split, max_length: int, chunk: int = 4096, truncation: str = "head") -> list[dict[str, list[int]]]:
     """Token ids of every example of `split` (texts, and pairs or None), unpadded: batches are padded
-    to their own longest example. Tokenised `chunk` texts at a time: the tokenizer's own output
-    objects are many times the size of the ids kept, and would otherwise all be alive at once."""
+    to their own longest example. Texts longer than max_length tokens keep their start (`head`), their
+    end (`tail`) or both (`head_tail`, single texts). Tokenised `chunk` texts at a time: the tokenizer's
+    own output objects are many times the size of the ids kept, and would otherwise all be alive at once."""
+    if truncation not in TRUNCATION_RULES:
+        raise ValueError(f"truncation {truncation!r}: one of {TRUNCATION_RULES}")
+    if truncation == "head_tail" and split.pairs is not None:
+        raise ValueError("truncation head_tail goes with single texts, not pairs")
     out: list[dict[str, list[int]]] = []
-    for start in range(0, len(split), chunk):
-        texts = split.texts[start:start + chunk]
-        if split.pairs is not None:
-            enc = tokenizer(texts, split.pairs[start:start + chunk], truncation=True, max_length=max_length)
-        else:
-            enc = tokenizer(texts, truncation=True, max_length=max_length)
-        keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
-        out.extend({k: enc[k][i] for k in keys} for i in range(len(texts)))
+    side = getattr(tokenizer, "truncation_side", "right")
+    backend = plain_backend(tokenizer) if truncation == "head_tail" else None
+    try:
+        tokenizer.truncation_side = "left" if truncation == "tail" else "right"
+        for start in range(0, len(split), chunk):
+            texts = split.texts[start:start + chunk]
+            if backend is not None:  # the keys the tokenizer gives (those the model takes), cut by head_tail
+                keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in tokenizer("a")]
+                out.extend({k: e[k] for k in keys} for e in encode_head_tail(backend, texts, max_length))
+                continue
+            if split.pairs is not None:
+                enc = tokenizer(texts, split.pairs[start:start + chunk], truncation=True, max_length=max_length)
+            else:
+                enc = tokenizer(texts, truncation=True, max_length=max_length)
+            keys = [k for k in ("input_ids", "attention_mask", "token_type_ids") if k in enc]
+            out.extend({k: enc[k][i] for k in keys} for i in range(len(texts)))
+    finally:
+        tokenizer.truncation_side = side
     return out
 
 

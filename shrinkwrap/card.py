@@ -9,6 +9,10 @@ from shrinkwrap.report import (NO_CAUTION, class_changes, class_cautions, int8_a
                                step_table)
 from shrinkwrap.results import final_step, teacher_row
 
+# What data.truncation keeps of a long text, in the card's words.
+_KEPT = {"head": "start", "tail": "end", "head_tail": "start and end"}
+
+
 def _front_matter(manifest: dict, name: str, base_model: Optional[str], dataset: Optional[str]) -> str:
     import yaml
 
@@ -101,7 +105,8 @@ def run_card(manifest: dict, results: dict) -> str:
         "",
         f"Sorting texts like those of the training data into one of: {', '.join(f'`{n}`' for n in names)}. "
         f"It was trained and tested only on that data; texts of another kind, another language or longer than "
-        f"{manifest['tokenizer']['max_length']} tokens (the rest is cut) are outside what was measured. "
+        f"{manifest['tokenizer']['max_length']} tokens (cut to their "
+        f"{_KEPT[manifest['tokenizer'].get('truncation', 'head')]}) are outside what was measured. "
         f"Not for decisions about people without human review.",
         "",
         "## Data",

@@ -191,7 +191,7 @@ def cmd_predict(args) -> int:
 
     return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
                        trusted_key=args.trusted_key and Path(args.trusted_key),
-                       min_confidence=args.min_confidence)
+                       min_confidence=args.min_confidence, text_col=args.text, pair_col=args.text_pair)
 
 
 def cmd_package(args) -> int:
@@ -404,7 +404,13 @@ def build_parser() -> argparse.ArgumentParser:
     predict.add_argument("artifact", metavar="ARTIFACT", help="artifact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
     predict.add_argument("texts", nargs="*", metavar="TEXT",
                          help="texts to classify (none: one per line from --file or stdin)")
-    predict.add_argument("--file", metavar="FILE", help="UTF-8 file with one text per line")
+    predict.add_argument("--file", metavar="FILE", help="UTF-8 file: one text per line; .jsonl/.ndjson: JSON lines "
+                         "{\"text\": ..., \"text_pair\": ...}; .csv/.tsv: a table with a header (columns --text, --text-pair)")
+    predict.add_argument("--text", default="text", metavar="NAME",
+                         help="key (JSON lines) or column (CSV/TSV) holding the text (default: text)")
+    predict.add_argument("--text-pair", metavar="NAME",
+                         help="key or column holding the second text, for a model that classifies pairs "
+                              "(default: text_pair)")
     predict.add_argument("--batch-size", type=_positive_int, metavar="N",
                          help="texts per model call; texts are grouped by length (default: 32, as in the chain's "
                               "accuracy pass, which gives exactly its predictions)")

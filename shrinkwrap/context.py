@@ -37,6 +37,7 @@ class Context:
     quiet: bool = False
     teacher_hidden_size: int = 0
     transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
+    teacher_weights: Optional[str] = None        # with teacher.trained: the fingerprint of the weights used as is
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[tuple, Tokens] = field(default_factory=dict)
 
@@ -69,7 +70,8 @@ class Context:
             from shrinkwrap.models import load_tokenizer
 
             tok = self.tokenizer if fp == self.tokenizer_fp else load_tokenizer(str(folder), str(folder))
-            encoded = {s: encode(tok, getattr(self.data, s), n) for s in ("train", "validation", "test")}
+            encoded = {s: encode(tok, getattr(self.data, s), n, truncation=self.recipe.data.truncation)
+                       for s in ("train", "validation", "test")}
             self._tokens[(fp, n)] = Tokens(tok, fp, encoded, tok.pad_token_id or 0)
         return self._tokens[(fp, n)]
 
@@ -83,7 +85,8 @@ class Context:
         if self.transfer is None:
             return []
         return self.transfer.encoded(self.run_dir / "cache", self.tokenizer, self.tokenizer_fp,
-                                     max_length or self.recipe.teacher.max_length, quiet=self.quiet)
+                                     max_length or self.recipe.teacher.max_length, quiet=self.quiet,
+                                     truncation=self.recipe.data.truncation)
 
     def transfer_batches(self, size: int = 1024):
         """The transfer texts a batch at a time."""

@@ -223,3 +223,16 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
 
     return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
 
+
+
+def in_label_order(data: Dataset, names: list[str]) -> Dataset:
+    """The same data with class ids renumbered so that class k is `names[k]` (a permutation of
+    data.label_names): a classifier used as is reads its own order."""
+    if sorted(data.label_names) != sorted(names):
+        raise ValueError(f"in_label_order: {names} is not an order of {data.label_names}")
+    new_id = np.array([names.index(n) for n in data.label_names], dtype=np.int64)
+
+    def renumber(split: Split) -> Split:
+        return Split(texts=split.texts, labels=new_id[split.labels], pairs=split.pairs)
+
+    return Dataset(**{s: renumber(getattr(data, s)) for s in SPLITS}, label_names=list(names), notes=data.notes)

@@ -76,7 +76,36 @@ def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = F
         raise UserError(f"{what} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
     if not getattr(tok, "is_fast", False):
         raise UserError(f"{what} — only fast (tokenizers-backed) tokenizers are supported")
+    config = Path(base) / "config.json"
+    if config.is_file():  # the model beside it decides which of the tokenizer's outputs it is fed
+        from transformers import AutoConfig
+
+        try:
+            accepted = model_inputs(AutoConfig.from_pretrained(base, trust_remote_code=trust_remote_code))
+        except (OSError, ValueError):
+            accepted = None  # the config's own check reports it
+        if accepted is not None:
+            tok.model_input_names = [n for n in tok.model_input_names if n != "token_type_ids" or n in accepted]
     return tok
+
+
+def model_inputs(config) -> list[str]:
+    """The inputs a sequence classifier of this config is fed: input_ids, attention_mask, and token_type_ids
+    only when its forward takes them and it has more than one segment embedding (a RoBERTa-type model has
+    one, which a WordPiece tokenizer's second-segment ids would index past; DeBERTa-v2 often none)."""
+    import inspect
+
+    from transformers import AutoModelForSequenceClassification
+
+    names = ["input_ids", "attention_mask"]
+    try:
+        cls = AutoModelForSequenceClassification._model_mapping[type(config)]
+    except KeyError:
+        return names + ["token_type_ids"]  # remote code: fed what its tokenizer gives
+    takes = "token_type_ids" in inspect.signature(cls.forward).parameters
+    if takes and getattr(config, "type_vocab_size", 2) >= 2:
+        names.append("token_type_ids")
+    return names
 
 
 def to_torch(batch: dict[str, np.ndarray]) -> dict[str, torch.Tensor]:

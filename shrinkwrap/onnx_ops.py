@@ -105,12 +105,89 @@ def export_checked(model, examples: list[dict], pad_id: int, timing_batch: dict,
                              f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels"
                              + (" (export.optimize = always: the fused graph)" if cfg.optimize == "always" else ""))
         chosen = "fused" if "fused" in passing else "plain"
+        fusion = fusion_summary(candidates["fused"], model.config) if "fused" in candidates else None
         shutil.move(str(candidates[chosen]), out / MODEL_FILE)
-    return {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
+    info = {"exporter": "optimum (torch.onnx)", "opset": cfg.opset, "graph": chosen, "candidates": report,
             "parity": report[chosen]}
+    if fusion is not None:
+        info["fusion"] = fusion
+    if chosen == "plain":
+        info["why_plain"] = ("export.optimize = never" if cfg.optimize == "never" else
+                             f"the fused graph's logits differ from PyTorch by {report['fused']['max_abs_logit_diff']:.2e} "
+                             f"(allowed {cfg.parity_tolerance:g}) with {report['fused']['label_mismatches']} different labels")
+    return info
+
+
+_FUSED_OPS = ("Attention", "MultiHeadAttention", "EmbedLayerNormalization", "SkipLayerNormalization",
+              "LayerNormalization", "BiasGelu", "FastGelu", "Gelu")
+
+
+def fusion_summary(path: Path, config) -> dict:
+    """What ONNX Runtime's transformer optimizer fused, read back from the graph; a note when it fused no
+    attention (families whose attention is not BERT's: DeBERTa's disentangled, MPNet's relative bias)."""
+    ops = Counter(n.op_type for n in onnx.load(str(path), load_external_data=False).graph.node)
+    summary = {"fused_ops": {k: ops[k] for k in _FUSED_OPS if ops[k]},
+               "attention_fused": bool(ops["Attention"] or ops["MultiHeadAttention"])}
+    if not summary["attention_fused"]:
+        summary["note"] = (f"ONNX Runtime's optimizer has no attention fusion for {config.model_type!r}: only "
+                           f"layer norms and activations are fused")
+    return summary
 
 
 # ---- int8 ------------------------------------------------------------------------------------------------
+
+
+def _outer_names(graph) -> set[str]:
+    """Names a subgraph reads from the graphs around it: used by its nodes (or theirs), defined nowhere in it."""
+    defined = {i.name for i in graph.input} | {i.name for i in graph.initializer}
+    used: set[str] = set()
+    for node in graph.node:
+        defined.update(node.output)
+        used |= _node_reads(node)
+    return used - defined
+
+
+def _node_reads(node) -> set[str]:
+    reads = {x for x in node.input if x}
+    for attr in node.attribute:
+        for sub in ([attr.g] if attr.type == onnx.AttributeProto.GRAPH else []) + list(attr.graphs):
+            reads |= _outer_names(sub)
+    return reads
+
+
+def sort_topologically(path: Path) -> None:
+    """Reorders the graph's nodes so that every node comes after what it reads, the outer values its
+    subgraphs (If branches) read included, keeping the original order wherever it already holds (Kahn's
+    algorithm, earliest node first). ONNX Runtime's quantiser can leave a value a DeBERTa If branch reads
+    defined after the If, which onnx.checker refuses ("nodes must be topologically sorted")."""
+    import heapq
+
+    model = onnx.load(str(path))
+    nodes = list(model.graph.node)
+    producer = {o: k for k, n in enumerate(nodes) for o in n.output if o}
+    deps = [{producer[x] for x in _node_reads(n) if x in producer and producer[x] != k} for k, n in enumerate(nodes)]
+    waiting = [len(d) for d in deps]
+    users: dict[int, list[int]] = {}
+    for k, d in enumerate(deps):
+        for j in d:
+            users.setdefault(j, []).append(k)
+    ready = [k for k, w in enumerate(waiting) if w == 0]
+    heapq.heapify(ready)
+    order = []
+    while ready:
+        k = heapq.heappop(ready)
+        order.append(k)
+        for u in users.get(k, []):
+            waiting[u] -= 1
+            if waiting[u] == 0:
+                heapq.heappush(ready, u)
+    if len(order) != len(nodes):
+        raise RuntimeError(f"{path}: the graph has a cycle; it cannot be sorted")
+    if order == list(range(len(nodes))):
+        return
+    del model.graph.node[:]
+    model.graph.node.extend(nodes[k] for k in order)
+    onnx.save(model, str(path))
 
 
 def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str]) -> None:
@@ -124,6 +201,7 @@ def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str
                          op_types_to_quantize=list(op_types),
                          # a graph already fused by the transformer optimizer fails type inference without this
                          extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    sort_topologically(dst)
     onnx.checker.check_model(str(dst), full_check=True)
 
 
@@ -151,6 +229,7 @@ def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: i
                     weight_type=QuantType.QInt8, activation_type=QuantType.QUInt8,
                     op_types_to_quantize=list(op_types), calibrate_method=CalibrationMethod.MinMax,
                     extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
+    sort_topologically(dst)
     onnx.checker.check_model(str(dst), full_check=True)
 
 

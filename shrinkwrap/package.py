@@ -164,8 +164,9 @@ def from_run(results: dict, run_dir: Path) -> Path:
                  "fingerprint": results["data"]["fingerprint"]},
     }
     # The artifact is a student: it reads what the student was trained to read.
-    tokenizer = {"max_length": recipe["student"].get("max_length") or recipe["teacher"]["max_length"], "pad_id": _pad_id(src),
-                 "text_pair": recipe["data"].get("text_pair") is not None}
+    tokenizer = {"max_length": recipe["student"].get("max_length") or recipe["teacher"]["max_length"],
+                 "pad_id": _pad_id(src), "text_pair": recipe["data"].get("text_pair") is not None,
+                 "truncation": recipe["data"].get("truncation", "head")}
     return write_artifact(run_dir / ARTIFACT_DIR, src, results["data"]["label_names"], tokenizer, describe,
                           lambda manifest: run_card(manifest, results))
 
@@ -251,7 +252,8 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
                                 "caution": data_caution(len(table.texts))}
         measure = None if table is None else (lambda art: _table_metrics(art, table, labels))
         log(f"writing {out}")
-        return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False},
+        return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False,
+                                                   "truncation": "head"},
                               describe, lambda manifest: folder_card(manifest, labels), measure, threads)
 
 

@@ -9,13 +9,13 @@ from shrinkwrap import distributed
 from shrinkwrap.context import Context
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import tokenizer_fingerprint_of
-from shrinkwrap.recipe import Recipe
+from shrinkwrap.recipe import TRAINING_ONLY_TEACHER_KEYS, Recipe
 from shrinkwrap.rundir import check_out_dir
 
 
 def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     """Loads and checks everything the chain needs. Writes nothing."""
-    from shrinkwrap.data import load_dataset
+    from shrinkwrap.data import in_label_order, load_dataset
     from shrinkwrap.batches import encode
     from shrinkwrap.models import load_tokenizer
 
@@ -24,17 +24,30 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     base, config = teacher_config(recipe, where)
     if recipe.teacher.trust_remote_code:
         warnings.warn(f"{where}: teacher.trust_remote_code is on — Python code shipped with {base} will run")
+    if recipe.teacher.trained:
+        from shrinkwrap import trained
+
+        trained.check_head(Path(base), config, where)
+        ignored = trained.unused_keys(recipe.teacher, TRAINING_ONLY_TEACHER_KEYS)
+        if ignored and not quiet:
+            warnings.warn(f"{where}: teacher.trained is true — the teacher is used as is, so "
+                          f"{', '.join('teacher.' + k for k in ignored)} no longer apply")
     check_student(recipe, config, where)
     tokenizer = load_tokenizer(base, where, recipe.teacher.trust_remote_code)
     if recipe.trim_vocab.enabled:
         from shrinkwrap.vocab import check_trim
 
-        check_trim(tokenizer, where)
+        check_trim(tokenizer, where, getattr(config, "model_type", None))
     data_path = recipe.resolve(recipe.data.path)
     if not data_path.exists():
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")
     data = load_dataset(recipe.data, data_path, str(data_path))
-    encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length) for s in ("train", "validation", "test")}
+    weights = None
+    if recipe.teacher.trained:  # the model's own class order: its logit k is the data's class k
+        data = in_label_order(data, trained.match_labels(trained.model_labels(config), data.label_names, where))
+        weights = trained.weights_fingerprint(Path(base))
+    encoded = {s: encode(tokenizer, getattr(data, s), recipe.teacher.max_length, truncation=recipe.data.truncation)
+               for s in ("train", "validation", "test")}
     transfer = None
     st = recipe.student
     if st.transfer_path:
@@ -56,7 +69,7 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
     return Context(recipe=recipe, run_dir=out, base=base, tokenizer=tokenizer,
                    tokenizer_fp=tokenizer_fingerprint_of(tokenizer), data=data, data_fingerprint=data.fingerprint(),
                    encoded=encoded, pad_id=tokenizer.pad_token_id or 0, quiet=quiet or not distributed.is_main(),
-                   teacher_hidden_size=config.hidden_size, transfer=transfer)
+                   teacher_hidden_size=config.hidden_size, transfer=transfer, teacher_weights=weights)
 
 
 def teacher_config(recipe: Recipe, where: str):
@@ -92,6 +105,33 @@ def check_student(recipe: Recipe, config, where: str) -> None:
         raise UserError(f"{where}: student.max_length = {student_length} — at most teacher.max_length "
                         f"({recipe.teacher.max_length}): the teacher's outputs the student learns from are computed "
                         f"on texts cut there")
+    if recipe.student.init == "teacher_layers":
+        check_layers(config, where)
     from shrinkwrap.pruning import check_prune
 
     check_prune(recipe, config, where)
+
+
+def check_layers(config, where: str) -> None:
+    """Refuses, before anything runs, student.init: teacher_layers for a family whose layers cannot be
+    kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT)."""
+    import torch
+    from transformers import AutoModelForSequenceClassification
+
+    from shrinkwrap.models import encoder_layers
+
+    family = getattr(config, "model_type", "?")
+    if getattr(config, "num_hidden_groups", None) is not None:  # ALBERT: every layer runs the same weights
+        raise UserError(f"{where}: student.init = teacher_layers — a {family!r} model shares one layer's weights "
+                        f"across its depth, so step student cannot keep some of its layers; use init: pretrained or config")
+    try:
+        with torch.device("meta"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model = AutoModelForSequenceClassification.from_config(config)
+    except (ValueError, KeyError):
+        return  # not a classifier family transformers knows: loading the teacher reports it
+    try:
+        encoder_layers(model)
+    except UserError:
+        raise UserError(f"{where}: student.init = teacher_layers — step student finds no list of layers in a "
+                        f"{family!r} model to keep some of; use init: pretrained or config") from None

@@ -37,14 +37,42 @@ def _layers(model: nn.Module) -> nn.ModuleList:
     return getattr(owner, name)
 
 
+# Families whose heads transformers can remove (prune_heads) and whose forward takes a head mask; and those
+# whose feed-forward neurons we can remove (every layer's up and down projections found by _ffn). MPNet's
+# relative position bias is one per head of the unpruned model (tried: a pruned layer no longer adds up);
+# DeBERTa-v2 has neither prune_heads nor a head mask.
+HEAD_FAMILIES = ("bert", "roberta", "xlm-roberta", "electra", "distilbert")
+NEURON_FAMILIES = HEAD_FAMILIES + ("mpnet", "deberta-v2")
+
+
+def _ffn(layer: nn.Module) -> tuple[nn.Module, str, nn.Module, str]:
+    """(owner of the up projection, its name, owner of the down projection, its name) of one layer's
+    feed-forward block: intermediate.dense / output.dense (BERT-like, DeBERTa), ffn.lin1 / ffn.lin2 (DistilBERT)."""
+    if hasattr(layer, "intermediate") and hasattr(layer, "output"):
+        return layer.intermediate, "dense", layer.output, "dense"
+    if hasattr(layer, "ffn"):
+        return layer.ffn, "lin1", layer.ffn, "lin2"
+    raise ValueError(f"{type(layer).__name__}: no feed-forward block found")
+
+
+def ffn_width(model: nn.Module) -> int:
+    owner, name, _, _ = _ffn(_layers(model)[0])
+    return getattr(owner, name).out_features
+
+
 def check_prune(recipe, teacher_config, where: str) -> None:
     """Refuses, before anything runs, a prune section the student cannot take."""
     cfg, st = recipe.prune, recipe.student
     if not cfg.enabled:
         return
-    if getattr(teacher_config, "model_type", None) not in ("bert", None):
-        raise UserError(f"{where}: prune.enabled — pruning supports BERT models; the teacher is "
-                        f"{teacher_config.model_type!r}")
+    family = getattr(teacher_config, "model_type", None)
+    if family not in NEURON_FAMILIES and family is not None:
+        raise UserError(f"{where}: prune.enabled — step student-pruned supports {', '.join(NEURON_FAMILIES)}; "
+                        f"the teacher is {family!r}")
+    if cfg.heads_removed and family not in HEAD_FAMILIES + (None,):
+        raise UserError(f"{where}: prune.heads_removed = {cfg.heads_removed} — step student-pruned cannot remove "
+                        f"attention heads of a {family!r} model (transformers cannot prune its heads); "
+                        f"remove neurons only (prune.neurons_removed_share)")
     heads = teacher_config.num_attention_heads
     if st.init == "config":
         heads = st.num_attention_heads or heads
@@ -64,20 +92,27 @@ def check_prune(recipe, teacher_config, where: str) -> None:
 
 
 def importance(model: nn.Module, examples: list[dict], labels: np.ndarray, pad_id: int,
-               batch_size: int) -> tuple[torch.Tensor, torch.Tensor]:
+               batch_size: int, heads_too: bool = True) -> tuple[torch.Tensor, torch.Tensor]:
     """(heads [layers, heads], neurons [layers, width]): E_batches |∂L/∂mask| with L the mean
-    cross-entropy of a batch, the model in eval mode (no dropout), its weights untouched."""
+    cross-entropy of a batch, the model in eval mode (no dropout), its weights untouched. Without
+    `heads_too` no head mask is passed (a family whose forward takes none) and head scores stay 0."""
     layers = _layers(model)
     n_heads = model.config.num_attention_heads
-    width = layers[0].intermediate.dense.out_features
-    head_mask = torch.ones(len(layers), n_heads, requires_grad=True)
+    width = ffn_width(model)
+    head_mask = torch.ones(len(layers), n_heads, requires_grad=heads_too)
     neuron_mask = torch.ones(len(layers), width, requires_grad=True)
     heads, neurons = torch.zeros(len(layers), n_heads), torch.zeros(len(layers), width)
 
     def scale(i):
         return lambda module, inputs, output: output * neuron_mask[i]
 
-    hooks = [layer.intermediate.register_forward_hook(scale(i)) for i, layer in enumerate(layers)]
+    def hook_target(layer):
+        # The module whose output is the activation a_j: BERT's intermediate applies its GELU inside;
+        # DistilBERT's ffn applies `activation` (a module) between lin1 and lin2.
+        owner, name, _, _ = _ffn(layer)
+        return owner if name == "dense" else getattr(owner, "activation")
+
+    hooks = [hook_target(layer).register_forward_hook(scale(i)) for i, layer in enumerate(layers)]
     trainable = [p for p in model.parameters() if p.requires_grad]
     for p in trainable:  # only the masks' gradients are wanted
         p.requires_grad_(False)
@@ -89,10 +124,12 @@ def importance(model: nn.Module, examples: list[dict], labels: np.ndarray, pad_i
             for start in range(0, len(examples), batch_size):
                 batch = to_torch(collate(examples[start:start + batch_size], pad_id))
                 y = torch.as_tensor(labels[start:start + batch_size])
-                loss = F.cross_entropy(model(**batch, head_mask=head_mask).logits, y)
-                g_heads, g_neurons = torch.autograd.grad(loss, [head_mask, neuron_mask])
-                heads += g_heads.abs()
-                neurons += g_neurons.abs()
+                extra = {"head_mask": head_mask} if heads_too else {}
+                loss = F.cross_entropy(model(**batch, **extra).logits, y)
+                grads = torch.autograd.grad(loss, [head_mask, neuron_mask] if heads_too else [neuron_mask])
+                if heads_too:
+                    heads += grads[0].abs()
+                neurons += grads[-1].abs()
                 batches += 1
     finally:
         for h in hooks:
@@ -132,8 +169,11 @@ def remove_neurons(model: nn.Module, neurons: dict[int, list[int]]) -> None:
     if len(counts) != 1 or len(neurons) != len(layers):
         raise ValueError("remove_neurons: every layer must lose the same number of neurons")
     for i, layer in enumerate(layers):
-        width = layer.intermediate.dense.out_features
+        up_owner, up, down_owner, down = _ffn(layer)
+        width = getattr(up_owner, up).out_features
         keep = torch.as_tensor(sorted(set(range(width)) - set(neurons[i])))
-        layer.intermediate.dense = prune_linear_layer(layer.intermediate.dense, keep, dim=0)
-        layer.output.dense = prune_linear_layer(layer.output.dense, keep, dim=1)
-    model.config.intermediate_size = layers[0].intermediate.dense.out_features
+        setattr(up_owner, up, prune_linear_layer(getattr(up_owner, up), keep, dim=0))
+        setattr(down_owner, down, prune_linear_layer(getattr(down_owner, down), keep, dim=1))
+    # DistilBERT calls the feed-forward width hidden_dim; the others intermediate_size.
+    key = "hidden_dim" if model.config.model_type == "distilbert" else "intermediate_size"
+    setattr(model.config, key, ffn_width(model))

@@ -30,16 +30,24 @@ class DataConfig(_Section):
     validation_size: float = Field(0.1, gt=0, lt=1, description="share of the rest held out for validation")
     seed: int = Field(0, description="seed of the stratified split")
     drop_empty: bool = Field(False, description="drop rows whose text is empty or whitespace (otherwise they are an error)")
+    truncation: Literal["head", "tail", "head_tail"] = Field(
+        "head", description="which tokens of a text longer than teacher.max_length are kept: its start, its end, or "
+                            "both (head_tail: a quarter of the tokens from the start, the rest from the end; single "
+                            "texts only); every step, the benchmark and predict cut the same way")
 
     @model_validator(mode="after")
     def _shares(self) -> "DataConfig":
         if self.test_size + self.validation_size >= 1:
             raise ValueError(f"test_size + validation_size = {self.test_size + self.validation_size:g} — must be below 1")
+        if self.truncation == "head_tail" and self.text_pair:
+            raise ValueError(f"truncation = head_tail with text_pair = {self.text_pair!r} — head_tail cuts single "
+                             f"texts; pairs take head or tail")
         return self
 
 
 class TeacherConfig(_Section):
     base: str = Field("bundled", description="`bundled` (the packaged MiniLM-L6-H384), a local transformers folder with safetensors weights (relative to the recipe's folder), or a hub id already in the local Hugging Face cache (nothing is downloaded)")
+    trained: bool = Field(False, description="`base` is already a fine-tuned sequence classifier (with its head): it is used as is, not trained; its id2label names must be the data's label names")
     epochs: int = Field(3, ge=1, description="fine-tuning epochs")
     max_length: int = Field(128, ge=8, le=4096, description="tokens per input after truncation")
     learning_rate: float = Field(5e-5, gt=0, lt=1, description="peak learning rate of AdamW (after warm-up, decays linearly to 0)")
@@ -63,6 +71,12 @@ class TeacherConfig(_Section):
         if len(set(v)) != len(v):
             raise ValueError(f"seed {next(i for i in v if v.count(i) > 1)} is repeated")
         return v
+
+
+# The teacher keys that only steer fine-tuning: with trained: true they no longer apply.
+TRAINING_ONLY_TEACHER_KEYS = ("epochs", "learning_rate", "batch_size", "weight_decay", "warmup_ratio", "max_grad_norm",
+                              "seeds", "patience", "metric", "class_weights", "stall_steps", "stall_fraction",
+                              "collapse_share", "checkpoint_every_steps")
 
 
 class StudentConfig(_Section):

@@ -126,7 +126,7 @@ def bench_step(ctx: Context, step: Step) -> dict:
     # tokens than the benchmark's texts serves them at the cost of the tokens it reads.
     length = ctx.length_of(step.name)
     tokens = ctx.tokens_of(folder, length)
-    timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length)
+    timing = encode(tokens.tokenizer, ctx.data.test, b.sequence_length, truncation=ctx.recipe.data.truncation)
     read = min(length, b.sequence_length)
     ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens"
             + (f", the first {read} read" if read < b.sequence_length else "") + f", {b.threads} threads)")

@@ -137,7 +137,7 @@ class TransferTexts:
             yield rows["text"]
 
     def encoded(self, cache_root: Path, tokenizer, tokenizer_fp: str, max_length: int,
-                quiet: bool = True) -> "ArrowExamples":
+                quiet: bool = True, truncation: str = "head") -> "ArrowExamples":
         """The texts' token ids under `tokenizer`, computed once with `Dataset.map` and cached. Under
         several processes every one calls this; the main process builds the tables, the others wait."""
         import datasets
@@ -145,8 +145,13 @@ class TransferTexts:
         # the same keys as batches.encode gives the labelled texts, so that both go into one batch
         keys = [k for k in ("attention_mask", "token_type_ids") if k in tokenizer(["a"], truncation=True)]
 
+        from shrinkwrap.batches import encode
+        from shrinkwrap.data import Split
+
         def tokenize(rows):
-            enc = tokenizer(rows["text"], truncation=True, max_length=max_length)
+            # batches.encode: the labelled texts' own truncation rule
+            rows_enc = encode(tokenizer, Split(texts=rows["text"], labels=None), max_length, truncation=truncation)
+            enc = {k: [e[k] for e in rows_enc] for k in ["input_ids", *keys]}
             # Only the ids are stored: for one unpadded text the mask is all ones and the segment ids
             # all zeros. Checked here for every row, so a tokenizer for which that fails is caught.
             for k in keys:
@@ -156,7 +161,8 @@ class TransferTexts:
                                      f"this transfer table stores token ids only")
             return {"input_ids": enc["input_ids"], "length": [len(ids) for ids in enc["input_ids"]]}
 
-        target = self.folder(cache_root) / f"tokens-{tokenizer_fp[:16]}-{max_length}.arrow"
+        rule = "" if truncation == "head" else f"-{truncation}"
+        target = self.folder(cache_root) / f"tokens-{tokenizer_fp[:16]}-{max_length}{rule}.arrow"
         if distributed.is_main():
             self.texts(cache_root, quiet).map(
                 tokenize, batched=True, batch_size=1000, remove_columns=["text"],

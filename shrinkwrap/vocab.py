@@ -13,32 +13,23 @@ import json
 import torch
 from torch import nn
 
+from shrinkwrap.batches import plain_backend  # noqa: F401  (used here and by the trimming step)
 from shrinkwrap.errors import StepFailed, UserError
 
 
-def check_trim(tokenizer, where: str) -> None:
+def check_trim(tokenizer, where: str, family: str | None = None) -> None:
     """Refuses, before anything runs, trimming a tokenizer that is not WordPiece (the only kind it renumbers)."""
     kind = json.loads(tokenizer.backend_tokenizer.to_str())["model"].get("type")
     if kind != "WordPiece":
-        raise UserError(f"{where}: trim_vocab.enabled — the teacher's tokenizer is {kind}; trimming supports WordPiece "
-                        f"(BERT-family) tokenizers only")
+        model = f" of the {family!r} teacher" if family else ""
+        raise UserError(f"{where}: trim_vocab.enabled — the tokenizer{model} is {kind}; step student-trimmed "
+                        f"rebuilds WordPiece tokenizers only (BPE and Unigram vocabularies are not trimmed)")
 
 
 def special_ids(tokenizer) -> set[int]:
     """Ids of the special tokens (those the tokenizer names and its added tokens), always kept."""
     backend = json.loads(tokenizer.backend_tokenizer.to_str())
     return set(tokenizer.all_special_ids) | {t["id"] for t in backend.get("added_tokens", [])}
-
-
-def plain_backend(tokenizer):
-    """A copy of the tokenizer's `tokenizers` backend that neither truncates nor pads: a saved
-    tokenizer.json may carry both settings (the bundled one pads every text to 128 tokens)."""
-    from tokenizers import Tokenizer
-
-    backend = Tokenizer.from_str(tokenizer.backend_tokenizer.to_str())
-    backend.no_truncation()
-    backend.no_padding()
-    return backend
 
 
 def used_ids(tokenizer, texts: list[str]) -> set[int]:

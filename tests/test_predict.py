@@ -226,7 +226,7 @@ def test_a_long_text_keeps_exactly_the_tokens_of_the_whole_text(tiny_run):
     vocab = ["refund", "router", "unbelievably", "logins", "x", "ünïcödé", "登录", "🚀", "can't", "3.14"]
     for n in (3000, 20000):
         text = " ".join(rng.choice(vocab) for _ in range(n))
-        ours = art.encode([text])[0]
+        examples, cut = art.encode([text])
         whole = art.tokenizer.encode(text)
-        assert ours.ids == whole.ids and len(ours.ids) == art.max_length
-        assert ours.overflowing and whole.overflowing
+        assert examples[0]["input_ids"] == whole.ids and len(whole.ids) == art.max_length
+        assert cut == [True] and whole.overflowing

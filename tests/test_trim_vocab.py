@@ -199,7 +199,7 @@ def test_trimming_a_tokenizer_that_is_not_wordpiece_is_refused_before_anything_r
     words.pre_tokenizer = pre_tokenizers.Whitespace()
     PreTrainedTokenizerFast(tokenizer_object=words, unk_token="[UNK]", pad_token="[PAD]").save_pretrained(base)
     recipe = _recipe(tmp_path, base, keyword_csv, trim_vocab={"enabled": True})
-    with pytest.raises(UserError, match=r"trim_vocab.enabled — the teacher's tokenizer is WordLevel"):
+    with pytest.raises(UserError, match=r"trim_vocab.enabled — the tokenizer of the 'bert' teacher is WordLevel; step student-trimmed"):
         prepare(recipe, tmp_path / "run")
     assert not (tmp_path / "run").exists()
 

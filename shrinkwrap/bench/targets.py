@@ -121,7 +121,7 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     import torch
     import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
 
-    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8, to_torch
+    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8, model_inputs, to_torch
 
     torch.set_num_threads(threads)
     ready()
@@ -130,11 +130,12 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     else:
         model, files = load_classifier(str(folder)), sorted(folder.glob("*.safetensors"))
 
-    @torch.inference_mode()
-    def logits(batch):
-        return model(**to_torch(batch)).logits.float().numpy()
+    names = model_inputs(model.config)
 
-    names = ["input_ids", "attention_mask"] + (["token_type_ids"] if getattr(model.config, "type_vocab_size", 0) else [])
+    @torch.inference_mode()
+    def logits(batch):  # only the inputs the model takes: a tokenizer may give segment ids it has no use for
+        return model(**to_torch({k: v for k, v in batch.items() if k in names})).logits.float().numpy()
+
     return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder,
                   extra={"vocab_size": getattr(model.config, "vocab_size", None)},
                   label_names=labels_of_config(model.config.to_dict()),

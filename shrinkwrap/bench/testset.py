@@ -54,6 +54,7 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
         import shrinkwrap.models  # noqa: F401  (its loader, likewise)
 
     def build(target: Target) -> Inputs:
+        from shrinkwrap.artifact import truncation_of
         from shrinkwrap.batches import encode
         from shrinkwrap.data import Split
 
@@ -73,7 +74,11 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
         if max_length and target.token_limit() and max_length > target.token_limit():
             raise UserError(f"--max-length {max_length} — {target.path} takes at most {target.token_limit()} tokens")
         labels = np.array([index[v] for v in table.labels], dtype=np.int64)
-        examples = encode(tokenizer, Split(texts=table.texts, labels=labels, pairs=table.pairs), limit)
+        # an artifact's texts are cut by the rule its manifest records, as its chain cut them
+        manifest = target.extra.get("manifest")
+        rule = truncation_of(manifest) if manifest else "head"
+        examples = encode(tokenizer, Split(texts=table.texts, labels=labels, pairs=table.pairs), limit,
+                          truncation=rule)
         return Inputs(timing=examples, pad_id=tokenizer.pad_token_id or 0, test=examples, labels=labels,
                       n_labels=len(names), about={"path": str(table.path), "rows": len(examples), "max_length": limit,
                                                   "label_names": names})

@@ -46,7 +46,9 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     trimmed = recipe is not None and recipe.trim_vocab.enabled
     last = "student-trimmed" if trimmed else "student-pruned" if pruned else "student"
     return [
-        Step("teacher", "pytorch", ("data", "teacher", "train"), (), finetune.run, trains=True),
+        # A teacher used as is (teacher.trained) is those very weights: they are part of its fingerprint.
+        Step("teacher", "pytorch", ("data", "teacher", "train"), (), finetune.run, trains=True,
+             extra=lambda ctx: ctx.teacher_weights),
         Step("student", "pytorch", ("student", "train"), ("teacher",), distill.run,
              extra=lambda ctx: ctx.transfer_fingerprint, trains=True),
         # Recovers by distillation on the teacher's outputs: it reads the teacher too.

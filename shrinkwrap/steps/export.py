@@ -18,7 +18,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     model = load_classifier(str(src))
     tokens = ctx.student_tokens(src)  # the student's own tokenizer (a trimmed one when the vocabulary was cut)
     length = min(bench.sequence_length, ctx.student_length)  # the student never reads more
-    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, length)[: bench.batch_size],
+    timing_batch = collate(encode(tokens.tokenizer, ctx.data.test, length, truncation=ctx.recipe.data.truncation)[: bench.batch_size],
                            tokens.pad_id, length=length)
 
     info = export_checked(model, tokens.encoded["test"], tokens.pad_id, timing_batch, cfg, bench.threads, out)

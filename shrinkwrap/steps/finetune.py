@@ -1,7 +1,8 @@
 """Teacher: fine-tune a pre-trained encoder with a fresh classification head, one run per seed.
 
 Never from scratch: the encoder always comes from `teacher.base`. Runs that degenerate are stopped
-early and the next seed is tried; the best run on validation is kept.
+early and the next seed is tried; the best run on validation is kept. With teacher.trained, `base` is
+already a fine-tuned classifier: it is copied as is (checked and matched to the data by preflight).
 """
 from __future__ import annotations
 
@@ -11,6 +12,7 @@ import numpy as np
 import torch
 from torch.nn import functional as F
 
+from shrinkwrap import distributed
 from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.errors import StepFailed
 from shrinkwrap.models import load_classifier, save_classifier
@@ -24,8 +26,23 @@ def class_weights(labels: np.ndarray, n_classes: int) -> torch.Tensor:
     return torch.tensor(compute_class_weight("balanced", classes=np.arange(n_classes), y=labels), dtype=torch.float32)
 
 
+def as_is(ctx, out: Path) -> dict:
+    """The user's own fine-tuned classifier, copied byte for byte, with where it came from."""
+    from shrinkwrap.trained import copy_teacher
+
+    if not distributed.is_main():  # nothing to train: the main process copies
+        return {}
+    copied = copy_teacher(Path(ctx.base), ctx.tokenizer, out)
+    if copied["weights_sha256"] != ctx.teacher_weights:
+        raise StepFailed(f"teacher: the weights in {ctx.base} changed while the run was starting — run it again")
+    return {"trained": "used as is", "source": ctx.recipe.teacher.base, "source_folder": str(Path(ctx.base).resolve()),
+            **copied, "label_names": list(ctx.data.label_names)}
+
+
 def run(ctx, src: None, out: Path) -> dict:
     cfg = ctx.recipe.teacher
+    if cfg.trained:
+        return as_is(ctx, out)
     n_classes = len(ctx.data.label_names)
     weight = class_weights(ctx.data.train.labels, n_classes) if cfg.class_weights else None
 

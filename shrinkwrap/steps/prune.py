@@ -11,15 +11,16 @@ from __future__ import annotations
 from pathlib import Path
 
 from shrinkwrap.distillation import fit_to_teacher, soft_targets, student_settings
-from shrinkwrap.models import encoder_layers, load_classifier, save_classifier
-from shrinkwrap.pruning import importance, least_important, neurons_to_remove, remove_heads, remove_neurons
+from shrinkwrap.models import load_classifier, save_classifier
+from shrinkwrap.pruning import (ffn_width, importance, least_important, neurons_to_remove, remove_heads,
+                                remove_neurons)
 
 
 def _shape(model) -> dict:
-    owner, name = encoder_layers(model)
-    layer = getattr(owner, name)[0]
-    return {"heads_per_layer": layer.attention.self.num_attention_heads,
-            "intermediate_size": layer.intermediate.dense.out_features,
+    pruned = (model.config.pruned_heads or {})
+    removed = {len(v) for v in pruned.values()} or {0}
+    return {"heads_per_layer": model.config.num_attention_heads - max(removed),
+            "intermediate_size": ffn_width(model),
             "parameters": sum(p.numel() for p in model.parameters())}
 
 
@@ -29,7 +30,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     model = load_classifier(str(src))
     n = min(cfg.importance_texts, len(ctx.data.train))
     head_scores, neuron_scores = importance(model, tokens.encoded["train"][:n], ctx.data.train.labels[:n],
-                                            tokens.pad_id, st.batch_size)
+                                            tokens.pad_id, st.batch_size, heads_too=cfg.heads_removed > 0)
     before = _shape(model)
     heads = least_important(head_scores, cfg.heads_removed)
     neurons = least_important(neuron_scores, neurons_to_remove(before["intermediate_size"], cfg.neurons_removed_share))

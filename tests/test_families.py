@@ -1,0 +1,241 @@
+"""Every common encoder family through the whole chain, from a user's own classifier (teacher.trained):
+kept layers, pruning, vocabulary trimming, PyTorch int8, ONNX export with parity, fusion, ONNX int8, the
+artifact, predict and bench. Tiny random models built offline from transformers' own config classes, with
+the bundled WordPiece tokenizer (conftest.tiny_base does the same for BERT): no downloads.
+
+The teacher is a random classifier used as is, so accuracies mean nothing here; what is checked is that
+each step runs, and what it must prove (parity, a valid graph, the artifact's predictions)."""
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from conftest import bundled_path, keyword_rows, tiny_recipe, write_csv, write_recipe
+
+LABELS = ["outage", "login", "refund"]  # not sorted: the run must follow the model's order
+FAMILIES = ["bert", "roberta", "xlm-roberta", "electra", "mpnet", "distilbert", "deberta-v2"]
+HEADS_PRUNABLE = {"bert", "roberta", "xlm-roberta", "electra", "distilbert"}
+ATTENTION_FUSED = {"bert", "roberta", "xlm-roberta", "electra", "distilbert"}  # ONNX Runtime's bert fusions
+
+
+def tiny_config(family: str, vocab_size: int):
+    import transformers as T
+
+    labels = dict(num_labels=len(LABELS), id2label=dict(enumerate(LABELS)), label2id={n: i for i, n in enumerate(LABELS)})
+    common = dict(vocab_size=vocab_size, hidden_size=32, num_hidden_layers=4, num_attention_heads=2,
+                  intermediate_size=64, **labels)
+    # RoBERTa-type position ids start after the pad id: two more positions than tokens. The WordPiece
+    # tokenizer's [PAD] is id 0, so pad_token_id is set to it.
+    roberta = dict(max_position_embeddings=34, pad_token_id=0, type_vocab_size=1)
+    return {
+        "bert": lambda: T.BertConfig(max_position_embeddings=32, **common),
+        "roberta": lambda: T.RobertaConfig(**roberta, **common),
+        "xlm-roberta": lambda: T.XLMRobertaConfig(**roberta, **common),
+        "electra": lambda: T.ElectraConfig(embedding_size=16, max_position_embeddings=32, **common),
+        # MPNet's forward looks its relative position bias up in 32 buckets whatever the config says.
+        "mpnet": lambda: T.MPNetConfig(max_position_embeddings=34, pad_token_id=0, **common),
+        "distilbert": lambda: T.DistilBertConfig(vocab_size=vocab_size, dim=32, n_layers=4, n_heads=2, hidden_dim=64,
+                                                 max_position_embeddings=32, **labels),
+        "deberta-v2": lambda: T.DebertaV2Config(max_position_embeddings=32, relative_attention=True,
+                                                pos_att_type=["p2c", "c2p"], position_buckets=8, type_vocab_size=0,
+                                                pad_token_id=0, **common),
+    }[family]()
+
+
+def own_classifier(family: str, folder):
+    """A user's 'fine-tuned' classifier folder of this family: a random tiny one with a head and label names."""
+    import torch
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(bundled_path())
+    torch.manual_seed(0)
+    AutoModelForSequenceClassification.from_config(tiny_config(family, tok.vocab_size)).save_pretrained(
+        folder, safe_serialization=True)
+    tok.save_pretrained(folder)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def family_data(tmp_path_factory):
+    return write_csv(tmp_path_factory.mktemp("family-data") / "tickets.csv", keyword_rows(60))
+
+
+@pytest.mark.parametrize("family", FAMILIES)
+def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
+    import onnx
+
+    from shrinkwrap.artifact import load
+    from shrinkwrap.cli import main, run_recipe
+    from shrinkwrap.data import load_dataset
+    from shrinkwrap.recipe import load_recipe
+
+    base = own_classifier(family, tmp_path / "own")
+    raw = tiny_recipe(base, family_data,
+                      student={"epochs": 1},
+                      prune={"enabled": True, "heads_removed": 1 if family in HEADS_PRUNABLE else 0,
+                             "neurons_removed_share": 0.25, "epochs": 0, "importance_texts": 16},
+                      trim_vocab={"enabled": True},
+                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+    raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
+    recipe = load_recipe(write_recipe(tmp_path / "r.yaml", raw))
+    results = run_recipe(recipe, tmp_path / "run", quiet=True)
+    steps = {s["name"]: s for s in results["steps"]}
+    assert list(steps) == ["teacher", "student", "student-pruned", "student-trimmed", "student-int8",
+                           "student-onnx", "student-onnx-int8"]
+    assert results["data"]["label_names"] == LABELS
+
+    pruned = steps["student-pruned"]["info"]
+    assert pruned["after"]["heads_per_layer"] == (1 if family in HEADS_PRUNABLE else 2)
+    assert pruned["after"]["intermediate_size"] == 48
+    assert steps["student-trimmed"]["info"]["vocab_size"] < steps["student-trimmed"]["info"]["vocab_size_before"]
+
+    export = steps["student-onnx"]["info"]
+    assert export["parity"]["max_abs_logit_diff"] <= 1e-4 and export["parity"]["label_mismatches"] == 0
+    assert export["fusion"]["attention_fused"] == (family in ATTENTION_FUSED)
+    if family not in ATTENTION_FUSED:
+        assert family in export["fusion"]["note"]
+
+    artifact = tmp_path / "run" / "artifact"
+    onnx.checker.check_model(str(artifact / "model.onnx"), full_check=True)  # the shipped int8 graph is valid ONNX
+    test = load_dataset(recipe.data, recipe.resolve(recipe.data.path), "test").test
+    rows = load(artifact).predict(test.texts)
+    assert [r["label"] for r in rows] == [LABELS[i] for i in steps["student-onnx-int8"]["predictions"]]
+    out = tmp_path / "bench.json"
+    assert main(["bench", str(artifact), "--repeats", "3", "--warmup", "0", "--warmup-time", "0", "--min-time", "0",
+                 "--sequence-length", "16", "--out", str(out)]) == 0
+    assert json.loads(out.read_text())
+
+
+def _refusal(tmp_path, base, data, **sections):
+    """The one-line refusal of a recipe before anything runs (prepare writes nothing)."""
+    from shrinkwrap.errors import UserError
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import run_chain
+
+    raw = tiny_recipe(base, data, **sections)
+    raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
+    with pytest.raises(UserError) as err:
+        run_chain(load_recipe(write_recipe(tmp_path / "r.yaml", raw)), tmp_path / "run", quiet=True)
+    assert not (tmp_path / "run").exists()
+    assert "\n" not in str(err.value)
+    return str(err.value)
+
+
+@pytest.mark.parametrize("family", ["mpnet", "deberta-v2"])
+def test_head_pruning_is_refused_before_the_run_where_it_cannot_apply(family, tmp_path, family_data):
+    base = own_classifier(family, tmp_path / "own")
+    message = _refusal(tmp_path, base, family_data, prune={"enabled": True, "heads_removed": 1})
+    assert f"step student-pruned cannot remove attention heads of a {family!r} model" in message
+
+
+def test_layers_shared_across_depth_are_refused_for_kept_layers(tmp_path, family_data):
+    import torch
+    from transformers import AlbertConfig, AlbertForSequenceClassification, AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(bundled_path())
+    torch.manual_seed(0)
+    config = AlbertConfig(vocab_size=tok.vocab_size, embedding_size=16, hidden_size=32, num_hidden_layers=4,
+                          num_attention_heads=2, intermediate_size=64, max_position_embeddings=32,
+                          num_labels=3, id2label=dict(enumerate(LABELS)), label2id={n: i for i, n in enumerate(LABELS)})
+    AlbertForSequenceClassification(config).save_pretrained(tmp_path / "albert", safe_serialization=True)
+    tok.save_pretrained(tmp_path / "albert")
+    message = _refusal(tmp_path, tmp_path / "albert", family_data)
+    assert "'albert' model shares one layer's weights" in message and "step student" in message
+
+
+def test_trimming_a_bpe_vocabulary_is_refused_naming_the_family(tmp_path, family_data):
+    import torch
+    from tokenizers import Tokenizer, models, pre_tokenizers, trainers
+    from transformers import PreTrainedTokenizerFast, RobertaConfig, RobertaForSequenceClassification
+
+    bpe = Tokenizer(models.BPE(unk_token="<unk>"))
+    bpe.pre_tokenizer = pre_tokenizers.Whitespace()
+    bpe.train_from_iterator([t for t, _ in keyword_rows(60)],
+                            trainers.BpeTrainer(vocab_size=200, special_tokens=["<pad>", "<s>", "</s>", "<unk>"]))
+    tok = PreTrainedTokenizerFast(tokenizer_object=bpe, pad_token="<pad>", bos_token="<s>", eos_token="</s>",
+                                  unk_token="<unk>")
+    torch.manual_seed(0)
+    config = RobertaConfig(vocab_size=bpe.get_vocab_size(), hidden_size=32, num_hidden_layers=2, num_attention_heads=2,
+                           intermediate_size=64, max_position_embeddings=34, pad_token_id=0, type_vocab_size=1,
+                           num_labels=3, id2label=dict(enumerate(LABELS)), label2id={n: i for i, n in enumerate(LABELS)})
+    RobertaForSequenceClassification(config).save_pretrained(tmp_path / "bpe", safe_serialization=True)
+    tok.save_pretrained(tmp_path / "bpe")
+    message = _refusal(tmp_path, tmp_path / "bpe", family_data, trim_vocab={"enabled": True})
+    assert "tokenizer of the 'roberta' teacher is BPE; step student-trimmed rebuilds WordPiece" in message
+
+
+def test_models_are_fed_only_the_inputs_they_take(tmp_path, family_data):
+    """DistilBERT's forward takes no token_type_ids and RoBERTa has one segment embedding, while the bundled
+    WordPiece tokenizer gives second-segment ids of 1 for pairs: both read pairs without them."""
+    from shrinkwrap.models import load_tokenizer, model_inputs
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import run_chain
+
+    assert "token_type_ids" in model_inputs(tiny_config("bert", 100))
+    for family in ("distilbert", "roberta", "deberta-v2"):
+        assert model_inputs(tiny_config(family, 100)) == ["input_ids", "attention_mask"]
+    rows = [(t.split()[0], " ".join(t.split()[1:]), y) for t, y in keyword_rows(60)]
+    data = write_csv(tmp_path / "pairs.csv", rows, header=("subject", "body", "label"))
+    for family in ("distilbert", "roberta"):
+        base = own_classifier(family, tmp_path / family)
+        assert "token_type_ids" not in load_tokenizer(str(base))("a", "b")
+        raw = tiny_recipe(base, data, bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+        raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
+        raw["data"].update(text="subject", text_pair="body")
+        results = run_chain(load_recipe(write_recipe(tmp_path / f"{family}.yaml", raw)), tmp_path / f"run-{family}",
+                            quiet=True, until="teacher")
+        assert len(results["steps"][0]["predictions"]) == results["data"]["sizes"]["test"]
+
+
+def test_a_graph_whose_if_branch_reads_a_later_value_is_sorted(tmp_path):
+    """What ONNX Runtime's quantiser leaves in DeBERTa-v2's graph, in miniature: an If whose branch reads an
+    outer value that a later node defines. onnx.checker (the reference) refuses it; sorted, it passes and
+    ONNX Runtime computes the same."""
+    import numpy as np
+    import onnx
+    from onnx import TensorProto, helper
+
+    from shrinkwrap.onnx_ops import sort_topologically
+    from shrinkwrap.onnx_tools import session
+
+    def branch(name):
+        return helper.make_graph([helper.make_node("Identity", ["doubled"], [f"{name}_out"])], name, [],
+                                 [helper.make_tensor_value_info(f"{name}_out", TensorProto.FLOAT, [1])])
+
+    nodes = [helper.make_node("If", ["cond"], ["y"], then_branch=branch("then"), else_branch=branch("else")),
+             helper.make_node("Add", ["x", "x"], ["doubled"]),
+             helper.make_node("Constant", [], ["cond"], value=helper.make_tensor("c", TensorProto.BOOL, [], [True]))]
+    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1])],
+                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1])])
+    path = tmp_path / "m.onnx"
+    onnx.save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 18)]), str(path))
+    with pytest.raises(onnx.checker.ValidationError, match="topologically sorted"):
+        onnx.checker.check_model(str(path), full_check=True)
+    sort_topologically(path)
+    onnx.checker.check_model(str(path), full_check=True)
+    assert [n.op_type for n in onnx.load(str(path)).graph.node] == ["Add", "Constant", "If"]
+    out = session(path, 1).run(None, {"x": np.array([1.5], dtype=np.float32)})[0]
+    assert out.tolist() == [3.0]
+
+
+def test_a_family_s_encoder_is_fine_tuned_too(tmp_path, keyword_csv):
+    """teacher.trained: false on a DistilBERT encoder (no head): the fresh head is fine-tuned, fed only the
+    inputs DistilBERT takes though the WordPiece tokenizer gives segment ids."""
+    import torch
+    from transformers import AutoTokenizer, DistilBertModel
+
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import run_chain
+
+    tok = AutoTokenizer.from_pretrained(bundled_path())
+    torch.manual_seed(0)
+    config = tiny_config("distilbert", tok.vocab_size)
+    DistilBertModel(config).save_pretrained(tmp_path / "encoder", safe_serialization=True)
+    tok.save_pretrained(tmp_path / "encoder")
+    raw = tiny_recipe(tmp_path / "encoder", keyword_csv, teacher={"max_length": 30},
+                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+    results = run_chain(load_recipe(write_recipe(tmp_path / "r.yaml", raw)), tmp_path / "run", quiet=True,
+                        until="teacher")
+    info = results["steps"][0]["info"]
+    assert info["kept_seed"] == 0 and info["seeds"][0]["steps"] > 0
