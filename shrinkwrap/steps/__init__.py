@@ -47,7 +47,7 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     last = "student-trimmed" if trimmed else "student-pruned" if pruned else "student"
     return [
         Step("teacher", "pytorch", ("data", "teacher", "train"), (), finetune.run, trains=True),
-        Step("student", "pytorch", ("student", "train"), ("teacher",), distill.run,
+        Step("student", "pytorch", ("student", "augment", "train"), ("teacher",), distill.run,
              extra=lambda ctx: ctx.transfer_fingerprint, trains=True),
         # Recovers by distillation on the teacher's outputs: it reads the teacher too.
         Step("student-pruned", "pytorch", ("prune", "train"), ("student", "teacher"), prune.run,
