@@ -242,3 +242,27 @@ def test_student_stops_on_agreement_and_scales_its_epochs(teacher_done, tiny_bas
     assert scaled_epochs(1_000_000) == 3
     assert info["epochs"] == scaled_epochs(results["data"]["sizes"]["train"]) >= len(curve)
     assert info["epochs_from"].startswith("scaled")
+
+
+def test_pair_copies_with_swap_are_encoded_as_pairs(tmp_path, tiny_base):
+    from conftest import keyword_rows, write_csv
+    from shrinkwrap.preflight import prepare
+    from shrinkwrap.recipe import load_recipe
+
+    rows = [(" ".join(t.split()[:3]), " ".join(t.split()[3:]), y) for t, y in keyword_rows(60)]
+    data = write_csv(tmp_path / "pairs.csv", rows, header=("first", "second", "label"))
+    recipe = tiny_recipe(tiny_base, data, augment={"copies": 3, "transforms": ["swap", "mask"]})
+    recipe["data"].update(text="first", text_pair="second")
+    ctx = prepare(load_recipe(write_recipe(tmp_path / "r.yaml", recipe)), tmp_path / "run", quiet=True)
+    split, source, encoded = ctx.augmented()
+    train = ctx.data.train
+    swapped = [j for j, i in enumerate(source)
+               if split.texts[j].split() != train.texts[i].split()
+               and len(split.texts[j].split()) == len(train.pairs[i].split())
+               and all(m in ("[MASK]", o) for m, o in zip(split.texts[j].split(), train.pairs[i].split()))]
+    assert swapped and len(swapped) < len(split)
+    j = swapped[0]
+    # the copy is read as a pair, its first text in segment 0 (checked against the tokenizer's own pair call)
+    want = ctx.tokenizer(split.texts[j], split.pairs[j], truncation=True, max_length=32)
+    assert encoded[j]["input_ids"] == want["input_ids"] and encoded[j]["token_type_ids"] == want["token_type_ids"]
+    assert set(want["token_type_ids"]) == {0, 1}
