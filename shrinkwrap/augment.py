@@ -42,21 +42,20 @@ class Vocabulary:
             for prev, word in zip([START] + words, words):
                 followers[prev].append(word)
         self.followers, self.every = dict(followers), every
+        # the distinct words of each pool, so that "is there another word?" costs no pass over the pool
+        self.distinct = {prev: set(pool) for prev, pool in self.followers.items()}
+        self.every_distinct = set(every)
 
     def draw(self, prev: str, word: str, rng: np.random.Generator) -> str:
         """Another word that follows `prev` in the training texts, by frequency; failing that, any word."""
-        pool = self.followers.get(prev, ())
-        if any(w != word for w in pool):
-            while True:  # a pool that holds another word ends this quickly
-                pick = pool[rng.integers(len(pool))]
-                if pick != word:
-                    return pick
-        if not any(w != word for w in self.every):
-            return word
-        while True:
-            pick = self.every[rng.integers(len(self.every))]
-            if pick != word:
-                return pick
+        for pool, distinct in ((self.followers.get(prev, ()), self.distinct.get(prev, set())),
+                               (self.every, self.every_distinct)):
+            if len(distinct) > 1 or (distinct and word not in distinct):
+                while True:  # drawn by frequency among the pool's other words
+                    pick = pool[rng.integers(len(pool))]
+                    if pick != word:
+                        return pick
+        return word
 
 
 def words_rule(words: list[str], vocab: Vocabulary, mask_token: str, rng: np.random.Generator,
