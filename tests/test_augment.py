@@ -266,3 +266,24 @@ def test_pair_copies_with_swap_are_encoded_as_pairs(tmp_path, tiny_base):
     want = ctx.tokenizer(split.texts[j], split.pairs[j], truncation=True, max_length=32)
     assert encoded[j]["input_ids"] == want["input_ids"] and encoded[j]["token_type_ids"] == want["token_type_ids"]
     assert set(want["token_type_ids"]) == {0, 1}
+
+
+def test_mask_needs_a_mask_token(tmp_path, tiny_base, keyword_csv):
+    from transformers import AutoTokenizer
+
+    from shrinkwrap.preflight import prepare
+    from shrinkwrap.recipe import load_recipe
+
+    base = tmp_path / "base"
+    shutil.copytree(tiny_base, base)
+    tok = AutoTokenizer.from_pretrained(base)
+    tok.mask_token, tok.unk_token = None, None
+    tok.save_pretrained(base)
+    for transforms, refused in ((["mask", "ngram"], True), (["ngram"], False)):
+        recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(
+            base, keyword_csv, augment={"copies": 1, "transforms": transforms})))
+        if refused:
+            with pytest.raises(UserError, match="augment.transforms lists mask, but the teacher's tokenizer has no mask"):
+                prepare(recipe, tmp_path / "run")
+        else:
+            assert prepare(recipe, tmp_path / "run", quiet=True).augmented()[0].texts
