@@ -40,6 +40,7 @@ class Context:
     teacher_weights: Optional[str] = None        # with teacher.trained: the fingerprint of the weights used as is
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[tuple, Tokens] = field(default_factory=dict)
+    _augmented: Optional[tuple] = None
 
     @property
     def transfer_fingerprint(self) -> Optional[str]:
@@ -92,3 +93,18 @@ class Context:
         """The transfer texts a batch at a time."""
         if self.transfer is not None:
             yield from self.transfer.batches(self.run_dir / "cache", size, quiet=self.quiet)
+
+    def augmented(self):
+        """(copies, their training-text indices, their encodings) of augment: (None, None, []) without it.
+        Made from the training split only, once per run."""
+        a = self.recipe.augment
+        if not a.copies:
+            return None, None, []
+        if self._augmented is None:
+            from shrinkwrap.augment import augment_split
+            from shrinkwrap.batches import encode
+
+            mask = self.tokenizer.mask_token or self.tokenizer.unk_token
+            split, source = augment_split(self.data.train, a.copies, a.transforms, a.seed, mask)
+            self._augmented = (split, source, encode(self.tokenizer, split, self.recipe.teacher.max_length))
+        return self._augmented

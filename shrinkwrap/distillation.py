@@ -11,6 +11,7 @@ mapped layers. The teacher's outputs are computed once, cached on disk, and neve
 from __future__ import annotations
 
 import json
+import math
 import shutil
 import time
 import warnings
@@ -131,12 +132,17 @@ def teacher_outputs(ctx, teacher, examples, layer_map: list[int], key: str, hidd
 
 def soft_targets(ctx, teacher, layer_map: list[int], hidden: bool, attention: bool):
     """(examples, labels, teacher outputs, cache info) to distil on: the labelled training texts first,
-    then the transfer texts (label -1: soft targets only), with the teacher's outputs on them."""
+    then the transfer texts, then the augmented copies of the training texts (label -1 for both: soft
+    targets only), with the teacher's outputs on them."""
     transfer = ctx.transfer_examples()
-    examples = Joined(ctx.encoded["train"], transfer)
-    labels = np.concatenate([ctx.data.train.labels, np.full(len(transfer), -1, dtype=np.int64)])
-    key = sha256_json({"teacher": ctx.fingerprints["teacher"], "data": ctx.data_fingerprint,
-                       "transfer": ctx.transfer_fingerprint, "layers": layer_map if (hidden or attention) else None})
+    _, _, augmented = ctx.augmented()
+    examples = Joined(ctx.encoded["train"], transfer, augmented)
+    labels = np.concatenate([ctx.data.train.labels, np.full(len(transfer) + len(augmented), -1, dtype=np.int64)])
+    parts = {"teacher": ctx.fingerprints["teacher"], "data": ctx.data_fingerprint,
+             "transfer": ctx.transfer_fingerprint, "layers": layer_map if (hidden or attention) else None}
+    if ctx.recipe.augment.copies:  # without augmentation the key stays what it was before the section existed
+        parts["augment"] = ctx.recipe.augment.model_dump(mode="json")
+    key = sha256_json(parts)
     targets, cache_info = teacher_outputs(ctx, teacher, examples, layer_map, key, hidden, attention)
     if ctx.student_length != ctx.recipe.teacher.max_length:
         # The teacher answers on the whole text it reads; a student that reads fewer tokens learns to
@@ -149,7 +155,7 @@ def soft_targets(ctx, teacher, layer_map: list[int], hidden: bool, attention: bo
 
 def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, layer_map: list[int],
                    s: TrainSettings, hidden_weight: float, attention_weight: float, out: Path, step: str,
-                   checkpoint_every: int):
+                   checkpoint_every: int, reference: np.ndarray | None = None):
     """Trains `student` in place on the teacher's `targets` (student.temperature and student.alpha; the
     hidden-state and attention terms when their weights are above 0), resumable from out/checkpoint."""
     cfg = ctx.recipe.student
@@ -184,14 +190,32 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
         validation = ctx.tokens_of(ctx.outputs["teacher"], ctx.student_length).encoded["validation"]
         result = fit(student, examples, labels, validation, ctx.data.validation.labels, loss_fn, s,
                      ctx.pad_id, desc=step, checkpoint=Checkpoint(out / CHECKPOINT_DIR, ctx.fingerprints[step],
-                                                      checkpoint_every, log=ctx.log))
+                                                      checkpoint_every, log=ctx.log), reference=reference)
     if hasattr(student, PROJECTION):
         delattr(student, PROJECTION)
     return result
+
+
+def teacher_predictions(ctx, teacher) -> np.ndarray:
+    """The teacher's class for each validation text: what the student's `agreement` is measured against."""
+    from shrinkwrap.train import predict_logits
+
+    return predict_logits(teacher, ctx.encoded["validation"], ctx.pad_id).argmax(1)
+
+
+# Texts distilled on per run that the default number of student epochs aims at (a project rule of thumb,
+# after the common practice of fixing the number of updates rather than of epochs: a set 10 times
+# smaller gets more passes over it, within the bounds).
+SCALED_TEXTS, SCALED_MIN, SCALED_MAX = 30_000, 3, 10
+
+
+def scaled_epochs(texts: int) -> int:
+    """student.epochs when the recipe leaves it out: ceil(30,000 / texts) within 3..10."""
+    return min(SCALED_MAX, max(SCALED_MIN, math.ceil(SCALED_TEXTS / max(1, texts))))
 
 
 def student_settings(ctx, epochs: int, learning_rate: float) -> TrainSettings:
     """Training settings of a distillation run: the student section's, with its own epochs and rate."""
     # collapse_share 1 = off: a student that mimics a teacher is not judged against the majority class
     return settings_from(ctx.recipe.student, ctx.recipe.train, epochs=epochs, learning_rate=learning_rate,
-                         metric=ctx.recipe.teacher.metric, collapse_share=1.0)
+                         metric=ctx.recipe.student.metric or ctx.recipe.teacher.metric, collapse_share=1.0)

@@ -38,6 +38,9 @@ def prepare(recipe: Recipe, out: Path, quiet: bool = False) -> Context:
         from shrinkwrap.vocab import check_trim
 
         check_trim(tokenizer, where, getattr(config, "model_type", None))
+    if recipe.augment.copies and "mask" in recipe.augment.transforms and not (tokenizer.mask_token or tokenizer.unk_token):
+        raise UserError(f"{where}: augment.transforms lists mask, but the teacher's tokenizer has no mask (or unknown) "
+                        f"token to put in a word's place — leave mask out")
     data_path = recipe.resolve(recipe.data.path)
     if not data_path.exists():
         raise UserError(f"{where}: data.path = {recipe.data.path!r} — no such file or folder ({data_path})")

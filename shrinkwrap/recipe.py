@@ -98,7 +98,11 @@ class StudentConfig(_Section):
     max_length: Optional[int] = Field(None, ge=8, le=4096, description="tokens per input the student and the artifact "
                                       "read (default: teacher.max_length, at most that): input length is one of the "
                                       "strongest levers on latency")
-    epochs: int = Field(3, ge=1, description="distillation epochs")
+    epochs: Optional[int] = Field(None, ge=1, description="distillation epochs (default: scaled to the texts "
+                                  "distilled on, n: ceil(30,000 / n) kept within 3–10, so a small training set gets more)")
+    metric: Optional[Literal["accuracy", "macro_f1", "agreement"]] = Field(
+        None, description="validation figure that picks the best epoch and stops early: `agreement` is the share "
+        "of validation texts given the teacher's label (default: teacher.metric)")
     learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
     batch_size: int = Field(16, ge=1, description="texts per optimizer step")
     weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay")
@@ -161,6 +165,25 @@ class TrimVocabConfig(_Section):
     enabled: bool = Field(False, description="run step student-trimmed: keep only the vocabulary pieces (and special "
                           "tokens) that the training and transfer texts are split into, with their embedding rows; "
                           "the tokenizer becomes a smaller one that splits those texts exactly as before")
+
+
+class AugmentConfig(_Section):
+    """Augmented copies of the training texts in the transfer set (Tang et al. 2019); off by default."""
+    copies: int = Field(0, ge=0, le=100, description="augmented copies of each training text the teacher labels "
+                        "softly and the student distils on (0 = none); they never enter validation or test")
+    transforms: list[Literal["mask", "replace", "ngram", "swap"]] = Field(
+        default_factory=lambda: ["mask", "replace", "ngram"], min_length=1,
+        description="mask: words become the mask token; replace: words become others seen in the same slot of the "
+        "training texts; ngram: only a few consecutive words are kept; swap (pairs only): the two texts change "
+        "places — list it only when the label does not depend on their order")
+    seed: int = Field(0, description="seed of the copies (the same seed gives the same copies)")
+
+    @field_validator("transforms")
+    @classmethod
+    def _unique(cls, v: list[str]) -> list[str]:
+        if len(set(v)) != len(v):
+            raise ValueError(f"{next(t for t in v if v.count(t) > 1)} is repeated")
+        return v
 
 
 class TrainConfig(_Section):
@@ -313,6 +336,7 @@ class Recipe(_Section):
     data: DataConfig
     teacher: TeacherConfig = Field(default_factory=TeacherConfig)
     student: StudentConfig = Field(default_factory=StudentConfig)
+    augment: AugmentConfig = Field(default_factory=AugmentConfig)
     train: TrainConfig = Field(default_factory=TrainConfig)
     prune: PruneConfig = Field(default_factory=PruneConfig)
     trim_vocab: TrimVocabConfig = Field(default_factory=TrimVocabConfig)
@@ -334,6 +358,9 @@ class Recipe(_Section):
             if want is not None and want != have:
                 raise ValueError(f"budget.{key} = {want} but bench.{key} = {have} — the latency limits are meant at "
                                  f"the shape the benchmark measures; make them equal")
+        if "swap" in self.augment.transforms and not self.data.text_pair:
+            raise ValueError("augment.transforms lists swap, but data.text_pair is not set — swap exchanges the two "
+                             "texts of a pair")
         return self
 
     def resolve(self, path: str) -> Path:

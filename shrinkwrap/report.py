@@ -135,6 +135,10 @@ def cautions(results: dict, budget=None) -> list[str]:
     if overlap:
         out.append(f"{overlap} transfer texts also occur in the test split: the student saw the teacher's answers "
                    f"on them, so its test accuracy is optimistic")
+    overlap = (results.get("data") or {}).get("augmented_in_test")
+    if overlap:
+        out.append(f"{overlap} augmented copies of training texts are also test texts: the student saw the "
+                   f"teacher's answers on them, so its test accuracy is optimistic")
     for s in results["steps"]:
         rate = s["info"].get("test_oov_rate") if isinstance(s.get("info"), dict) else None
         if rate is not None and rate > OOV_CAUTION:

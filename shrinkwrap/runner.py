@@ -186,6 +186,11 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         # Transfer texts the test split also holds: the student is taught the teacher's answers on them.
         test_texts = set(ctx.data.test.texts)
         results["data"]["transfer_in_test"] = sum(t in test_texts for batch in ctx.transfer_batches() for t in batch)
+    if recipe.augment.copies and distributed.is_main():
+        from shrinkwrap.augment import in_split
+
+        # An augmented copy that happens to be a test text: the student is taught the teacher's answer on it.
+        results["data"]["augmented_in_test"] = in_split(ctx.augmented()[0], ctx.data.test)
     teacher = None
     for step in steps:
         record = run_step(ctx, step)

@@ -116,14 +116,19 @@ def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResu
 
 def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict], val_labels: np.ndarray,
         loss_fn: LossFn, s: TrainSettings, pad_id: int, desc: str = "training",
-        checkpoint: Optional[Checkpoint] = None) -> FitResult:
+        checkpoint: Optional[Checkpoint] = None, reference: Optional[np.ndarray] = None) -> FitResult:
     """Trains `model` in place; on return it holds the weights of the best validation epoch.
 
     `train` holds encoded examples (a list, or rows on disk read a batch at a time: see batches.take);
     `train_labels` their class ids, -1 where an example has none (a distillation transfer text).
 
     With `checkpoint`, the whole training state is saved every `checkpoint.every` steps and at each epoch
-    end, and a run that finds a saved state continues from it exactly where the killed run was."""
+    end, and a run that finds a saved state continues from it exactly where the killed run was.
+
+    With `reference` (a teacher's predicted class of each validation example), each epoch's entry also
+    holds `agreement`, the share of validation predictions equal to it: `s.metric` may then be "agreement"."""
+    if s.metric == "agreement" and reference is None:
+        raise RuntimeError("metric agreement needs the teacher's validation predictions (reference)")
     seed_everything(s.seed)
     result = FitResult()
     started = time.perf_counter()
@@ -219,6 +224,8 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
             top_share = np.bincount(preds, minlength=n_classes).max() / len(preds)
             entry = {"epoch": epoch, "step": result.steps, "train_loss": float(np.mean(losses[-steps_per_epoch:])),
                      "accuracy": metrics["accuracy"], "macro_f1": metrics["macro_f1"]}
+            if reference is not None:
+                entry["agreement"] = float(np.mean(preds == reference)) if len(preds) else 0.0
             result.curve.append(entry)
             if distributed.is_main() and not on_terminal:
                 print(f"{desc}: epoch {epoch}/{s.epochs}, training loss {entry['train_loss']:.4f}, validation "

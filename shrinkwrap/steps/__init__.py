@@ -49,7 +49,7 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
         # A teacher used as is (teacher.trained) is those very weights: they are part of its fingerprint.
         Step("teacher", "pytorch", ("data", "teacher", "train"), (), finetune.run, trains=True,
              extra=lambda ctx: ctx.teacher_weights),
-        Step("student", "pytorch", ("student", "train"), ("teacher",), distill.run,
+        Step("student", "pytorch", ("student", "augment", "train"), ("teacher",), distill.run,
              extra=lambda ctx: ctx.transfer_fingerprint, trains=True),
         # Recovers by distillation on the teacher's outputs: it reads the teacher too.
         Step("student-pruned", "pytorch", ("prune", "train"), ("student", "teacher"), prune.run,

@@ -6,7 +6,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from shrinkwrap.distillation import build_student, fit_to_teacher, soft_targets, student_settings
+from shrinkwrap.distillation import (build_student, fit_to_teacher, scaled_epochs, soft_targets, student_settings,
+                                     teacher_predictions)
 from shrinkwrap.models import load_classifier, save_classifier
 
 
@@ -16,11 +17,13 @@ def run(ctx, src: Path, out: Path) -> dict:
     student, layer_map = build_student(ctx, teacher)
     examples, labels, targets, cache_info = soft_targets(ctx, teacher, layer_map, cfg.hidden_weight > 0,
                                                          cfg.attention_weight > 0)
+    reference = teacher_predictions(ctx, teacher)
     del teacher
 
-    s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
+    epochs = cfg.epochs or scaled_epochs(len(examples))
+    s = student_settings(ctx, epochs, cfg.learning_rate)
     result = fit_to_teacher(ctx, student, examples, labels, targets, layer_map, s, cfg.hidden_weight,
-                            cfg.attention_weight, out, "student", cfg.checkpoint_every_steps)
+                            cfg.attention_weight, out, "student", cfg.checkpoint_every_steps, reference)
 
     save_classifier(student, ctx.tokenizer, out)
     epochs_run = result.curve[-1]["epoch"] if result.curve else 0
@@ -29,5 +32,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     saved = per_pass * (epochs_run - 1 if cache_info["cache"] == "miss" else epochs_run)
     return {"init": cfg.init, "layer_map": layer_map, "curve": result.curve, "best_epoch": result.best_epoch,
             "seconds": round(result.seconds, 2), "transfer_texts": len(ctx.transfer or ()),
+            "augmented_texts": len(ctx.augmented()[2]), "epochs": epochs,
+            "epochs_from": "student.epochs" if cfg.epochs else f"scaled to {len(examples)} texts", "metric": s.metric,
             "teacher_outputs": cache_info | {"seconds_saved_by_cache": round(max(0.0, saved), 2)},
             "status": result.status, "reason": result.reason}
