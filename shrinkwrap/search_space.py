@@ -127,6 +127,9 @@ def load_search(path: str | Path, overrides: list[str] = ()) -> Space:
         label = ", ".join(f"{k}={json.dumps(v)}" for k, v in settings.items())
         candidate = validate_recipe(_with_settings(raw, settings), f"{where} (search candidate {label})", source)
         candidates.append(Candidate(index, settings, candidate))
+    if recipe.search.strategy == "halving" and any(c.recipe.student.epochs is None for c in candidates):
+        raise UserError(f"{where}: search.strategy = halving doubles the epochs up to student.epochs — set "
+                        f"student.epochs (it is left to scale with the data otherwise)")
     _check_against_teacher(recipe, candidates, where)
     return Space(recipe, candidates)
 
