@@ -41,9 +41,9 @@ import bbc_news  # noqa: E402
 
 TRAIN_SHARE = 0.7     # of recipes/bbc-news.yaml's split: test 0.2, validation 0.1 of the whole
 COMMON = ["prune.enabled=false", "trim_vocab.enabled=false", "quantize.enabled=false", "student.epochs=null",
-          "student.metric=agreement", "bench.repeats=5", "bench.min_time_s=0.2", "bench.warmup_s=0"]
+          "student.metric=agreement", "bench.repeats=5", "bench.timed_seconds=0.2", "bench.warm_seconds=0"]
 INTER = ["student.hidden_weight=1.0", "student.attention_weight=1.0"]
-EMBEDDINGS_FP32 = 'onnx_quantize.op_types=["MatMul","Attention"]'
+EMBEDDINGS_FP32 = 'onnx_quantize.int8_operators=["MatMul","Attention"]'
 
 
 def variants(copies: int, pairs: bool) -> dict[str, list[str]]:

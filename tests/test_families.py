@@ -76,7 +76,7 @@ def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
                       prune={"enabled": True, "heads_removed": 1 if family in HEADS_PRUNABLE else 0,
                              "neurons_removed_share": 0.25, "epochs": 0, "importance_texts": 16},
                       trim_vocab={"enabled": True},
-                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+                      bench={"repeats": 3, "warmup": 0, "warm_seconds": 0, "timed_seconds": 0})
     raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", raw))
     results = run_recipe(recipe, tmp_path / "run", quiet=True)
@@ -102,7 +102,7 @@ def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
     rows = load(artifact).predict(test.texts)
     assert [r["label"] for r in rows] == [LABELS[i] for i in steps["student-onnx-int8"]["predictions"]]
     out = tmp_path / "bench.json"
-    assert main(["bench", str(artifact), "--repeats", "3", "--warmup", "0", "--warmup-time", "0", "--min-time", "0",
+    assert main(["bench", str(artifact), "--repeats", "3", "--warmup", "0", "--warm-seconds", "0", "--timed-seconds", "0",
                  "--sequence-length", "16", "--out", str(out)]) == 0
     assert json.loads(out.read_text())
 
@@ -180,7 +180,7 @@ def test_models_are_fed_only_the_inputs_they_take(tmp_path, family_data):
     for family in ("distilbert", "roberta"):
         base = own_classifier(family, tmp_path / family)
         assert "token_type_ids" not in load_tokenizer(str(base))("a", "b")
-        raw = tiny_recipe(base, data, bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+        raw = tiny_recipe(base, data, bench={"repeats": 3, "warmup": 0, "warm_seconds": 0, "timed_seconds": 0})
         raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
         raw["data"].update(text="subject", text_pair="body")
         results = run_chain(load_recipe(write_recipe(tmp_path / f"{family}.yaml", raw)), tmp_path / f"run-{family}",
@@ -234,7 +234,7 @@ def test_a_family_s_encoder_is_fine_tuned_too(tmp_path, keyword_csv):
     DistilBertModel(config).save_pretrained(tmp_path / "encoder", safe_serialization=True)
     tok.save_pretrained(tmp_path / "encoder")
     raw = tiny_recipe(tmp_path / "encoder", keyword_csv, teacher={"max_length": 30},
-                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0})
+                      bench={"repeats": 3, "warmup": 0, "warm_seconds": 0, "timed_seconds": 0})
     results = run_chain(load_recipe(write_recipe(tmp_path / "r.yaml", raw)), tmp_path / "run", quiet=True,
                         until="teacher")
     info = results["steps"][0]["info"]

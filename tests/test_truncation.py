@@ -65,7 +65,7 @@ def test_predict_cuts_long_texts_as_the_chain_did(rule, tmp_path, tiny_run):
     shutil.copytree(tiny_run / "teacher", own, ignore=shutil.ignore_patterns("step.json", "bench.json"))
     data = write_csv(tmp_path / "long.csv", _long_rows())
     raw = tiny_recipe(own, data, student={"epochs": 1}, quantize={"enabled": False},
-                      bench={"repeats": 3, "warmup": 0, "warmup_s": 0, "min_time_s": 0, "sequence_length": 16})
+                      bench={"repeats": 3, "warmup": 0, "warm_seconds": 0, "timed_seconds": 0, "sequence_length": 16})
     raw["data"]["truncation"] = rule
     raw["teacher"] = {"base": str(own), "trained": True, "max_length": 16}
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", raw))
