@@ -316,7 +316,11 @@ class SearchConfig(_Section):
         """Dotted keys (and nested mappings, as `--set search.student.num_layers=[2,3]` makes) -> space."""
         if not isinstance(raw, dict):
             return raw
-        raw, space = dict(raw), dict(raw.pop("space", None) or {})
+        raw = dict(raw)
+        given = raw.pop("space", None)
+        if given is not None and not isinstance(given, dict):
+            raise ValueError("space: expected a mapping of key paths to lists of values")
+        space = dict(given or {})
 
         def flatten(prefix: str, node: dict) -> None:
             for k, v in node.items():
