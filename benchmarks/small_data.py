@@ -97,6 +97,16 @@ def bbc_pairs(out: Path) -> tuple[Path, list[str]]:
     return path, ["data.text=first", "data.text_pair=second", "data.label=label"]
 
 
+def write(out: Path, table: list[str], summary: dict) -> str:
+    m = summary["machine"]
+    text = "\n".join(["# Distillation on small tasks", "", *table, "",
+                      f"Machine: {m['cpu']}, {m['cores_available']} cores available. Accuracy on each task's test "
+                      f"split; retained = step / teacher; McNemar p of the step's disagreements with the teacher's."])
+    (out / "small_data.md").write_text(text + "\n")
+    (out / "small_data.json").write_text(json.dumps(summary, indent=1))
+    return text
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default=str(ROOT / "benchmarks" / "out" / "small_data"))
@@ -147,14 +157,8 @@ def main() -> None:
             summary["tasks"].setdefault(task, {})[variant] = {
                 "sizes": results["data"]["sizes"], "seconds": round(seconds, 1), "steps": rows,
                 "augmented_in_test": results["data"].get("augmented_in_test")}
-    m = summary["machine"]
-    text = "\n".join(["# Distillation on small tasks", "", *table, "",
-                      f"Machine: {m['cpu']}, {m['cores_available']} cores available. Accuracy on each task's test "
-                      f"split; retained = step / teacher; McNemar p of the step's disagreements with the teacher's."])
-    print(text)
-    (out / "small_data.md").write_text(text + "\n")
-    (out / "small_data.json").write_text(json.dumps(summary, indent=1))
-
+            write(out, table, summary)  # after every variant: a stopped run keeps what it finished
+    print(write(out, table, summary))
 
 if __name__ == "__main__":
     main()
