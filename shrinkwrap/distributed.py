@@ -48,6 +48,18 @@ def barrier() -> None:
         state().wait_for_everyone()
 
 
+def share(value):
+    """The main process's `value` in every process (any picklable object); `value` itself when alone."""
+    if not launched():
+        return value
+    from accelerate.utils import broadcast_object_list
+
+    state()  # the process group, set up as for training
+    box = [value]
+    broadcast_object_list(box, from_process=0)
+    return box[0]
+
+
 def accelerator(precision: str, log=print):
     """An Accelerator for one training run. Mixed precision is used on a GPU only: on a CPU it is
     ignored with a notice, since CPU autocast is slower than fp32 for these models."""

@@ -14,6 +14,10 @@ meet the budget are found before any training. In order:
    (a pruned candidate starts from the unpruned student of its depth);
 4. every trained candidate and the teacher timed again together, in interleaved rounds;
 5. the winner — the most accurate candidate meeting every limit, ties to the faster — gets its artifact.
+
+Under `accelerate launch` / `torchrun` every process takes part in each training run exactly as in
+`shrinkwrap run` (the main process writes); the screen, the timing, the choices and the files are the
+main process's, and the candidates it picks are sent to the others.
 """
 from __future__ import annotations
 
@@ -23,6 +27,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Optional
 
+from shrinkwrap import distributed
 from shrinkwrap.errors import EXIT_BUDGET, EXIT_OK, StepFailed
 from shrinkwrap.gate import FAIL, SKIP, Check, evaluate, speed_size_checks
 from shrinkwrap.rundir import (ARTIFACT_DIR, MODEL_FILE, RESULTS_FILE, STEP_FILE, read_json_or_none, run_lock,
@@ -73,7 +78,7 @@ def pick_winner(rows: list[dict]) -> Optional[int]:
 
 class Search:
     def __init__(self, space: Space, out: Path, quiet: bool = False):
-        self.space, self.out, self.quiet = space, Path(out), quiet
+        self.space, self.out, self.quiet = space, Path(out), quiet or not distributed.is_main()
         self.recipe, self.budget = space.recipe, space.recipe.budget
         self.rows = [_row(c) for c in space.candidates]
         self.checks: dict[int, list[Check]] = {}      # candidate -> its limits, as last measured
@@ -90,7 +95,9 @@ class Search:
         from shrinkwrap.runner import run_chain
 
         run = self.out / TEACHER_RUN
-        _share_cache(run, self.out / CACHE)
+        if distributed.is_main():
+            _share_cache(run, self.out / CACHE)
+        distributed.barrier()
         self.log("teacher: fine-tuned once for every candidate (reused when finished)")
         self.teacher_results = run_chain(self.recipe, run, quiet=True, until="teacher")
         self.teacher_dir = run / "teacher"
@@ -164,7 +171,8 @@ class Search:
             c = self.space.candidates[i]
             recipe = recipe_of(c)
             folder = self.out / where / (c.folder_name + suffix)
-            reused = self._prepare_folder(folder, recipe, where, suffix)
+            reused = self._prepare_folder(folder, recipe, where, suffix) if distributed.is_main() else False
+            distributed.barrier()  # the folder is ready before any process runs in it
             finished = (read_json_or_none(folder / RESULTS_FILE) or {}).get("recipe_fingerprint") == recipe.fingerprint()
             self.log(f"training {k + 1}/{len(order)}: candidate {i} {c.label()}"
                      + (f", {recipe.student.epochs} epoch(s)" if suffix else "")
@@ -173,6 +181,8 @@ class Search:
             try:
                 done[i] = run_recipe(recipe, folder, quiet=True)
             except StepFailed as e:  # one candidate that cannot be trained does not end the search
+                if distributed.launched():  # ...except under a launcher: the other processes are inside its run
+                    raise
                 self.rows[i]["reason"] = f"its run failed — {e}"
                 self.log(f"candidate {i} {c.label()}: {self.rows[i]['reason']}")
         return done
@@ -295,9 +305,17 @@ def run_search(space: Space, out: Path, quiet: bool = False) -> tuple[dict, int,
     from shrinkwrap.search_halving import halving
 
     s = Search(space, out, quiet)
+    if not distributed.is_main():  # a helper process: it trains what the main one picks, nothing else
+        s.teacher()
+        order = distributed.share(None)
+        if order and space.recipe.search.strategy == "halving":
+            order = halving(s, order)
+        if order:
+            s.train(order)
+        return {}, EXIT_OK, ""
     with run_lock(s.out):
         s.teacher()
-        order = s.screen()
+        order = distributed.share(s.screen())
         if not order:
             summary = s.finish()
             return summary, EXIT_BUDGET, (f"no candidate can meet the latency and size limits, so none was trained "

@@ -87,3 +87,36 @@ def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_bas
     steps = json.loads((tiny_run_copy / "results.json").read_text())["steps"]
     trimmed = next(s for s in steps if s["name"] == "student-trimmed")
     assert trimmed["info"]["texts"] == 117 + 300
+
+
+def test_two_processes_search_trains_every_candidate_together(tmp_path, tiny_base, keyword_csv):
+    """`search` under the launcher: the teacher and every candidate (the short halving runs too) train on
+    both processes; the screen, the choices and the files are the main process's alone."""
+    r = tiny_recipe(tiny_base, keyword_csv, teacher={"epochs": 3}, student={"num_layers": 1, "epochs": 2},
+                    quantize={"enabled": False}, bench={"warm_seconds": 0},
+                    budget={"size_mb": 0.6, "accuracy_drop_points": 100})
+    # Size separates the candidates by their shapes alone (as in test_search): the untrimmed two are refused.
+    r["search"] = {"trim_vocab.enabled": [False, True], "student.max_length": [16, 32], "rounds": 2,
+                   "strategy": "halving"}
+    recipe = write_recipe(tmp_path / "search.yaml", r)
+    out = tmp_path / "out"
+    proc = subprocess.run(
+        [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", "2", "--master_addr", "127.0.0.1",
+         "--master_port", str(_free_port()), "-m", "shrinkwrap", "search", str(recipe), "--out", str(out)],
+        capture_output=True, text=True, env=dict(os.environ, MASTER_ADDR="127.0.0.1"), timeout=900)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert proc.stdout.count("search: ") == 1 and proc.stdout.count("winner: candidate") == 1, proc.stdout
+    rows = json.loads((out / "search.json").read_text())["candidates"]
+    assert [r["trained"] for r in rows] == [False, False, True, True]
+    dropped = [i for i, r in enumerate(rows) if (r["reason"] or "").startswith("dropped by successive halving")]
+    assert len(dropped) == 1
+    winner = json.loads((out / "search.json").read_text())["winner"]
+    assert winner == ({2, 3} - set(dropped)).pop() and rows[winner]["meets_budget"]
+    # The teacher's outputs were computed by both processes, a share each, and merged once.
+    metas = [json.loads(p.read_text()) for p in (out / "cache").rglob("meta.json")]
+    assert metas and all(m["processes"] == 2 for m in metas)
+    # Both short runs and the full one exist, each finished and written once (no scratch folders left).
+    assert len(list((out / "halving").iterdir())) == 2
+    for run in [*(out / "halving").iterdir(), *(out / "candidates").iterdir()]:
+        assert (run / "results.json").exists()
+        assert sorted(p.name for p in run.iterdir() if p.name.startswith(".")) == []
