@@ -105,7 +105,7 @@ def main() -> None:
     from shrinkwrap.cli import run_recipe
     from shrinkwrap.preflight import prepare
 
-    out = Path(args.out)
+    out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows())
     recipe = load_recipe(ROOT / "recipes" / "bbc-news.yaml", [f"data.path={csv_path}", *args.set])
     started = time.perf_counter()

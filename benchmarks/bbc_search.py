@@ -72,7 +72,7 @@ def main() -> None:
     from shrinkwrap.search import Search, run_search
     from shrinkwrap.search_space import load_search
 
-    out = Path(args.out)
+    out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows())
     space = load_search(ROOT / "recipes" / "bbc-news-search.yaml", [f"data.path={csv_path}", *args.set])
     started = time.perf_counter()

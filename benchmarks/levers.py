@@ -113,7 +113,7 @@ def main() -> None:
     from shrinkwrap.recipe import load_recipe
     from shrinkwrap.runner import prepare, run_chain
 
-    out = Path(args.out)
+    out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows(args.per_topic))
     common = [f"data.path={csv_path}", "teacher.max_length=128", *CHAIN]
     results, seconds, recipes = {}, {}, {}

@@ -120,7 +120,7 @@ def main() -> None:
     from shrinkwrap.recipe import load_recipe
     from shrinkwrap.runner import run_chain
 
-    out = Path(args.out)
+    out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     table = ["| task | train texts | variant | step | accuracy | retained | McNemar p | chain s |", "|---" * 8 + "|"]
     summary: dict = {"machine": describe(), "copies": args.copies, "tasks": {}}
     for task in args.tasks:
