@@ -49,14 +49,14 @@ EMBEDDINGS_FP32 = 'onnx_quantize.int8_operators=["MatMul","Attention"]'
 def variants(copies: int, pairs: bool) -> dict[str, list[str]]:
     transforms = '["mask","replace","ngram","swap"]' if pairs else '["mask","replace","ngram"]'
     aug = [f"augment.copies={copies}", f"augment.transforms={transforms}"]
-    return {"kd": [], "kd+aug": aug, "kd+aug+inter": aug + INTER,
+    return {"kd": [], "kd, per-channel": ["onnx_quantize.per_channel=true"], "kd+aug": aug, "kd+aug+inter": aug + INTER,
             "kd+aug, per-channel": aug + ["onnx_quantize.per_channel=true"],
             "kd+aug, fp32-embeddings": aug + [EMBEDDINGS_FP32],
             "kd+aug, static": aug + ["onnx_quantize.static=true"]}
 
 
 # Where a variant's outputs can start from (copied; reused when the fingerprints match).
-REUSE = {"kd+aug": "kd", "kd+aug+inter": "kd+aug", "kd+aug, per-channel": "kd+aug",
+REUSE = {"kd, per-channel": "kd", "kd+aug": "kd", "kd+aug+inter": "kd+aug", "kd+aug, per-channel": "kd+aug",
          "kd+aug, fp32-embeddings": "kd+aug", "kd+aug, static": "kd+aug"}
 
 
