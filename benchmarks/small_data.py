@@ -139,7 +139,14 @@ def main() -> None:
                                  [f"data.path={path}", *data_keys, *COMMON, *sets, *args.set])
             print(f"== {task}: {variant}", file=sys.stderr, flush=True)
             started = time.perf_counter()
-            results = run_chain(recipe, folder)
+            try:
+                results = run_chain(recipe, folder)
+            except Exception as exc:  # noqa: BLE001 — one failing variant must not lose the others' rows
+                print(f"   {task}: {variant} failed: {exc}", file=sys.stderr, flush=True)
+                summary["tasks"].setdefault(task, {})[variant] = {"error": f"{type(exc).__name__}: {exc}"}
+                table.append(f"| {task} | – | {variant} | failed: {type(exc).__name__} | – | – | – | – |")
+                write(out, table, summary)
+                continue
             seconds = time.perf_counter() - started
             teacher = results["steps"][0]
             rows = []
