@@ -26,9 +26,9 @@ from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.batches import Joined, length_batches
 from shrinkwrap.fingerprint import sha256_json
 from shrinkwrap.losses import attention_loss, distillation_loss, hidden_state_loss
-from shrinkwrap.models import evenly_spaced, keep_layers, load_classifier, num_layers
+from shrinkwrap.models import (ATTENTION_FALLBACK, evenly_spaced, keep_layers, library_notices_silenced,
+                               load_classifier, num_layers, to_torch)
 from shrinkwrap.rundir import read_json, scratch_path, swap_in
-from shrinkwrap.models import to_torch
 from shrinkwrap.train import TrainSettings, fit, settings_from
 
 PROJECTION = "hidden_projection"  # attached to the student while training so the optimiser sees it
@@ -96,7 +96,7 @@ def teacher_outputs(ctx, teacher, examples, layer_map: list[int], key: str, hidd
     arrays = {n: np.lib.format.open_memmap(shard_file(n, rank), "w+", shapes[n][1], (len(share), *shapes[n][0]))
               for n in names}
     teacher.eval()
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), library_notices_silenced(ATTENTION_FALLBACK):
         warnings.simplefilter("ignore")
         for idx, batch in length_batches(examples, ctx.pad_id, 64, rows=share):
             out = teacher(**to_torch(batch), output_hidden_states=hidden, output_attentions=attention)
@@ -185,7 +185,7 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
                                                  for j, a in enumerate(o.attentions)) / len(o.attentions)
         return loss
 
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), library_notices_silenced(ATTENTION_FALLBACK):
         warnings.simplefilter("ignore")  # sdpa's notice that it falls back to eager when attentions are asked for
         validation = ctx.tokens_of(ctx.outputs["teacher"], ctx.student_length).encoded["validation"]
         result = fit(student, examples, labels, validation, ctx.data.validation.labels, loss_fn, s,

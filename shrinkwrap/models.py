@@ -134,24 +134,43 @@ def load_classifier(path: str, num_labels: int | None = None, label_names: list[
     return model.eval()
 
 
-class _DropFreshHeadNotice(logging.Filter):
-    """transformers logs that a fresh classification head is "newly initialized" (and that the model should
-    be trained): expected here, since fine-tuning is what comes next. Every other record passes."""
+class _DropNotices(logging.Filter):
+    """Drops transformers' log records that contain one of `phrases`; every other record passes."""
+
+    def __init__(self, phrases: tuple[str, ...]):
+        super().__init__()
+        self.phrases = phrases
 
     def filter(self, record: logging.LogRecord) -> bool:
         text = record.getMessage()
-        return not ("newly initialized" in text or "You should probably TRAIN this model" in text)
+        return not any(p in text for p in self.phrases)
 
 
 @contextlib.contextmanager
-def _fresh_head_notice_silenced():
-    logger = logging.getLogger("transformers.modeling_utils")
-    notice = _DropFreshHeadNotice()
-    logger.addFilter(notice)
+def library_notices_silenced(*phrases: str):
+    """Silences transformers' notices containing `phrases` for the duration, whichever of its modules logs
+    them: the filter sits on the library logger's handlers, which every module's record goes through."""
+    root = logging.getLogger("transformers")
+    targets = [root, *root.handlers]
+    notice = _DropNotices(phrases)
+    for t in targets:
+        t.addFilter(notice)
     try:
         yield
     finally:
-        logger.removeFilter(notice)
+        for t in targets:
+            t.removeFilter(notice)
+
+
+def _fresh_head_notice_silenced():
+    """transformers logs that a fresh classification head is "newly initialized" (and that the model should
+    be trained): expected here, since fine-tuning is what comes next."""
+    return library_notices_silenced("newly initialized", "You should probably TRAIN this model")
+
+
+# BERT-like models' sdpa attention says it falls back to the manual implementation whenever attention
+# maps are asked for: expected while distilling attention maps, and said on the console of every such run.
+ATTENTION_FALLBACK = "Falling back to the manual attention implementation"
 
 
 def save_classifier(model: nn.Module, tokenizer, folder: Path) -> None:
