@@ -191,6 +191,8 @@ class TrainConfig(_Section):
         "fp32", description="training precision on a GPU (bf16/fp16 mixed precision); a CPU always trains in fp32, with a notice")
     gradient_accumulation_steps: int = Field(
         1, ge=1, description="batches whose gradients add up before one optimizer step (effective batch = batch_size × this × processes)")
+    length_grouped: bool = Field(
+        False, description="training batches of texts of similar length (random groups of 50 batches sorted by length): less padding where lengths vary widely, e.g. with augmented n-gram copies")
 
 
 class QuantizeConfig(_Section):

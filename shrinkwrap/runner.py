@@ -29,6 +29,9 @@ CODE_VERSION = 1
 def step_fingerprint(ctx: Context, step: Step) -> str:
     dump = ctx.recipe.model_dump(mode="json")
     parts = {s: dump[s] for s in step.sections}
+    if "train" in parts and not parts["train"]["length_grouped"]:
+        # a key added after runs were made: left out at its default, so those runs' finished steps are reused
+        parts["train"] = {k: v for k, v in parts["train"].items() if k != "length_grouped"}
     upstream = ctx.fingerprints[step.after] if step.after else ctx.data_fingerprint
     return sha256_json({"step": step.name, "code": CODE_VERSION, "config": parts, "upstream": upstream,
                         "tokenizer": ctx.tokenizer_fp, "extra": step.extra(ctx)})

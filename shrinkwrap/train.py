@@ -19,7 +19,7 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from shrinkwrap import distributed
-from shrinkwrap.batches import all_logits, collate, take
+from shrinkwrap.batches import all_logits, collate, lengths, take
 from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
 from shrinkwrap.metrics import classification_metrics
 from shrinkwrap.models import to_torch
@@ -42,6 +42,7 @@ class TrainSettings:
     collapse_share: float = 0.95    # validation predictions this concentrated on one class = collapsed (1 = off)
     gradient_accumulation_steps: int = 1   # batches whose gradients add up before one optimizer step
     precision: str = "fp32"                # bf16 / fp16 on a GPU; fp32 on a CPU whatever is asked
+    length_grouped: bool = False           # batches of texts of similar length (see length_grouped_order)
 
 
 @dataclass
@@ -114,6 +115,29 @@ def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResu
     return saved["epoch"], saved["batch"], order, saved["best_state"], saved["since_best"], saved["losses"]
 
 
+# Texts drawn together and sorted by length when batches are length-grouped: this many batches' worth
+# (common practice, after transformers' LengthGroupedSampler, which uses 50 as well).
+GROUP_BATCHES = 50
+
+
+def length_grouped_order(order: np.ndarray, lengths: np.ndarray, batch_size: int,
+                         generator: torch.Generator) -> np.ndarray:
+    """A random order whose consecutive `batch_size` runs hold texts of similar length: the random order is
+    cut into groups of GROUP_BATCHES batches, each group sorted by length (longest first) and cut into
+    batches, and the full batches shuffled; the one short batch, if any, stays last. Batches padded to their
+    longest text then carry little padding, which matters when lengths vary widely (augmented n-gram copies
+    of a few words beside whole texts)."""
+    batches, short = [], []
+    span = GROUP_BATCHES * batch_size
+    for start in range(0, len(order), span):
+        group = order[start:start + span]
+        group = group[np.argsort(-lengths[group], kind="stable")]
+        for b in range(0, len(group), batch_size):
+            (batches if len(group[b:b + batch_size]) == batch_size else short).append(group[b:b + batch_size])
+    shuffled = [batches[i] for i in torch.randperm(len(batches), generator=generator).tolist()]
+    return np.concatenate(shuffled + short) if shuffled or short else order
+
+
 def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict], val_labels: np.ndarray,
         loss_fn: LossFn, s: TrainSettings, pad_id: int, desc: str = "training",
         checkpoint: Optional[Checkpoint] = None, reference: Optional[np.ndarray] = None) -> FitResult:
@@ -152,6 +176,7 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
     n_classes = model.config.num_labels
     majority = np.bincount(val_labels, minlength=n_classes).max() / len(val_labels)
     best_state, since_best, losses = None, 0, []
+    train_lengths = lengths(train) if s.length_grouped else None
 
     def snapshot(next_epoch: int, next_batch: int, order: Optional[np.ndarray]) -> dict:
         return {"model": model.state_dict(), "optimizer": optimizer.state_dict(), "schedule": schedule.state_dict(),
@@ -181,6 +206,8 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
                 order, resumed_order = resumed_order, None
             else:
                 order = torch.randperm(len(train), generator=generator).numpy()
+                if s.length_grouped:
+                    order = length_grouped_order(order, train_lengths, s.batch_size, generator)
             skip, first_batch = first_batch, 0
             for start in range(skip * s.batch_size, stop, s.batch_size):
                 # Every process draws the same order; each takes its share of the batch, so N
@@ -261,9 +288,10 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
 def settings_from(section, train, **given) -> TrainSettings:
     """The training settings of a recipe section: each TrainSettings field the section has (the teacher's
     has them all; the student's has no clipping or stall keys, which keep their defaults), the train
-    section's accumulation and precision, and `given` over those (e.g. the seed of one run)."""
+    section's accumulation, precision and length grouping, and `given` over those (e.g. the seed of one run)."""
     from dataclasses import fields
 
     keys = [f.name for f in fields(TrainSettings) if f.name in type(section).model_fields]
     return TrainSettings(**{k: getattr(section, k) for k in keys} | {
-        "gradient_accumulation_steps": train.gradient_accumulation_steps, "precision": train.precision} | given)
+        "gradient_accumulation_steps": train.gradient_accumulation_steps, "precision": train.precision,
+        "length_grouped": train.length_grouped} | given)

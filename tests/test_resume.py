@@ -258,3 +258,22 @@ def test_disk_full_while_writing_results_exits_2_and_keeps_the_old_file(tiny_run
     assert len(err) == 1 and "results.json: no space left on device" in err[0] and "Traceback" not in err[0]
     assert (tiny_run_copy / "results.json").read_bytes() == results
     assert not list(tiny_run_copy.glob(".results.json.*"))
+
+
+def test_length_grouping_changes_the_training_fingerprints_only_when_on(tmp_path, tiny_base, keyword_csv):
+    """Turned on, train.length_grouped changes every training step's fingerprint (its batches change), so a
+    finished step trained without it is not reused."""
+    from shrinkwrap.preflight import prepare
+    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.runner import step_fingerprint
+    from shrinkwrap.steps import chain
+
+    def fingerprints(train):
+        recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv) | train))
+        ctx = prepare(recipe, tmp_path / "run", quiet=True)
+        for step in chain()[:2]:  # teacher, student (whose fingerprint includes the teacher's)
+            ctx.fingerprints[step.name] = step_fingerprint(ctx, step)
+        return dict(ctx.fingerprints)
+
+    default, on = fingerprints({}), fingerprints({"train": {"length_grouped": True}})
+    assert all(on[k] != default[k] for k in default)

@@ -166,3 +166,47 @@ def test_teacher_keeps_the_seed_with_the_best_validation_metric(tmp_path, tiny_b
     assert [s["outcome"] for s in info["seeds"]] == ["worse", "kept", "worse"]
     saved = load_classifier(tmp_path / "run" / "teacher")
     assert torch.all(saved.classifier.bias == 1.0)
+
+
+def test_length_grouped_order_is_a_permutation_with_batches_of_one_length_band(monkeypatch):
+    # Hand-worked: 2 batches per group, batch size 2, 9 texts of lengths 0..8 in a random order. Each group
+    # of 4 (the last of 1) is sorted longest first and cut in two; the full batches are shuffled, the short
+    # one stays last. So every full batch holds two texts adjacent in their group's sorted order.
+    monkeypatch.setattr(train, "GROUP_BATCHES", 2)
+    lengths = np.arange(9) * 3 + 1
+    order = np.array([4, 0, 7, 2, 8, 1, 6, 3, 5])
+    got = train.length_grouped_order(order, lengths, 2, torch.Generator().manual_seed(0))
+    assert sorted(got.tolist()) == list(range(9))
+    batches = [sorted(got[i:i + 2].tolist(), reverse=True) for i in range(0, 8, 2)]
+    assert sorted(map(tuple, batches)) == sorted([(7, 4), (2, 0), (8, 6), (3, 1)])
+    assert got[-1] == 5  # the group of one text: the short batch, last
+
+
+def test_length_grouped_batches_pad_less_and_are_the_ones_fit_trains_on(monkeypatch):
+    # 40 texts of 2 to 31 tokens (the model's 32 positions) in a random order, batch size 4, groups of 5 batches: padded tokens per
+    # epoch (each batch padded to its longest) fall by more than a fifth with grouping, and fit's first
+    # epoch pads exactly the batches length_grouped_order gives from the run's seeded generator.
+    # Padding = batch width × 4 − the batch's real tokens; grouping must cut it by more than half.
+    monkeypatch.setattr(train, "GROUP_BATCHES", 5)
+    rng = np.random.default_rng(0)
+    lens = rng.integers(2, 32, 40)
+    tr = [{"input_ids": [1, *rng.integers(2, 50, n - 1).tolist()], "attention_mask": [1] * n} for n in lens]
+    ytr = (lens > 16).astype(np.int64)
+    gen = torch.Generator().manual_seed(0)
+    order = torch.randperm(40, generator=gen).numpy()
+    grouped = train.length_grouped_order(order, lens, 4, gen)
+
+    def widths(o):
+        return [int(lens[o[i:i + 4]].max()) for i in range(0, len(o), 4)]
+    def padding(o):
+        return 4 * sum(widths(o)) - int(lens.sum())
+    assert padding(grouped) < 0.5 * padding(order), (padding(grouped), padding(order))
+    seen = []
+
+    def loss(model, batch, labels, idx):
+        seen.append(batch["input_ids"].shape[1])
+        return _ce(model, batch, labels, idx)
+    fit(_model(), tr, ytr, tr[:12], ytr[:12], loss, _settings(epochs=2, batch_size=4, length_grouped=True),
+                 pad_id=0)
+    assert len(seen) == 20  # two epochs of 10 batches (whether 2 epochs learn anything is not the point here)
+    assert seen[:10] == widths(grouped)
