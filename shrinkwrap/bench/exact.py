@@ -1,6 +1,6 @@
 """Two exact distribution figures in numpy and the standard library, so that the serving install needs no
 scipy: Student's t quantile (the mean's confidence interval) and a binomial upper tail (the report's
-class cautions). tests/test_exact.py checks both against scipy.stats."""
+class cautions). tests/test_serving_install.py checks both against scipy.stats."""
 from __future__ import annotations
 
 import math
