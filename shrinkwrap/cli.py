@@ -119,6 +119,8 @@ def cmd_search(args) -> int:
     else:
         print(f"search: {out / SEARCH_FILE}\nreport: {out / 'report.html'}")
     print(line, file=sys.stderr if args.json else sys.stdout)
+    if summary["winner"] is not None:
+        _print_cautions(summary["candidates"][summary["winner"]]["cautions"])
     return code
 
 

@@ -40,7 +40,8 @@ TEACHER_RUN, CANDIDATES, UNTRAINED, HALVING, CACHE = "teacher-run", "candidates"
 
 def _row(c: Candidate) -> dict:
     return {"settings": c.settings, "trained": False, "meets_budget": False, "accuracy": None,
-            "accuracy_drop": None, "latency_ms": None, "speedup": None, "size_bytes": None, "reason": None}
+            "accuracy_drop": None, "latency_ms": None, "speedup": None, "size_bytes": None, "reason": None,
+            "cautions": None}
 
 
 def _lat(row: dict) -> dict:
@@ -207,8 +208,11 @@ class Search:
 
     def record_trained(self, i: int, results: dict) -> None:
         final = results["steps"][-1]
+        from shrinkwrap.report import cautions
+
+        # what the candidate's average accuracy hides (a class much worse, a drop the test split cannot settle)
         self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
-                            accuracy_drop=final["accuracy_drop"])
+                            accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget))
         self.final_dir[i] = Path(final["path"])
         self.results[i] = results
 

@@ -9,7 +9,7 @@ from conftest import tiny_recipe, write_recipe
 from shrinkwrap.cli import main
 from shrinkwrap.search import pareto_frontier, pick_winner
 
-ROW_KEYS = {"settings", "trained", "meets_budget", "accuracy", "accuracy_drop", "latency_ms", "speedup", "size_bytes",
+ROW_KEYS = {"cautions", "settings", "trained", "meets_budget", "accuracy", "accuracy_drop", "latency_ms", "speedup", "size_bytes",
             "reason"}
 
 
@@ -140,6 +140,8 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
     for r in rows[2:]:
         assert r["trained"] and r["meets_budget"] and r["size_bytes"] < 0.6e6
         assert 0 <= r["accuracy"] <= 1 and r["speedup"] > 0
+        assert isinstance(r["cautions"], list)  # each line also goes to stderr for the winner
+    assert all(r["cautions"] is None for r in rows[:2])  # untrained: nothing measured to caution about
     meets = [i for i, r in enumerate(rows) if r["meets_budget"]]
     best = max(rows[i]["accuracy"] for i in meets)
     expected = min((i for i in meets if rows[i]["accuracy"] == best), key=lambda i: rows[i]["latency_ms"]["p95"])
