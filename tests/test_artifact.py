@@ -1,4 +1,4 @@
-"""The artefact folder: what `shrinkwrap run` and `shrinkwrap package` write, and that it is checked."""
+"""The artifact folder: what `shrinkwrap run` and `shrinkwrap package` write, and that it is checked."""
 import hashlib
 import json
 import shutil
@@ -94,7 +94,7 @@ def test_package_transformers_folder_with_data(tiny_run, keyword_csv, tmp_path, 
     assert model["parity"]["max_abs_logit_diff"] <= 1e-4 and model["parity"]["label_mismatches"] == 0
     assert 0 <= model["agreement_with_fp32"] <= 1
     assert manifest["recipe_fingerprint"] is None and manifest["source"]["kind"] == "folder"
-    # Metrics measured through the artefact on all 180 rows agree with predict on the same texts.
+    # Metrics measured through the artifact on all 180 rows agree with predict on the same texts.
     rows = keyword_rows()
     m = manifest["metrics"]
     assert m["texts"] == len(rows) and sum(m["per_class"]["support"]) == len(rows)
@@ -121,7 +121,7 @@ def test_package_fp32_and_onnx_folder(tiny_run, tmp_path, capsys):
     as_is = tmp_path / "as-is"
     assert _package(capsys, tiny_run / "student-onnx-int8", "--out", as_is)[0] == 0
     assert (as_is / "model.onnx").read_bytes() == (tiny_run / "student-onnx-int8" / "model.onnx").read_bytes()
-    # Packaging again over an artefact replaces it.
+    # Packaging again over an artifact replaces it.
     assert _package(capsys, tiny_run / "student-onnx", "--out", as_is)[0] == 0
     assert (as_is / "model.onnx").read_bytes() == (tiny_run / "student-onnx" / "model.onnx").read_bytes()
 

@@ -1,4 +1,4 @@
-"""`shrinkwrap predict`: the chain's own predictions, no torch, and a refusal of any modified artefact."""
+"""`shrinkwrap predict`: the chain's own predictions, no torch, and a refusal of any modified artifact."""
 import json
 import shutil
 import subprocess

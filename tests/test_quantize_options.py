@@ -200,7 +200,7 @@ def test_minilm_int8_with_embeddings_is_about_a_quarter_of_fp32(minilm, tmp_path
 @pytest.mark.parametrize("optimize", ["auto", "never"])
 def test_the_shipped_graph_does_not_depend_on_timing(tiny_run, tmp_path, monkeypatch, optimize):
     """Timings are recorded, but the plain graph measured faster must not win: the same recipe has to
-    ship the same artefact whatever the machine's load (a choice by speed once changed the final
+    ship the same artifact whatever the machine's load (a choice by speed once changed the final
     accuracy between two runs of the demo)."""
     from shrinkwrap.batches import collate, encode
     from shrinkwrap.data import Split

@@ -169,7 +169,7 @@ def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     assert onnx_config["vocab_size"] == results["steps"][3]["info"]["vocab_size"]
     assert onnx_config["intermediate_size"] == 48 and onnx_config["pruned_heads"] == {
         k: v for k, v in results["steps"][2]["info"]["heads_removed"].items()}
-    # the artefact carries the trimmed tokenizer, and predicts what the final step recorded
+    # the artifact carries the trimmed tokenizer, and predicts what the final step recorded
     art = load(run / "artifact")
     assert art.manifest["tokenizer"]["fingerprint"] == trimmed_fp
     from shrinkwrap.preflight import prepare
