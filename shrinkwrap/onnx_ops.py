@@ -256,10 +256,13 @@ def vocab_size_of(folder: Path) -> int | None:
 
 
 def agreement(fp32_path: Path, int8_path: Path, examples: list[dict], pad_id: int, n_labels: int,
-              threads: int) -> dict:
-    """How often the int8 graph's label is the fp32 graph's on `examples`, and the largest logit gap."""
+              threads: int, batch_size: int) -> dict:
+    """How often the int8 graph's label is the fp32 graph's on `examples`, and the largest logit gap.
+    `batch_size` must be the accuracy pass's: dynamic int8 scales each batch's activations by the batch's
+    own range, so a text's int8 label can depend on the texts batched with it (seen on BBC News: one test
+    text of 58 changed label between batches of 32 and of 64)."""
     fp32_sess, int8_sess = session(fp32_path, threads), session(int8_path, threads)
-    fp32 = all_logits(lambda b: run_logits(fp32_sess, b), examples, pad_id, n_labels)
-    int8 = all_logits(lambda b: run_logits(int8_sess, b), examples, pad_id, n_labels)
+    fp32 = all_logits(lambda b: run_logits(fp32_sess, b), examples, pad_id, n_labels, batch_size)
+    int8 = all_logits(lambda b: run_logits(int8_sess, b), examples, pad_id, n_labels, batch_size)
     return {"agreement_with_fp32": float((fp32.argmax(1) == int8.argmax(1)).mean()),
             "max_abs_logit_diff_vs_fp32": float(np.abs(fp32 - int8).max())}

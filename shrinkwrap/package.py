@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 from typing import Callable, Optional
 
-from shrinkwrap.artifact import FORMAT, FORMAT_VERSION, file_entries, is_artifact, labels_of_config, open_folder
+from shrinkwrap.artifact import DEFAULT_BATCH_SIZE, FORMAT, FORMAT_VERSION, file_entries, is_artifact, labels_of_config, open_folder
 from shrinkwrap.card import folder_card, run_card
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file, tokenizer_fingerprint_of_file
@@ -293,7 +293,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
         facts.update(quantization={"method": "ONNX Runtime dynamic int8", "per_channel": q.per_channel,
                                    "int8_operators": list(q.int8_operators)},
                      **agreement(export_dir / MODEL_FILE, tmp / MODEL_FILE, examples, pad_id, len(model.config.id2label),
-                                 threads))
+                                 threads, DEFAULT_BATCH_SIZE))
     else:
         shutil.move(str(export_dir / MODEL_FILE), tmp / MODEL_FILE)
     model.config.save_pretrained(tmp)

@@ -60,6 +60,11 @@ def test_run_writes_artifact_with_complete_manifest(tiny_run):
     assert m["step"] == final["name"] and m["accuracy"] == final["metrics"]["accuracy"]
     assert m["per_class"] == final["metrics"]["per_class"]
     assert m["agreement_with_fp32"] == final["info"]["agreement_with_fp32"] == final["agreement_with_fp32"]
+    # ...and it is the share of the accuracy pass's own test predictions that the fp32 graph's match (the
+    # agreement pass batches as the accuracy pass does: dynamic int8 labels can depend on the batch).
+    fp32 = next(s for s in results["steps"] if s["name"] == "student-onnx")
+    same = np.mean(np.array(fp32["predictions"]) == np.array(final["predictions"]))
+    assert final["agreement_with_fp32"] == pytest.approx(same, abs=1e-12)
     assert {"onnxruntime", "tokenizers", "numpy", "torch"} <= set(manifest["versions"])
     assert not list(tiny_run.glob(".partial-*")) and not list(tiny_run.glob(".old-*"))
 

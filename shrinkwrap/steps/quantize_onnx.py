@@ -34,7 +34,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     return {"method": "ONNX Runtime dynamic int8", "per_channel": cfg.per_channel,
             "int8_operators": list(cfg.int8_operators), **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
             **agreement(src / MODEL_FILE, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id,
-                        len(ctx.data.label_names), ctx.recipe.bench.threads)}
+                        len(ctx.data.label_names), ctx.recipe.bench.threads, ctx.recipe.bench.eval_batch_size)}
 
 
 def run_static(ctx, src: Path, out: Path) -> dict:
@@ -48,7 +48,7 @@ def run_static(ctx, src: Path, out: Path) -> dict:
         plain = export_onnx(model, Path(tmp), ctx.recipe.export.opset)
         quantize_static_qdq(plain, out / MODEL_FILE, calibration, tokens.pad_id, cfg.per_channel, op_types)
         agrees = agreement(plain, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id, len(ctx.data.label_names),
-                           ctx.recipe.bench.threads)
+                           ctx.recipe.bench.threads, ctx.recipe.bench.eval_batch_size)
 
     model.config.save_pretrained(out)
     tokens.tokenizer.save_pretrained(out)
