@@ -102,7 +102,7 @@ def main() -> None:
 
     from shrinkwrap.bench.machine import describe
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
     from shrinkwrap.preflight import prepare
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise

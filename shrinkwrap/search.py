@@ -165,7 +165,7 @@ class Search:
     def train(self, order: list[int], recipe_of: Callable = lambda c: c.recipe, where: str = CANDIDATES,
               suffix: str = "") -> dict[int, dict]:
         """Runs each candidate in `order` (an ordinary run in its own folder); returns its results."""
-        from shrinkwrap.cli import run_recipe
+        from shrinkwrap.pipeline import run_recipe
 
         done: dict[int, dict] = {}
         for k, i in enumerate(order):

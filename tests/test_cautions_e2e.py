@@ -20,7 +20,7 @@ def _test_texts(recipe, folder) -> list[str]:
 
 
 def test_transfer_texts_from_the_test_split_are_cautioned(tiny_run, tiny_base, keyword_csv, tmp_path):
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
 
     (tmp_path / "run").mkdir()
     shutil.copytree(tiny_run / "teacher", tmp_path / "run" / "teacher")
@@ -44,7 +44,7 @@ def test_no_transfer_overlap_no_caution(tiny_run):
 
 
 def test_trimming_that_loses_test_pieces_is_cautioned(tiny_base, tmp_path):
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
 
     rows = keyword_rows()
     data = write_csv(tmp_path / "plain.csv", rows)

@@ -17,7 +17,7 @@ pytestmark = pytest.mark.slow
 @pytest.fixture(scope="module")
 def bbc_run(tmp_path_factory):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
 
     folder = tmp_path_factory.mktemp("bbc")
     data = write_csv(folder / "bbc.csv", bbc_rows(per_class=40), header=("text", "topic"))

@@ -20,7 +20,7 @@ def _predict(*args, stdin=None):
 @pytest.fixture(scope="module")
 def pair_run(tmp_path_factory, tiny_base):
     """A whole chain on pairs (first word, rest of the message): its artifact and the test pairs."""
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
     from shrinkwrap.data import load_dataset
     from shrinkwrap.recipe import load_recipe
 

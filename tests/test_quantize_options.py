@@ -98,7 +98,7 @@ def test_per_channel_gives_one_scale_per_output_column(tiny_graphs, tmp_path):
 
 def test_static_step_is_its_own_row_and_keeps_the_dynamic_step_final(tiny_run_copy, tiny_base, keyword_csv, tmp_path):
     from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
 
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv)),
                          ["onnx_quantize.static=true", "onnx_quantize.static_calibration_texts=20"])

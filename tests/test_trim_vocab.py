@@ -151,7 +151,7 @@ def test_a_step_after_the_trimmed_one_must_carry_the_trimmed_tokenizer(trimmed, 
 
 def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     from shrinkwrap.artifact import load
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
 
     run = student_done / "run"
     recipe = _recipe(student_done, tiny_base, keyword_csv, prune=PRUNE, trim_vocab={"enabled": True})

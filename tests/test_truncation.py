@@ -57,7 +57,7 @@ def _long_rows(seed: int = 0):
 
 @pytest.mark.parametrize("rule", ["tail", "head_tail"])
 def test_predict_cuts_long_texts_as_the_chain_did(rule, tmp_path, tiny_run):
-    from shrinkwrap.cli import run_recipe
+    from shrinkwrap.pipeline import run_recipe
     from shrinkwrap.data import load_dataset
     from shrinkwrap.recipe import load_recipe
 
