@@ -11,6 +11,7 @@ import shutil
 import warnings
 from pathlib import Path
 
+from shrinkwrap.artifact import labels_of_config
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_file
 from shrinkwrap.rundir import CONFIG_FILE
@@ -67,9 +68,8 @@ def check_head(folder: Path, config, where: str) -> None:
 
 
 def model_labels(config) -> list[str]:
-    """The model's class names by id (its id2label)."""
-    id2label = getattr(config, "id2label", None) or {}
-    return [str(id2label.get(i, id2label.get(str(i), f"LABEL_{i}"))) for i in range(len(id2label))]
+    """The model's class names by id (its id2label), read as every other config is (artifact.labels_of_config)."""
+    return labels_of_config(config.to_dict()) or []
 
 
 def match_labels(names: list[str], data_labels: list[str], where: str) -> list[str]:
