@@ -12,11 +12,17 @@ from shrinkwrap.bench.reference import Reference, normalise
 from shrinkwrap.errors import UserError
 
 
-def test_percentiles_equal_numpy():
+def test_percentiles_and_mean_interval_equal_scipy():
+    # An implementation the code does not call: scipy.stats.scoreatpercentile (linear "fraction"
+    # interpolation) and scipy.stats.t.interval for the mean's 95 % interval.
+    from scipy import stats
+
     samples = np.random.default_rng(0).lognormal(0.0, 0.5, size=257)
     out = summarize(samples)
     for q in PERCENTILES:
-        assert out[f"p{q}"] == pytest.approx(np.percentile(samples, q, method="linear"))  # source: numpy
+        assert out[f"p{q}"] == pytest.approx(stats.scoreatpercentile(samples, q, interpolation_method="fraction"))
+    low, high = stats.t.interval(0.95, len(samples) - 1, loc=samples.mean(), scale=stats.sem(samples))
+    assert out["mean_ci95"] == pytest.approx([low, high], rel=1e-6)
     assert out["p50"] <= out["p90"] <= out["p95"] <= out["p99"] <= out["max"]
     assert out["n"] == 257 and out["min"] == samples.min()
 
