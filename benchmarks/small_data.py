@@ -58,8 +58,9 @@ def variants(copies: int, pairs: bool) -> dict[str, list[str]]:
 
 
 # Where a variant's outputs can start from (copied; reused when the fingerprints match).
-REUSE = {"kd, per-channel": "kd", "kd+aug": "kd", "kd+aug+inter": "kd+aug", "kd+aug, per-channel": "kd+aug",
-         "kd+aug, fp32-embeddings": "kd+aug", "kd+aug, static": "kd+aug"}
+# The first of a variant's sources that has run is used.
+REUSE = {"kd": ("kd+aug",), "kd, per-channel": ("kd",), "kd+aug": ("kd",), "kd+aug+inter": ("kd+aug", "kd"),
+         "kd+aug, per-channel": ("kd+aug",), "kd+aug, fp32-embeddings": ("kd+aug",), "kd+aug, static": ("kd+aug",)}
 
 
 def bbc_slice(out: Path, train_texts: int) -> tuple[Path, list[str]]:
@@ -159,7 +160,7 @@ def main() -> None:
     ap.add_argument("--out", default=str(ROOT / "benchmarks" / "out" / "small_data"))
     ap.add_argument("--tasks", nargs="+", default=["bbc-200", "bbc-500", "bbc-1000", "bbc-pairs"])
     ap.add_argument("--copies", type=int, default=4, help="augment.copies of the augmented variants")
-    ap.add_argument("--variants", nargs="+", default=None, help="run only these variants (default: all)")
+    ap.add_argument("--variants", nargs="+", default=None, help="run only these variants, in this order (default: all)")
     ap.add_argument("--set", action="append", default=[], help="recipe override for every run, as for shrinkwrap run")
     args = ap.parse_args()
 
@@ -177,11 +178,13 @@ def main() -> None:
             path, data_keys = bbc_segment_pairs(out, int(task.rsplit("-", 1)[1]))
         else:
             path, data_keys = bbc_slice(out, int(task.split("-")[1]))
-        for variant, sets in variants(args.copies, task.startswith("bbc-pairs")).items():
-            if args.variants and variant not in args.variants:
-                continue
+        known = variants(args.copies, task.startswith("bbc-pairs"))
+        for variant in args.variants or list(known):  # in the order given: the first carries the teacher
+            if variant not in known:
+                raise SystemExit(f"--variants: {variant!r} is not one of {', '.join(known)}")
+            sets = known[variant]
             folder = out / task / variant.replace(", ", "-")
-            source = REUSE.get(variant)
+            source = next((v for v in REUSE.get(variant, ()) if (out / task / v.replace(", ", "-")).exists()), None)
             if source:
                 src = out / task / source.replace(", ", "-")
                 for name in ("teacher", "student", "cache", "student-onnx"):
@@ -203,7 +206,7 @@ def main() -> None:
             teacher = results["steps"][0]
             rows = []
             for s in results["steps"]:
-                if s["name"] == "teacher" and source and (out / task / source.replace(", ", "-")).exists():
+                if s["name"] == "teacher" and source:
                     continue
                 kept = s["metrics"]["accuracy"] / teacher["metrics"]["accuracy"]
                 p = (s.get("mcnemar") or {}).get("p_value")
