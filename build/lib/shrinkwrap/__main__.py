@@ -1,3 +1,0 @@
-from shrinkwrap.cli import main
-
-raise SystemExit(main())
