@@ -207,9 +207,9 @@ class Search:
         return False
 
     def record_trained(self, i: int, results: dict) -> None:
-        final = results["steps"][-1]
         from shrinkwrap.report import cautions
 
+        final = results["steps"][-1]
         # what the candidate's average accuracy hides (a class much worse, a drop the test split cannot settle)
         self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
                             accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget))

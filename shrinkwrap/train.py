@@ -120,18 +120,18 @@ def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResu
 GROUP_BATCHES = 50
 
 
-def length_grouped_order(order: np.ndarray, lengths: np.ndarray, batch_size: int,
+def length_grouped_order(order: np.ndarray, sizes: np.ndarray, batch_size: int,
                          generator: torch.Generator) -> np.ndarray:
     """A random order whose consecutive `batch_size` runs hold texts of similar length: the random order is
     cut into groups of GROUP_BATCHES batches, each group sorted by length (longest first) and cut into
     batches, and the full batches shuffled; the one short batch, if any, stays last. Batches padded to their
     longest text then carry little padding, which matters when lengths vary widely (augmented n-gram copies
     of a few words beside whole texts)."""
-    batches, short = [], []
+    batches, short = [], []   # `sizes`: each text's token count (batches.lengths)
     span = GROUP_BATCHES * batch_size
     for start in range(0, len(order), span):
         group = order[start:start + span]
-        group = group[np.argsort(-lengths[group], kind="stable")]
+        group = group[np.argsort(-sizes[group], kind="stable")]
         for b in range(0, len(group), batch_size):
             (batches if len(group[b:b + batch_size]) == batch_size else short).append(group[b:b + batch_size])
     shuffled = [batches[i] for i in torch.randperm(len(batches), generator=generator).tolist()]
