@@ -66,7 +66,8 @@ def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
     import onnx
 
     from shrinkwrap.artifact import load
-    from shrinkwrap.cli import main, run_recipe
+    from shrinkwrap.cli import main
+    from shrinkwrap.pipeline import run_recipe
     from shrinkwrap.data import load_dataset
     from shrinkwrap.recipe import load_recipe
 
