@@ -197,10 +197,11 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
 
 
 def teacher_predictions(ctx, teacher) -> np.ndarray:
-    """The teacher's class for each validation text: what the student's `agreement` is measured against."""
+    """The teacher's logits for each validation text: the student's `agreement` is measured against their
+    classes, and ties in early stopping are broken by how close the student comes to them (train.fit)."""
     from shrinkwrap.train import predict_logits
 
-    return predict_logits(teacher, ctx.encoded["validation"], ctx.pad_id).argmax(1)
+    return predict_logits(teacher, ctx.encoded["validation"], ctx.pad_id)
 
 
 # Texts distilled on per run that the default number of student epochs aims at (a project rule of thumb,

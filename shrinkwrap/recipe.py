@@ -102,7 +102,8 @@ class StudentConfig(_Section):
                                   "distilled on, n: ceil(30,000 / n) kept within 3–10, so a small training set gets more)")
     metric: Optional[Literal["accuracy", "macro_f1", "agreement"]] = Field(
         None, description="validation figure that picks the best epoch and stops early: `agreement` is the share "
-        "of validation texts given the teacher's label (default: teacher.metric)")
+        "of validation texts given the teacher's label (default: teacher.metric); a tie goes to the epoch whose "
+        "outputs are closer to the teacher's (smaller KL divergence)")
     learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
     batch_size: int = Field(16, ge=1, description="texts per optimizer step")
     weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay")

@@ -210,3 +210,40 @@ def test_length_grouped_batches_pad_less_and_are_the_ones_fit_trains_on(monkeypa
                  pad_id=0)
     assert len(seen) == 20  # two epochs of 10 batches (whether 2 epochs learn anything is not the point here)
     assert seen[:10] == widths(grouped)
+
+
+def test_teacher_kl_is_the_kullback_leibler_divergence_of_scipy():
+    # Reference: scipy.stats.entropy(pk, qk) = sum pk log(pk / qk), the Kullback-Leibler divergence in nats.
+    from scipy.special import softmax
+    from scipy.stats import entropy
+
+    rng = np.random.default_rng(3)
+    t, s = rng.normal(size=(9, 4)) * 3, rng.normal(size=(9, 4)) * 3
+    expected = np.mean([entropy(softmax(a), softmax(b)) for a, b in zip(t, s)])
+    assert train.teacher_kl(t, s) == pytest.approx(expected, rel=1e-9)
+    assert train.teacher_kl(t, t) == pytest.approx(0.0, abs=1e-12)
+
+
+def test_a_tie_on_the_metric_goes_to_the_epoch_closer_to_the_teacher(monkeypatch):
+    # Validation accuracy scripted flat (every epoch ties), while the student is trained toward fixed
+    # teacher logits on the validation texts themselves, so its KL to them falls. With the teacher's
+    # logits the loop must keep the epoch of the smallest KL and run on while it falls; with only the
+    # teacher's classes a tie is no improvement, and it stops `patience` epochs after epoch 1.
+    monkeypatch.setattr(train, "classification_metrics", lambda labels, preds, n: {"accuracy": 0.5, "macro_f1": 0.5})
+    va, yva = _examples(N_VAL, 1)
+    teacher_logits = np.random.default_rng(5).normal(size=(N_VAL, K)).astype(np.float32) * 4
+
+    def toward_teacher(model, batch, labels, idx):
+        target = torch.log_softmax(torch.from_numpy(teacher_logits[idx.numpy()]), 1)
+        return F.kl_div(torch.log_softmax(model(**batch).logits, 1), target, log_target=True, reduction="batchmean")
+
+    s = _settings(epochs=6, patience=2, learning_rate=3e-3)
+    result = fit(_model(), va, yva, va, yva, toward_teacher, s, pad_id=0, reference=teacher_logits)
+    kls = [c["teacher_kl"] for c in result.curve]
+    assert kls[-1] < kls[0]                                              # the student did move toward the teacher
+    assert result.best_epoch == int(np.argmin(kls)) + 1 and result.best_epoch > 1
+    assert result.best_teacher_kl == pytest.approx(min(kls))
+
+    classes_only = fit(_model(), va, yva, va, yva, toward_teacher, s, pad_id=0, reference=teacher_logits.argmax(1))
+    assert classes_only.best_epoch == 1 and len(classes_only.curve) == 1 + s.patience
+    assert "teacher_kl" not in classes_only.curve[0]
