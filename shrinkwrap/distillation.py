@@ -196,7 +196,7 @@ def fit_to_teacher(ctx, student, examples, labels: np.ndarray, targets: dict, la
     return result
 
 
-def teacher_predictions(ctx, teacher) -> np.ndarray:
+def teacher_validation_logits(ctx, teacher) -> np.ndarray:
     """The teacher's logits for each validation text: the student's `agreement` is measured against their
     classes, and ties in early stopping are broken by how close the student comes to them (train.fit)."""
     from shrinkwrap.train import predict_logits

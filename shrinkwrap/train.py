@@ -21,6 +21,7 @@ from tqdm.auto import tqdm
 from shrinkwrap import distributed
 from shrinkwrap.batches import all_logits, collate, lengths, take
 from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
+from shrinkwrap.losses import soft_label_loss
 from shrinkwrap.metrics import classification_metrics
 from shrinkwrap.models import to_torch
 
@@ -52,9 +53,13 @@ class FitResult:
     curve: list[dict] = field(default_factory=list)   # one entry per evaluation
     best_epoch: Optional[int] = None
     best_metric: float = float("-inf")
-    best_teacher_kl: float = float("inf")    # the tie-break of best_metric (see fit)
     seconds: float = 0.0
     steps: int = 0
+
+    @property
+    def best_teacher_kl(self) -> float:
+        """The best epoch's `teacher_kl`, the tie-break of best_metric (see fit); inf where there is none."""
+        return self.curve[self.best_epoch - 1].get("teacher_kl", math.inf) if self.best_epoch else math.inf
 
 
 # (model, padded batch, labels, example indices) -> loss. The loss runs the model itself, so a
@@ -106,10 +111,12 @@ def linear_schedule(optimizer, warmup: int, total: int):
 
 
 def teacher_kl(teacher_logits: np.ndarray, student_logits: np.ndarray) -> float:
-    """Mean over examples of KL(teacher || student), the two softmax distributions at temperature 1, in nats."""
-    t = torch.log_softmax(torch.as_tensor(teacher_logits, dtype=torch.float64), dim=1)
-    q = torch.log_softmax(torch.as_tensor(student_logits, dtype=torch.float64), dim=1)
-    return float((t.exp() * (t - q)).sum(1).mean()) if len(t) else 0.0
+    """Mean over examples of KL(teacher || student), the two softmax distributions at temperature 1, in nats:
+    the soft-label loss at T = 1, where its T^2 factor is 1."""
+    if not len(teacher_logits):
+        return 0.0
+    return float(soft_label_loss(torch.as_tensor(student_logits, dtype=torch.float64),
+                                 torch.as_tensor(teacher_logits, dtype=torch.float64), 1.0))
 
 
 def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResult):
@@ -119,7 +126,6 @@ def _restore(saved: dict, model, optimizer, schedule, generator, result: FitResu
     set_rng_state(saved["rng"], generator)
     result.curve, result.steps = saved["curve"], saved["steps"]
     result.best_metric, result.best_epoch = saved["best_metric"], saved["best_epoch"]
-    result.best_teacher_kl = saved.get("best_teacher_kl", float("inf"))  # absent from older checkpoints
     order = None if saved["order"] is None else saved["order"].numpy()
     return saved["epoch"], saved["batch"], order, saved["best_state"], saved["since_best"], saved["losses"]
 
@@ -168,7 +174,8 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
         raise RuntimeError("metric agreement needs the teacher's validation predictions (reference)")
     reference_logits = None
     if reference is not None and np.ndim(reference) == 2:
-        reference_logits, reference = np.asarray(reference, dtype=np.float32), np.asarray(reference).argmax(1)
+        reference_logits = np.asarray(reference, dtype=np.float32)
+        reference = reference_logits.argmax(1)
     seed_everything(s.seed)
     result = FitResult()
     started = time.perf_counter()
@@ -199,7 +206,6 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
                 "rng": rng_state(generator), "epoch": next_epoch, "batch": next_batch,
                 "order": None if order is None else torch.from_numpy(order.astype(np.int64)),
                 "best_state": best_state, "best_metric": result.best_metric, "best_epoch": result.best_epoch,
-                "best_teacher_kl": result.best_teacher_kl,
                 "since_best": since_best, "curve": result.curve, "losses": losses, "steps": result.steps,
                 "seconds": time.perf_counter() - started}
 
@@ -281,11 +287,9 @@ def fit(model: nn.Module, train, train_labels: np.ndarray, validation: list[dict
                 result.reason = (f"validation predictions collapsed: {top_share:.0%} in one class at epoch {epoch} "
                                  f"(majority class is {majority:.0%})")
                 return result
-            kl = entry.get("teacher_kl", float("inf"))
-            if entry[s.metric] > result.best_metric or (entry[s.metric] == result.best_metric
-                                                         and kl < result.best_teacher_kl):
+            if entry[s.metric] > result.best_metric or (entry[s.metric] == result.best_metric and
+                                                         entry.get("teacher_kl", math.inf) < result.best_teacher_kl):
                 result.best_metric, result.best_epoch, since_best = entry[s.metric], epoch, 0
-                result.best_teacher_kl = kl
                 best_state = copy.deepcopy(model.state_dict())
             else:
                 since_best += 1

@@ -7,7 +7,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from shrinkwrap.distillation import (build_student, fit_to_teacher, scaled_epochs, soft_targets, student_settings,
-                                     teacher_predictions)
+                                     teacher_validation_logits)
 from shrinkwrap.models import load_classifier, save_classifier
 
 
@@ -17,7 +17,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     student, layer_map = build_student(ctx, teacher)
     examples, labels, targets, cache_info = soft_targets(ctx, teacher, layer_map, cfg.hidden_weight > 0,
                                                          cfg.attention_weight > 0)
-    reference = teacher_predictions(ctx, teacher)
+    reference = teacher_validation_logits(ctx, teacher)
     del teacher
 
     epochs = cfg.epochs or scaled_epochs(len(examples))

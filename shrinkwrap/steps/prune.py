@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from shrinkwrap.distillation import fit_to_teacher, soft_targets, student_settings, teacher_predictions
+from shrinkwrap.distillation import fit_to_teacher, soft_targets, student_settings, teacher_validation_logits
 from shrinkwrap.models import load_classifier, save_classifier
 from shrinkwrap.pruning import (ffn_width, importance, least_important, neurons_to_remove, remove_heads,
                                 remove_neurons)
@@ -48,7 +48,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     if cfg.epochs:
         teacher = load_classifier(str(ctx.outputs["teacher"]))
         examples, labels, targets, cache_info = soft_targets(ctx, teacher, [], False, False)
-        reference = teacher_predictions(ctx, teacher)
+        reference = teacher_validation_logits(ctx, teacher)
         del teacher
         s = student_settings(ctx, cfg.epochs, cfg.learning_rate)
         result = fit_to_teacher(ctx, model, examples, labels, targets, [], s, 0.0, 0.0, out, "student-pruned",
