@@ -6,7 +6,8 @@ import html
 import json
 from pathlib import Path
 
-from shrinkwrap.report import _STYLE, _html_table, _png
+from shrinkwrap.report import _STYLE, _html_table
+from shrinkwrap.report_plots import png_data_uri
 from shrinkwrap.rundir import REPORT_HTML_FILE, write_text_atomic
 
 
@@ -58,7 +59,7 @@ def frontier_plot(summary: dict, budget, teacher: dict) -> str:
     ax.set_ylabel("accuracy (test split)")
     ax.grid(alpha=.3)
     ax.legend(fontsize=8, loc="lower right")
-    return _png(fig)
+    return png_data_uri(fig)
 
 
 def write_search_report(summary: dict, budget, teacher: dict, out: Path, candidates, teacher_accuracy=None) -> Path:
