@@ -9,11 +9,11 @@ import json
 from pathlib import Path
 from typing import Any, Literal, Optional
 
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json
+from shrinkwrap.yaml_config import apply_overrides, error_loc, explain, key_path, parse_override, read_yaml_mapping
 
 
 class _Section(BaseModel):
@@ -380,116 +380,14 @@ class Recipe(_Section):
         return sha256_json(self.model_dump(mode="json"))
 
 
-def _printable(text: str) -> str:
-    """One printable line: a newline or control character from a key, a value or a YAML parser's message is
-    shown escaped, so an error stays one line whatever the user typed."""
-    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in " ".join(text.split("\n")))
-
-
-def _place(loc: tuple) -> str:
-    out = ""
-    for part in loc:
-        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
-    return out
-
-
-def _dig(data: Any, loc: tuple) -> Any:
-    for part in loc:
-        try:
-            data = data[part]
-        except (KeyError, IndexError, TypeError):
-            return None
-    return data
-
-
 # Keys renamed since they first shipped: a recipe with the old name gets the new one in its error.
 RENAMED_KEYS = {"bench.warmup_s": "bench.warm_seconds", "bench.min_time_s": "bench.timed_seconds",
                 "onnx_quantize.op_types": "onnx_quantize.int8_operators"}
 
 
-def _loc(err: dict) -> tuple:
-    return tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
-
-
-def _explain(err: dict, raw: dict, where: str, root: Any = None) -> str:
-    return _printable(_explain_raw(err, raw, where, root))
-
-
-def _explain_raw(err: dict, raw: dict, where: str, root: Any = None) -> str:
-    loc = _loc(err)
-    place = _place(loc) or "(top level)"
-    kind = err["type"]
-    msg = err["msg"].removeprefix("Value error, ")
-    if kind == "extra_forbidden":
-        parent = _place(loc[:-1])
-        renamed = RENAMED_KEYS.get(place)
-        if renamed:
-            return f"{where}: {place} is now {renamed} — rename the key"
-        model: Any = root or Recipe
-        for part in loc[:-1]:
-            model = model.model_fields[part].annotation if isinstance(part, str) else model
-        allowed = (", ".join(k for k, f in model.model_fields.items() if not f.exclude)
-                   if hasattr(model, "model_fields") else "")
-        return f"{where}: unknown key {place!s}" + (f" — allowed keys in {parent or 'the top level'}: {allowed}" if allowed else "")
-    if kind == "missing":
-        return f"{where}: {place} is missing — it is required"
-    value = _dig(raw, loc)
-    if not loc or isinstance(value, dict):  # a rule across several keys: its message names them
-        return f"{where}: {place + ' — ' if loc else ''}{msg}"
-    return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'} — {msg}"
-
-
-def parse_override(text: str) -> tuple[list[str], Any]:
-    if "=" not in text:
-        raise UserError(_printable(f"--set {text} — expected key.path=value"))
-    key, value = text.split("=", 1)
-    if not key or any(not p for p in key.split(".")):
-        raise UserError(_printable(f"--set {text} — expected key.path=value"))
-    try:
-        return key.split("."), yaml.safe_load(value) if value != "" else ""
-    except yaml.YAMLError as e:
-        problem = " ".join(str(getattr(e, "problem", None) or e).split())
-        raise UserError(_printable(f"--set {text} — the value is not valid YAML ({problem})")) from None
-
-
-def apply_overrides(raw: dict, overrides: list[str]) -> dict:
-    for text in overrides:
-        path, value = parse_override(text)
-        node = raw
-        for part in path[:-1]:
-            if not isinstance(node.get(part, {}), dict):
-                raise UserError(_printable(f"--set {text} — {part} is not a section"))
-            node = node.setdefault(part, {})
-        node[path[-1]] = value
-    return raw
-
-
-def _read_yaml_mapping(path: Path, kind: str) -> dict:
-    where = str(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise UserError(f"{where}: no such {kind} file")
-    except UnicodeDecodeError as e:
-        line = path.read_bytes()[:e.start].count(b"\n") + 1
-        raise UserError(f"{where}: not UTF-8 text — line {line} (byte {e.start})") from None
-    except OSError as e:
-        raise UserError(f"{where}: cannot read — {e.strerror}")
-    try:
-        raw = yaml.safe_load(text)  # safe_load: a file we read can never construct Python objects
-    except yaml.YAMLError as e:
-        mark = getattr(e, "problem_mark", None)
-        line = f" line {mark.line + 1}" if mark else ""
-        problem = getattr(e, "problem", None) or str(e).splitlines()[0]
-        raise UserError(f"{where}:{line} is not valid YAML — {problem}") from None
-    if not isinstance(raw, dict):
-        raise UserError(f"{where}: expected a mapping of keys at the top level")
-    return raw
-
-
 def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
     path = Path(path)
-    raw = apply_overrides(_read_yaml_mapping(path, "recipe"), list(overrides))
+    raw = apply_overrides(read_yaml_mapping(path, "recipe"), list(overrides))
     overridden = {".".join(parse_override(text)[0]): text for text in overrides}
     return validate_recipe(raw, str(path), source=str(path.resolve()), overridden=overridden)
 
@@ -497,14 +395,14 @@ def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
 def load_budget(path: str | Path) -> BudgetConfig:
     """A budget file: YAML whose keys are those of a recipe's `budget:` section."""
     path = Path(path)
-    return validate_budget(_read_yaml_mapping(path, "budget"), str(path))
+    return validate_budget(read_yaml_mapping(path, "budget"), str(path))
 
 
 def validate_budget(raw: dict, where: str) -> BudgetConfig:
     try:
         return BudgetConfig.model_validate(raw)
     except ValidationError as e:
-        raise UserError(_explain(e.errors()[0], raw, where, BudgetConfig)) from None
+        raise UserError(explain(e.errors()[0], raw, where, BudgetConfig, RENAMED_KEYS)) from None
 
 
 def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None,
@@ -514,7 +412,7 @@ def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = No
     except ValidationError as e:
         # One line, the first problem: fixing one usually changes the rest.
         err = e.errors()[0]
-        text = (overridden or {}).get(_place(_loc(err)))
-        raise UserError(_explain(err, raw, f"{where} (--set {text})" if text else where)) from None
+        text = (overridden or {}).get(key_path(error_loc(err)))
+        raise UserError(explain(err, raw, f"{where} (--set {text})" if text else where, Recipe, RENAMED_KEYS)) from None
     recipe.source = source
     return recipe

@@ -15,7 +15,8 @@ from typing import Any
 
 from shrinkwrap.errors import UserError
 from shrinkwrap.fingerprint import sha256_json
-from shrinkwrap.recipe import Recipe, _read_yaml_mapping, apply_overrides, validate_recipe
+from shrinkwrap.recipe import Recipe, validate_recipe
+from shrinkwrap.yaml_config import apply_overrides, read_yaml_mapping
 
 # Sections a candidate may not change, and why: every candidate shares one teacher, fine-tuned once,
 # its outputs computed once, and is timed at one shape against one budget.
@@ -115,7 +116,7 @@ def load_search(path: str | Path, overrides: list[str] = ()) -> Space:
                         f"search: {{student.num_layers: [2, 3], student.max_length: [64, 128]}}")
     for key, values in space.items():
         _check_key(key, values, where)
-    raw = apply_overrides(_read_yaml_mapping(path, "recipe"), list(overrides))
+    raw = apply_overrides(read_yaml_mapping(path, "recipe"), list(overrides))
     source = str(path.resolve())
     # Each value on its own first, so that a value a key refuses is named as the search's.
     for key, values in space.items():
