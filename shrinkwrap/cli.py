@@ -405,7 +405,9 @@ def build_parser() -> argparse.ArgumentParser:
     package.add_argument("--int8", action=argparse.BooleanOptionalAction, default=True,
                          help="quantise the exported graph to int8 with ONNX Runtime, embeddings included "
                               "(default: on; a folder with model.onnx is packaged as it is)")
-    package.add_argument("--per-channel", action="store_true", help="int8 weights with per-channel scales")
+    package.add_argument("--per-channel", action=argparse.BooleanOptionalAction, default=True,
+                         help="int8 weights with one scale per output column rather than per tensor (default: on; "
+                              "--no-per-channel for one scale per tensor)")
     package.add_argument("--opset", type=_at_least(opset_min, opset_max), metavar="N", help="ONNX opset of the export (default: a recipe's "
                          "export.opset default)")
     package.add_argument("--threads", type=_positive_int, default=2, metavar="N",

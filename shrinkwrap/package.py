@@ -196,7 +196,7 @@ def _labels_of(config: dict, where: Path) -> list[str]:
 
 
 def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: str = "text", label: str = "label",
-                max_length: Optional[int] = None, int8: bool = True, per_channel: bool = False,
+                max_length: Optional[int] = None, int8: bool = True, per_channel: bool = True,
                 opset: Optional[int] = None,
                 threads: int = 2, log: Callable[[str], None] = lambda m: None) -> Path:
     """`shrinkwrap package`: an artifact from a transformers classification folder (exported to ONNX

@@ -214,7 +214,8 @@ STATIC_OP_TYPES = ("MatMul", "Gather", "Gemm")
 
 
 class OnnxQuantizeConfig(_Section):
-    per_channel: bool = Field(False, description="per-channel weight scales instead of one per tensor")
+    per_channel: bool = Field(True, description="int8 weights with one scale per output column (false: one "
+                              "scale per tensor, which lost up to 2.5 more points on the small pair tasks measured)")
     int8_operators: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
         default_factory=lambda: ["MatMul", "Attention", "Gather", "EmbedLayerNormalization"],
         min_length=1, description="operator types quantised. The embedding lookup (about half of a small model's "

@@ -107,7 +107,7 @@ def test_package_options_change_what_is_written(tiny_run, tmp_path, capsys):
     out = tmp_path / "a"
     capsys.readouterr()
     code = main(["package", str(tiny_run / "student"), "--out", str(out), "--data", str(data), "--text", "message",
-                 "--label", "queue", "--max-length", "16", "--opset", "17", "--per-channel", "--json"])
+                 "--label", "queue", "--max-length", "16", "--opset", "17", "--json"])
     stdout, stderr = capsys.readouterr()
     assert code == 0, stderr
     manifest = json.loads(stdout)
@@ -115,11 +115,18 @@ def test_package_options_change_what_is_written(tiny_run, tmp_path, capsys):
     model = onnx.load(str(out / "model.onnx"))
     assert {o.version for o in model.opset_import if o.domain in ("", "ai.onnx")} == {17}   # --opset (onnx)
     assert manifest["tokenizer"]["max_length"] == 16 and manifest["metrics"]["texts"] == len(rows)
-    # --per-channel: the int8 weights carry one scale per output column (onnx initialisers read directly)
-    init = {i.name: i for i in model.graph.initializer}
-    scales = [init[n.input[1].removesuffix("_quantized") + "_scale"] for n in model.graph.node
-              if n.op_type == "MatMulInteger" and n.input[1].removesuffix("_quantized") + "_scale" in init]
-    assert scales and all(len(s.dims) == 1 and s.dims[0] > 1 for s in scales)
+    # per-channel by default: the int8 weights carry one scale per output column (onnx initialisers read
+    # directly); --no-per-channel gives one scale per tensor
+    def weight_scales(model):
+        init = {i.name: i for i in model.graph.initializer}
+        return [init[n.input[1].removesuffix("_quantized") + "_scale"] for n in model.graph.node
+                if n.op_type == "MatMulInteger" and n.input[1].removesuffix("_quantized") + "_scale" in init]
+    assert weight_scales(model) and all(len(s.dims) == 1 and s.dims[0] > 1 for s in weight_scales(model))
+    assert manifest["model"]["quantization"]["per_channel"] is True
+    per_tensor = tmp_path / "per-tensor"
+    assert main(["package", str(tiny_run / "student"), "--out", str(per_tensor), "--no-per-channel"]) == 0
+    scales = weight_scales(onnx.load(str(per_tensor / "model.onnx")))
+    assert scales and all(np.prod(s.dims, dtype=int) == 1 for s in scales)
     # --max-length 16: a long text is cut at 16 tokens (the tokenizer saved in the artifact, run by the test)
     from tokenizers import Tokenizer
 
