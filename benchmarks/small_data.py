@@ -18,8 +18,8 @@ Every variant runs recipes/bbc-news.yaml (3-of-6-layer student, no pruning, no v
 `kd+aug` (augment.copies), `kd+aug+inter` (also hidden-state and attention terms, weight 1 each). On top of
 `kd+aug`, the int8 variants: `per-tensor` (onnx_quantize.per_channel: false; per-channel is the default),
 `fp32-embeddings` (the embedding lookup left out of op_types) and `static` (step student-onnx-int8-static,
-calibrated on training texts); they
-reuse the variant's teacher and student (same fingerprints), so only the ONNX steps run again.
+calibrated on training texts); they reuse the variant's teacher and student (same fingerprints), so only the
+ONNX steps run again.
 
 Per row: accuracy retained (step accuracy / teacher accuracy), the drop's McNemar p, and the chain's wall
 time (steps reused from an earlier variant cost ~0, so the first variant of a task carries the teacher).
