@@ -20,9 +20,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "recipes" / "data"))
 
-import numpy as np  # noqa: E402
-
 import bbc_news  # noqa: E402
+import numpy as np  # noqa: E402
 
 POINTS = [(1, 128), (8, 128), (1, "real")]
 
@@ -63,7 +62,7 @@ def by_hand(teacher_dir: Path, out: Path) -> dict[str, Path]:
 def measure_all(ctx, targets: dict[str, Path]) -> dict[str, dict]:
     from shrinkwrap.bench.grid import Point
     from shrinkwrap.bench.measure import Inputs, bench_target
-    from shrinkwrap.batches import encode
+    from shrinkwrap.serve.batches import encode
 
     cfg = ctx.recipe.bench.model_copy(update={"repeats": 50, "timed_seconds": 2.0})
     out = {}
@@ -101,9 +100,9 @@ def main() -> None:
     args = ap.parse_args()
 
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.pipeline import run_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows())

@@ -50,13 +50,13 @@ def by_hand(teacher_dir: Path, out: Path) -> Path:
 
 
 def accuracy(ctx, folder: Path) -> float:
-    from shrinkwrap.batches import all_logits
     from shrinkwrap.bench.targets import load_target
+    from shrinkwrap.serve.batches import all_outputs
 
     t = load_target(folder, ctx.recipe.bench.threads)
     tokens = ctx.tokens_of(folder)
     try:
-        logits = all_logits(t.logits, tokens.encoded["test"], tokens.pad_id, len(ctx.data.label_names), 32)
+        logits = all_outputs(t.outputs, tokens.encoded["test"], tokens.pad_id, len(ctx.data.label_names), 32)
     finally:
         t.release()
     return float((logits.argmax(1) == ctx.data.test.labels).mean())
@@ -69,8 +69,11 @@ def main() -> None:
     args = ap.parse_args()
 
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.search import Search, run_search
-    from shrinkwrap.search_space import load_search
+    from shrinkwrap.bench.timing import read_timing_batch, write_timing_batch
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.outputs.results import teacher_row
+    from shrinkwrap.search.run import CANDIDATES, Search, run_search
+    from shrinkwrap.search.space import load_search
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows())
@@ -84,18 +87,19 @@ def main() -> None:
     s = Search(space, out / "search", quiet=True)
     s.teacher()
     hand = by_hand(s.teacher_dir, out / "by-hand")
-    models = {"teacher (PyTorch fp32)": s.teacher_dir, "by hand: export + fusion + int8": hand}
+    write_timing_batch(hand, read_timing_batch(s.teacher_dir))  # the teacher's tokens, read by its own graph
+    models = {"by hand: export + fusion + int8": hand}
     w = summary["winner"]
-    if w is not None:
-        models["search winner"] = out / "search" / "artifact"
-    length = {"search winner": w is not None and (space.candidates[w].recipe.student.max_length
-                                                  or space.recipe.teacher.max_length)}
-    timed = s._time([(path, s._batch(path, length.get(name) or space.recipe.teacher.max_length))
-                     for name, path in models.items()])
+    if w is not None:  # the winner's shipped step, beside the batch it was timed on
+        models["search winner"] = out / "search" / CANDIDATES / space.candidates[w].folder_name / "student-onnx-int8"
+    timed = s._time_with_teacher(list(models.values()))
+    models = {"teacher (PyTorch fp32)": s.teacher_dir, **models}
+    timed = [s.teacher_latency, *timed]
+    ctx = prepare(space.recipe, out / "search" / "teacher-run", quiet=True)
     rows = {}
     for (name, path), lat in zip(models.items(), timed):
         acc = (summary["candidates"][w]["accuracy"] if name == "search winner"
-               else accuracy(s.ctx, path) if name.startswith("by hand") else s.teacher_results["steps"][0]["metrics"]["accuracy"])
+               else accuracy(ctx, path) if name.startswith("by hand") else teacher_row(s.teacher_results)["metrics"]["accuracy"])
         rows[name] = {"accuracy": acc, "p50_ms": lat["p50"], "p95_ms": lat["p95"]}
     print("| model | accuracy | p50 ms | p95 ms |\n|---|---|---|---|")
     for name, r in rows.items():

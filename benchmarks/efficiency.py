@@ -33,7 +33,7 @@ def onnx_matmul(m: int, k: int, n: int, int8: bool, threads: int, folder: Path) 
     import onnx
     from onnx import TensorProto, helper, numpy_helper
 
-    from shrinkwrap.onnx_tools import session
+    from shrinkwrap.serve.sessions import session
 
     w = numpy_helper.from_array(np.random.default_rng(0).standard_normal((k, n)).astype(np.float32), "w")
     graph = helper.make_graph([helper.make_node("MatMul", ["x", "w"], ["y"])], "mm",
@@ -58,7 +58,7 @@ def torch_matmul(m: int, k: int, n: int, int8: bool, threads: int) -> float:
     torch.set_num_threads(threads)
     lin = torch.nn.Linear(k, n, bias=False).eval()
     if int8:
-        from shrinkwrap.models import quantize_dynamic_int8
+        from shrinkwrap.ml.int8 import quantize_dynamic_int8
 
         lin = quantize_dynamic_int8(torch.nn.Sequential(lin))
     x = torch.randn(m, k)

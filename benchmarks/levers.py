@@ -30,9 +30,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "recipes" / "data"))
 
-import numpy as np  # noqa: E402
-
 import bbc_news  # noqa: E402
+import numpy as np  # noqa: E402
 
 # The prune settings of the `prune` and `both` variants: a third of the heads, half the feed-forward width.
 PRUNE = ["prune.heads_removed=4", "prune.neurons_removed_share=0.5", "prune.epochs=2", "prune.learning_rate=1e-4"]
@@ -62,8 +61,8 @@ def measure_all(ctx, targets: dict[str, Path], rounds: int = 2) -> dict[str, dic
 
     from shrinkwrap.bench.grid import Point
     from shrinkwrap.bench.measure import Inputs, bench_target
-    from shrinkwrap.batches import encode
-    from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
+    from shrinkwrap.serve.batches import encode
+    from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of_file
 
     cfg = ctx.recipe.bench.model_copy(update={"repeats": 30, "timed_seconds": 1.0, "warm_seconds": 0.3})
     encodings: dict[str, tuple] = {}
@@ -110,8 +109,8 @@ def main() -> None:
     args = ap.parse_args()
 
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import prepare, run_chain
+    from shrinkwrap.chain.runner import prepare, run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows(args.per_topic))

@@ -118,8 +118,8 @@ def perturbation(model: Path, trials: int) -> dict:
     reference = Reference(THREADS)
     plain, bursts = [], []
     for _ in range(trials):
-        plain.append(summarize(time_calls(lambda: target.logits(batch), 5, 15, 0.4))["p50"])
-        bursts.append(summarize(time_calls(lambda: target.logits(batch), 5, 15, 0.4, pause=reference.burst,
+        plain.append(summarize(time_calls(lambda: target.outputs(batch), 5, 15, 0.4))["p50"])
+        bursts.append(summarize(time_calls(lambda: target.outputs(batch), 5, 15, 0.4, pause=reference.burst,
                                            pause_every_s=EVERY_S))["p50"])
     target.release()
     return {"trials": trials, "p50_plain_ms": plain, "p50_with_bursts_ms": bursts,

@@ -47,8 +47,9 @@ def build(folder: Path, calibration: list[dict]) -> dict[str, dict]:
     """Every variant's .onnx file in `folder`, with what it is."""
     import torch
 
-    from shrinkwrap.models import load_classifier, resolve_base
-    from shrinkwrap.onnx_ops import export_onnx, fuse, quantize_dynamic, quantize_static_qdq
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.ml.convert import export_onnx, fuse, quantize_dynamic, quantize_static_qdq
+    from shrinkwrap.ml.models import resolve_base
 
     torch.manual_seed(0)
     model = load_classifier(resolve_base("bundled"), label_names=[f"class{i}" for i in range(5)])
@@ -84,8 +85,8 @@ def main() -> int:
 
     from shrinkwrap.bench.latency import summarize, time_calls
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.models import resolve_base
-    from shrinkwrap.onnx_tools import run_logits, session
+    from shrinkwrap.ml.models import resolve_base
+    from shrinkwrap.serve.sessions import run_outputs, session
 
     started = time.perf_counter()
     load_before = os.getloadavg()[0]
@@ -101,7 +102,7 @@ def main() -> int:
     with tempfile.TemporaryDirectory() as tmp:
         print("building variants ...", file=sys.stderr, flush=True)
         variants = build(Path(tmp), calibration)
-        reference = run_logits(session(variants["fp32 plain"]["path"], args.threads), check)
+        reference = run_outputs(session(variants["fp32 plain"]["path"], args.threads), check)
         samples = {name: [] for name in variants}
         diffs = {}
         rng = random.Random(0)
@@ -112,8 +113,8 @@ def main() -> int:
             for name in order:
                 sess = session(variants[name]["path"], args.threads)
                 if name not in diffs:
-                    diffs[name] = float(np.abs(run_logits(sess, check) - reference).max())
-                samples[name].extend(time_calls(lambda: run_logits(sess, timing), warmup=5, repeats=20,
+                    diffs[name] = float(np.abs(run_outputs(sess, check) - reference).max())
+                samples[name].extend(time_calls(lambda: run_outputs(sess, timing), warmup=5, repeats=20,
                                                 min_time_s=args.min_time, warmup_s=0.3).tolist())
                 del sess
         rows = []

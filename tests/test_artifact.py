@@ -9,7 +9,6 @@ import numpy as np
 import onnx
 import pytest
 import yaml
-
 from conftest import keyword_rows, write_csv
 
 FILES = {"model.onnx", "tokenizer.json", "labels.json", "manifest.json", "README.md", "config.json"}
@@ -159,7 +158,7 @@ def test_package_bad_input_exits_2_with_one_line_and_writes_nothing(case, tiny_r
 
 def test_bench_target_loads_artifact_and_refuses_a_tampered_one(tiny_run, tmp_path):
     from shrinkwrap.bench.targets import load_target
-    from shrinkwrap.errors import UserError
+    from shrinkwrap.serve.errors import UserError
 
     results = json.loads((tiny_run / "results.json").read_text())
     target = load_target(tiny_run / "artifact", threads=1)
@@ -167,7 +166,7 @@ def test_bench_target_loads_artifact_and_refuses_a_tampered_one(tiny_run, tmp_pa
     assert target.max_length == results["recipe"]["teacher"]["max_length"]
     assert target.tokenizer_dir == tiny_run / "artifact"
     ids = np.array([[101, 2026, 2799, 102]], dtype=np.int64)
-    assert target.logits({"input_ids": ids, "attention_mask": np.ones_like(ids),
+    assert target.outputs({"input_ids": ids, "attention_mask": np.ones_like(ids),
                           "token_type_ids": np.zeros_like(ids)}).shape == (1, len(target.label_names))
     target.release()
     art = tmp_path / "art"
@@ -179,7 +178,7 @@ def test_bench_target_loads_artifact_and_refuses_a_tampered_one(tiny_run, tmp_pa
 
 
 def test_model_card_has_per_class_change_with_counts_and_calibration(tiny_run):
-    from shrinkwrap.report import class_changes
+    from shrinkwrap.outputs.classification import class_changes
 
     card = (tiny_run / "artifact" / "README.md").read_text()
     results = json.loads((tiny_run / "results.json").read_text())

@@ -6,13 +6,13 @@ import shutil
 
 import numpy as np
 import pytest
+from conftest import tiny_recipe, write_recipe
 from scipy import stats
 
-from conftest import tiny_recipe, write_recipe
-from shrinkwrap import augment
-from shrinkwrap.augment import Vocabulary, augment_one, augment_split, in_split, ngram_rule, words_rule
-from shrinkwrap.data import Split
-from shrinkwrap.errors import UserError
+from shrinkwrap.ml import augment
+from shrinkwrap.ml.augment import Vocabulary, augment_one, augment_split, in_split, ngram_rule, words_rule
+from shrinkwrap.ml.data import Split
+from shrinkwrap.serve.errors import UserError
 
 TEXTS = ["the cat sat on the mat", "a dog ran in the park today", "the bird sang on a wire",
          "my cat ran to the door", "a bird sat in the tree"]
@@ -126,7 +126,7 @@ def test_test_texts_reproduced_are_counted():
 
 
 def test_recipe_checks_of_the_augment_section(tiny_base, keyword_csv):
-    from shrinkwrap.recipe import validate_recipe
+    from shrinkwrap.recipe.schema import validate_recipe
 
     def check(**augment_keys):
         return validate_recipe(tiny_recipe(tiny_base, keyword_csv, augment=augment_keys), "r.yaml")
@@ -151,8 +151,8 @@ def teacher_done(tiny_run, tmp_path):
 
 
 def _run(folder, base, data, student=None, **augment_keys):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     recipe = tiny_recipe(base, data, student=student or {}, augment=augment_keys)
     recipe = load_recipe(write_recipe(folder / "r.yaml", recipe))
@@ -163,9 +163,9 @@ def _soft_targets(recipe, run):
     """The student step's soft targets for `recipe` over the finished teacher in `run`, and the cache's answer."""
     import json
 
-    from shrinkwrap.distillation import soft_targets
-    from shrinkwrap.models import load_classifier
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.ml.distillation import soft_targets
 
     ctx = prepare(recipe, run, quiet=True)
     ctx.fingerprints["teacher"] = json.loads((run / "teacher" / "step.json").read_text())["fingerprint"]
@@ -174,7 +174,7 @@ def _soft_targets(recipe, run):
 
 
 def test_student_distils_on_augmented_copies_labelled_once(teacher_done, tiny_base, keyword_csv):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     run = teacher_done / "run"
     recipe, results = _run(teacher_done, tiny_base, keyword_csv, copies=2, seed=3)
@@ -217,7 +217,7 @@ def test_student_distils_on_augmented_copies_labelled_once(teacher_done, tiny_ba
 def test_augmented_test_texts_are_a_caution(tiny_run):
     import json
 
-    from shrinkwrap.report import cautions
+    from shrinkwrap.outputs.findings import cautions
 
     results = json.loads((tiny_run / "results.json").read_text())
     assert not any("augmented" in line for line in cautions(results))
@@ -227,7 +227,7 @@ def test_augmented_test_texts_are_a_caution(tiny_run):
 
 
 def test_student_stops_on_agreement_and_scales_its_epochs(teacher_done, tiny_base, keyword_csv):
-    from shrinkwrap.distillation import scaled_epochs
+    from shrinkwrap.ml.distillation import scaled_epochs
 
     recipe, results = _run(teacher_done, tiny_base, keyword_csv, student={"metric": "agreement", "epochs": None,
                                                                            "patience": 1})
@@ -246,8 +246,9 @@ def test_student_stops_on_agreement_and_scales_its_epochs(teacher_done, tiny_bas
 
 def test_pair_copies_with_swap_are_encoded_as_pairs(tmp_path, tiny_base):
     from conftest import keyword_rows, write_csv
-    from shrinkwrap.preflight import prepare
-    from shrinkwrap.recipe import load_recipe
+
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     rows = [(" ".join(t.split()[:3]), " ".join(t.split()[3:]), y) for t, y in keyword_rows(60)]
     data = write_csv(tmp_path / "pairs.csv", rows, header=("first", "second", "label"))
@@ -271,8 +272,8 @@ def test_pair_copies_with_swap_are_encoded_as_pairs(tmp_path, tiny_base):
 def test_mask_needs_a_mask_token(tmp_path, tiny_base, keyword_csv):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.preflight import prepare
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     base = tmp_path / "base"
     shutil.copytree(tiny_base, base)

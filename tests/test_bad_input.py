@@ -17,7 +17,6 @@ import sys
 from pathlib import Path
 
 import pytest
-
 from conftest import ROOT, keyword_rows, tiny_recipe, write_csv, write_recipe
 
 ENV = os.environ | {"OMP_NUM_THREADS": "1", "TOKENIZERS_PARALLELISM": "false"}
@@ -26,9 +25,9 @@ ENV = os.environ | {"OMP_NUM_THREADS": "1", "TOKENIZERS_PARALLELISM": "false"}
 # files, and answers with the child's exit code.
 WORKER = r"""
 import json, os, sys, traceback
-import shrinkwrap.cli, shrinkwrap.data, shrinkwrap.models, shrinkwrap.runner
+import shrinkwrap.cli, shrinkwrap.ml.data, shrinkwrap.ml.models, shrinkwrap.chain.runner
 import datasets, pandas, sklearn.model_selection, transformers
-shrinkwrap.runner.chain()  # imports every step
+shrinkwrap.chain.runner.chain()  # imports every step
 print("ready", flush=True)
 for line in sys.stdin:
     case = json.loads(line)
@@ -159,7 +158,7 @@ def case_zero_epochs(tmp, base, data):
 
 
 def case_negative_epochs(tmp, base, data):
-    return _with(tmp, base, data, "student", "epochs", -2), [], ["student.epochs = -2", "greater than or equal to 1"]
+    return _with(tmp, base, data, "student", "epochs", -2), [], ["student.epochs = -2", "greater than or equal to 0"]
 
 
 def case_zero_temperature(tmp, base, data):
@@ -462,8 +461,8 @@ def test_bad_input_leaves_an_existing_run_folder_unchanged(name, worker, tiny_ru
 # ---- not errors: dropped empty texts, duplicates across splits, a 1 MB text ----
 
 def test_drop_empty_drops_and_notes_instead_of_failing(tmp_path, tiny_base):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     rows = list(ROWS)
     rows[2], rows[6] = ("", rows[2][1]), ("  ", rows[6][1])

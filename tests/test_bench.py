@@ -10,8 +10,8 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
-
 from conftest import ROOT
+
 from shrinkwrap.cli import main
 
 FAST = ["--warmup", "1", "--warm-seconds", "0", "--repeats", "5", "--timed-seconds", "0", "--threads", "1"]
@@ -47,8 +47,8 @@ def bare_encoder(tiny_base, tmp_path_factory) -> Path:
 @pytest.fixture(scope="module")
 def test_csv(tiny_run, tmp_path_factory) -> Path:
     """The tiny run's own test split, written as a table."""
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import load_recipe
 
     recipe = load_recipe(tiny_run.parent / "recipe.yaml")
     data = load_dataset(recipe.data, recipe.resolve(recipe.data.path), "data")

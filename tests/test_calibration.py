@@ -3,7 +3,8 @@ import numpy as np
 import pytest
 from sklearn.metrics import brier_score_loss, log_loss
 
-from shrinkwrap import calibration
+from shrinkwrap.ml.temperature import fit_temperature
+from shrinkwrap.serve import calibration
 
 
 def _data(n=400, k=3, seed=0, scale=4.0):
@@ -46,7 +47,7 @@ def test_nll_equals_sklearn_log_loss_and_brier_matches_sklearn_for_two_classes()
 def test_temperature_fit_lowers_nll_of_an_over_confident_model():
     val_logits, val_y = _data(seed=2)
     test_logits, test_y = _data(seed=3)
-    t = calibration.fit_temperature(val_logits, val_y)
+    t = fit_temperature(val_logits, val_y)
     assert t > 1.5  # over-confident: the fit softens the scores
     before = calibration.nll(calibration.softmax(test_logits), test_y)
     after = calibration.nll(calibration.softmax(test_logits, t), test_y)
@@ -71,11 +72,11 @@ def test_coverage_curve_answers_fewer_texts_more_accurately():
 
 
 def test_class_caution_names_the_bbc_like_case_and_not_chance_losses():
-    from shrinkwrap.report import _lost_too_many
+    from shrinkwrap.outputs.classification import lost_too_many
 
     # BBC News: one class lost 5 of 102 texts while the average fell 0.9 points — named
-    assert _lost_too_many(5, 102, 0.9)[0]
+    assert lost_too_many(5, 102, 0.9)[0]
     # one text of a class: chance, not named
-    assert not _lost_too_many(1, 102, 0.9)[0]
+    assert not lost_too_many(1, 102, 0.9)[0]
     # a class losing at the average rate: not named
-    assert not _lost_too_many(2, 100, 2.0)[0]
+    assert not lost_too_many(2, 100, 2.0)[0]

@@ -8,19 +8,19 @@ from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
 
 
 def _load(folder, tiny_base, data, **sections):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     return load_recipe(write_recipe(folder / "r.yaml", tiny_recipe(tiny_base, data, **sections)))
 
 
 def _test_texts(recipe, folder) -> list[str]:
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
 
     return list(prepare(recipe, folder / "probe", quiet=True).data.test.texts)
 
 
 def test_transfer_texts_from_the_test_split_are_cautioned(tiny_run, tiny_base, keyword_csv, tmp_path):
-    from shrinkwrap.pipeline import run_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
 
     (tmp_path / "run").mkdir()
     shutil.copytree(tiny_run / "teacher", tmp_path / "run" / "teacher")
@@ -44,7 +44,7 @@ def test_no_transfer_overlap_no_caution(tiny_run):
 
 
 def test_trimming_that_loses_test_pieces_is_cautioned(tiny_base, tmp_path):
-    from shrinkwrap.pipeline import run_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
 
     rows = keyword_rows()
     data = write_csv(tmp_path / "plain.csv", rows)

@@ -4,9 +4,8 @@ import subprocess
 import sys
 
 import numpy as np
-import pytest
 import onnx
-
+import pytest
 from conftest import tiny_recipe, write_recipe
 
 STEPS = ["teacher", "student", "student-int8", "student-onnx", "student-onnx-int8"]
@@ -69,8 +68,8 @@ def test_student_keeps_the_chosen_number_of_layers(tiny_run):
 
 
 def test_rerun_reuses_finished_steps(tiny_run_copy, tiny_base, keyword_csv, tmp_path):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     before = {s: (tiny_run_copy / s / "step.json").stat().st_mtime_ns for s in STEPS}
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv)))
@@ -80,8 +79,8 @@ def test_rerun_reuses_finished_steps(tiny_run_copy, tiny_base, keyword_csv, tmp_
 
 
 def test_changed_student_section_reruns_student_and_later_steps_only(tiny_run_copy, tiny_base, keyword_csv, tmp_path):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     before = {s: json.loads((tiny_run_copy / s / "step.json").read_text())["fingerprint"] for s in STEPS}
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv)),

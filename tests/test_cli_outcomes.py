@@ -1,5 +1,5 @@
-"""What the command line does beyond the happy path of each command: `run --json`, a step failing (exit 3), an
-interrupt (exit 130), `bench --text-pair`, and `package`'s options each changing what it writes."""
+"""What the command line does beyond the happy path of each command: `run --json`, a step failing (exit 3), a bug
+(exit 4), an interrupt (exit 130), `bench --text-pair`, and `package`'s options each changing what it writes."""
 from __future__ import annotations
 
 import json
@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
-
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
 
 from shrinkwrap.cli import main
@@ -45,6 +44,27 @@ def test_a_failing_step_is_exit_3_and_leaves_no_half_step(tmp_path, tiny_base, k
     assert not (out / "teacher" / "step.json").exists() and not (out / "results.json").exists()
 
 
+def test_a_bug_is_exit_4_with_one_line_and_the_traceback_in_a_file(tiny_run, tmp_path, monkeypatch, capsys):
+    import tempfile
+
+    import shrinkwrap.outputs.report as report
+
+    def broken(*args, **kwargs):
+        return 1 / 0
+
+    monkeypatch.setattr(report, "report_from_file", broken)
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    capsys.readouterr()
+    assert main(["report", str(tiny_run / "results.json"), "--out", str(tmp_path / "r")]) == 4
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    assert lines[0].startswith("internal error: ZeroDivisionError: division by zero (at ")
+    written = Path(lines[0].split("traceback written to ")[1].split(";")[0])
+    assert written.parent == tmp_path and "Traceback (most recent call last)" in written.read_text()
+    assert "in broken" in written.read_text()
+
+
 def test_an_interrupt_is_exit_130_and_the_rerun_resumes(tmp_path, tiny_base, keyword_csv):
     recipe = write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv, teacher={"epochs": 400, "patience": 400}))
     out = tmp_path / "run"
@@ -69,8 +89,8 @@ def test_bench_text_pair_reads_both_columns(tmp_path, tiny_base):
     from sklearn.metrics import accuracy_score
     from transformers import AutoModelForSequenceClassification, AutoTokenizer
 
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     rows = [(t.split()[0], " ".join(t.split()[1:]), y) for t, y in keyword_rows(120)]
     data = write_csv(tmp_path / "pairs.csv", rows, header=("subject", "body", "label"))

@@ -6,11 +6,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import ROOT, keyword_rows, tiny_recipe, write_csv, write_recipe
 from sklearn.model_selection import train_test_split
 
-from conftest import ROOT, keyword_rows, tiny_recipe, write_csv, write_recipe
-from shrinkwrap.data import load_dataset
-from shrinkwrap.recipe import load_recipe
+from shrinkwrap.ml.data import load_dataset
+from shrinkwrap.recipe.schema import load_recipe
 
 
 def _cfg(tmp_path, base, data):
@@ -60,7 +60,8 @@ def test_jsonl_parquet_and_a_datasets_folder_read_the_same_rows_as_csv(tmp_path,
 
 def test_a_run_from_a_datasets_folder_with_its_own_splits(tmp_path, tiny_base):
     import datasets
-    from shrinkwrap.runner import run_chain
+
+    from shrinkwrap.chain.runner import run_chain
 
     parts = {"train": keyword_rows(150, seed=1), "validation": keyword_rows(30, seed=2), "test": keyword_rows(30, seed=3)}
     datasets.DatasetDict({k: datasets.Dataset.from_pandas(pd.DataFrame(v, columns=["text", "label"]))
@@ -75,7 +76,7 @@ def test_a_run_from_a_datasets_folder_with_its_own_splits(tmp_path, tiny_base):
 
 @pytest.mark.parametrize("name", ["demo.yaml", "bbc-news.yaml"])
 def test_shipped_recipes_load_and_validate(name):
-    from shrinkwrap.preflight import prepare  # noqa: F401  (the recipe must also be what preflight reads)
+    from shrinkwrap.chain.preflight import prepare  # noqa: F401  (the recipe must also be what preflight reads)
 
     recipe = load_recipe(ROOT / "recipes" / name)
     assert recipe.name and recipe.teacher.epochs >= 1 and recipe.student.num_layers >= 1

@@ -6,13 +6,12 @@ import shutil
 import numpy as np
 import pytest
 import torch
+from conftest import tiny_recipe, write_recipe
 from torch.nn import functional as F
 
-from conftest import tiny_recipe, write_recipe
-from shrinkwrap.errors import UserError
-from shrinkwrap.losses import attention_loss, distillation_loss, hidden_state_loss, soft_label_loss
-from shrinkwrap.models import evenly_spaced, keep_layers
-
+from shrinkwrap.ml.losses import attention_loss, distillation_loss, hidden_state_loss, soft_label_loss
+from shrinkwrap.ml.models import evenly_spaced, keep_layers
+from shrinkwrap.serve.errors import UserError
 
 # --- the soft-label loss: Hinton, Vinyals & Dean 2015, "Distilling the Knowledge in a Neural Network" ---
 
@@ -98,7 +97,7 @@ def test_evenly_spaced_keeps_first_and_last_layer():
 
 
 def test_keep_layers_copies_exactly_the_chosen_weights(tiny_base):
-    from shrinkwrap.models import load_classifier
+    from shrinkwrap.ml.classification import load as load_classifier
 
     teacher = load_classifier(str(tiny_base), label_names=["a", "b", "c"])
     before = {k: v.clone() for k, v in teacher.state_dict().items()}
@@ -121,8 +120,8 @@ def test_keep_layers_copies_exactly_the_chosen_weights(tiny_base):
 # --- the student step in the chain ---
 
 def _run_student(tmp_path, teacher_base, data, **student):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     recipe = tiny_recipe(teacher_base, data, student=student)
     return run_chain(load_recipe(write_recipe(tmp_path / "r.yaml", recipe)), tmp_path / "run", quiet=True,
@@ -182,8 +181,8 @@ def test_transfer_texts_are_learnt_from(teacher_done, tiny_base, keyword_csv):
 def test_pretrained_student_with_another_tokenizer_is_refused(tmp_path, tiny_base, keyword_csv):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     other = tmp_path / "other"
     shutil.copytree(tiny_base, other)

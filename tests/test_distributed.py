@@ -6,7 +6,6 @@ import subprocess
 import sys
 
 import pytest
-
 from conftest import tiny_recipe, write_recipe
 
 

@@ -8,7 +8,6 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
-
 from conftest import bbc_rows, write_csv, write_recipe
 
 pytestmark = pytest.mark.slow
@@ -16,8 +15,8 @@ pytestmark = pytest.mark.slow
 
 @pytest.fixture(scope="module")
 def bbc_run(tmp_path_factory):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.pipeline import run_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     folder = tmp_path_factory.mktemp("bbc")
     data = write_csv(folder / "bbc.csv", bbc_rows(per_class=40), header=("text", "topic"))
@@ -62,8 +61,8 @@ def test_onnx_logits_equal_pytorch_on_the_test_texts(bbc_run):
 
     results = json.loads((bbc_run / "results.json").read_text())
 
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import DataConfig
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import DataConfig
 
     cfg = DataConfig(**results["recipe"]["data"] | {"path": results["data"]["path"]})
     test = load_dataset(cfg, Path(results["data"]["path"]), "bbc").test

@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 
 import pytest
-
 from conftest import bundled_path, keyword_rows, tiny_recipe, write_csv, write_recipe
 
 LABELS = ["outage", "login", "refund"]  # not sorted: the run must follow the model's order
@@ -65,11 +64,11 @@ def family_data(tmp_path_factory):
 def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
     import onnx
 
-    from shrinkwrap.artifact import load
+    from shrinkwrap.chain.pipeline import run_recipe
     from shrinkwrap.cli import main
-    from shrinkwrap.pipeline import run_recipe
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.artifact import load
 
     base = own_classifier(family, tmp_path / "own")
     raw = tiny_recipe(base, family_data,
@@ -110,9 +109,9 @@ def test_family_goes_through_the_whole_chain(family, tmp_path, family_data):
 
 def _refusal(tmp_path, base, data, **sections):
     """The one-line refusal of a recipe before anything runs (prepare writes nothing)."""
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.errors import UserError
 
     raw = tiny_recipe(base, data, **sections)
     raw["teacher"] = {"base": str(base), "trained": True, "max_length": 30}
@@ -169,9 +168,9 @@ def test_trimming_a_bpe_vocabulary_is_refused_naming_the_family(tmp_path, family
 def test_models_are_fed_only_the_inputs_they_take(tmp_path, family_data):
     """DistilBERT's forward takes no token_type_ids and RoBERTa has one segment embedding, while the bundled
     WordPiece tokenizer gives second-segment ids of 1 for pairs: both read pairs without them."""
-    from shrinkwrap.models import load_tokenizer, model_inputs
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.ml.models import load_tokenizer, model_inputs
+    from shrinkwrap.recipe.schema import load_recipe
 
     assert "token_type_ids" in model_inputs(tiny_config("bert", 100))
     for family in ("distilbert", "roberta", "deberta-v2"):
@@ -197,8 +196,8 @@ def test_a_graph_whose_if_branch_reads_a_later_value_is_sorted(tmp_path):
     import onnx
     from onnx import TensorProto, helper
 
-    from shrinkwrap.onnx_ops import sort_topologically
-    from shrinkwrap.onnx_tools import session
+    from shrinkwrap.ml.convert import sort_topologically
+    from shrinkwrap.serve.sessions import session
 
     def branch(name):
         return helper.make_graph([helper.make_node("Identity", ["doubled"], [f"{name}_out"])], name, [],
@@ -226,8 +225,8 @@ def test_a_family_s_encoder_is_fine_tuned_too(tmp_path, keyword_csv):
     import torch
     from transformers import AutoTokenizer, DistilBertModel
 
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     tok = AutoTokenizer.from_pretrained(bundled_path())
     torch.manual_seed(0)

@@ -45,7 +45,7 @@ def test_pruned_model_count_matches_torch_flop_counter(heads, neurons):
     from transformers import BertConfig, BertForSequenceClassification
 
     from shrinkwrap.bench.flops import ops_per_forward
-    from shrinkwrap.pruning import remove_heads, remove_neurons
+    from shrinkwrap.ml.pruning import remove_heads, remove_neurons
 
     cfg = BertConfig(vocab_size=100, hidden_size=64, num_hidden_layers=3, num_attention_heads=4,
                      intermediate_size=128, max_position_embeddings=64, attn_implementation="eager", num_labels=3)

@@ -18,7 +18,7 @@ from onnx import TensorProto, helper, numpy_helper
 from shrinkwrap.bench.grid import Point, point_batches
 from shrinkwrap.bench.targets import SAFE_VOCAB, load_target
 from shrinkwrap.cli import main
-from shrinkwrap.errors import UserError
+from shrinkwrap.serve.errors import UserError
 
 VOCAB = 30522  # the bundled uncased WordPiece of tiny_base
 FAST = ["--repeats", "3", "--timed-seconds", "0", "--warmup", "0", "--warm-seconds", "0", "--sequence-length", "16",
@@ -97,7 +97,7 @@ def _no_token_types(src: Path, out: Path) -> Path:
 def _variant(kind: str, encoder: Path, tiny_base: Path, root: Path) -> Path:
     from transformers import BertConfig
 
-    from shrinkwrap.onnx_ops import fuse, quantize_dynamic, quantize_static_qdq
+    from shrinkwrap.ml.convert import fuse, quantize_dynamic, quantize_static_qdq
 
     out = root / kind
     out.mkdir()
@@ -142,7 +142,7 @@ def test_bench_times_a_foreign_encoder(kind, encoder, tiny_base, tmp_path, capsy
     if kind == "no-token-type-ids":
         assert "token_type_ids" not in target.input_names
     batch = point_batches(Point(2, 16), target, None, 0)[0]
-    hidden = target.logits(batch)
+    hidden = target.outputs(batch)
     assert hidden.shape[:2] == (2, 16) and np.isfinite(hidden).all()
     if kind == "external-data":
         assert {p.name for p in target.weight_files} == {"model.onnx", "weights.bin"}

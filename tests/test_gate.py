@@ -8,7 +8,7 @@ import xml.etree.ElementTree as ET
 import pytest
 import yaml
 
-from shrinkwrap.recipe import BudgetConfig
+from shrinkwrap.recipe.budget import BudgetConfig
 
 ROOT = __import__("pathlib").Path(__file__).resolve().parents[1]
 
@@ -235,7 +235,7 @@ def test_run_with_a_recipe_budget_gates_after_writing_results(tiny_run, tiny_run
 
 
 def test_budget_file_and_recipe_budget_share_one_schema(tmp_path):
-    from shrinkwrap.recipe import load_budget
+    from shrinkwrap.recipe.budget import load_budget
 
     keys = {"latency_p95_ms": 20, "size_mb": 30, "accuracy_drop_points": 1.5, "min_accuracy": 0.8,
             "regression": {"p95_percent": 10}}
@@ -243,8 +243,8 @@ def test_budget_file_and_recipe_budget_share_one_schema(tmp_path):
 
 
 def test_recipe_budget_shape_must_match_the_benchmark():
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import validate_recipe
+    from shrinkwrap.recipe.schema import validate_recipe
+    from shrinkwrap.serve.errors import UserError
 
     raw = {"name": "x", "data": {"path": "d.csv"}, "bench": {"batch_size": 1},
            "budget": {"latency_p95_ms": 10, "batch_size": 8}}

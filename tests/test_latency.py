@@ -9,7 +9,7 @@ from shrinkwrap.bench.grid import REAL, Point, grid, parse_length, real_batches,
 from shrinkwrap.bench.latency import PERCENTILES, summarize, throughput_per_s, time_calls
 from shrinkwrap.bench.memory import PeakWindow
 from shrinkwrap.bench.reference import Reference, normalise
-from shrinkwrap.errors import UserError
+from shrinkwrap.serve.errors import UserError
 
 
 def test_percentiles_and_mean_interval_equal_scipy():

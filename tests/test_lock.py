@@ -10,16 +10,15 @@ import sys
 from pathlib import Path
 
 import pytest
-
 from conftest import tiny_recipe, write_recipe
 
-from shrinkwrap.errors import UserError
-from shrinkwrap.rundir import LOCK_FILE, run_lock
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.rundir import LOCK_FILE, run_lock
 
 HOLD = r"""
 import sys, time
 from pathlib import Path
-from shrinkwrap.rundir import run_lock
+from shrinkwrap.serve.rundir import run_lock
 with run_lock(Path(sys.argv[1])):
     print("held", flush=True)
     time.sleep(float(sys.argv[2]))

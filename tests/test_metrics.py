@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import accuracy_score, f1_score, precision_recall_fscore_support
 
-from shrinkwrap.metrics import classification_metrics, confusion
+from shrinkwrap.ml.metrics import classification_metrics, confusion
 
 
 def _numpy_reference(y, p, k):

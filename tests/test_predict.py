@@ -5,7 +5,6 @@ import subprocess
 import sys
 
 import pytest
-
 from conftest import ROOT
 
 
@@ -16,8 +15,8 @@ def _predict(*args, stdin=None):
 
 def _test_texts(run_dir):
     """The run's test split, rebuilt from its recipe exactly as the chain built it."""
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import load_recipe
 
     recipe = load_recipe(run_dir.parent / "recipe.yaml")
     return load_dataset(recipe.data, recipe.resolve(recipe.data.path), "test").test.texts
@@ -59,7 +58,7 @@ _PROBE = """
 import json, sys
 for name in ("torch", "transformers", "optimum", "onnx", "pydantic", "pandas", "sklearn", "scipy"):
     sys.modules[name] = None
-from shrinkwrap.predict import run_predict
+from shrinkwrap.serve.predict import run_predict
 code = run_predict(sys.argv[1], ["my router is offline"], None, 32, 1, stdout=sys.stderr)
 third_party = sorted({m.split(".")[0] for m, v in sys.modules.items() if v is not None}
                      - set(sys.stdlib_module_names) - {"__main__"})
@@ -147,7 +146,7 @@ def test_bad_text_input_exits_2_with_one_line(case, tiny_run, tmp_path):
 
 
 def test_more_lines_than_one_chunk_come_back_all_in_order(tiny_run, tmp_path):
-    from shrinkwrap.predict import CHUNK
+    from shrinkwrap.serve.predict import CHUNK
 
     texts = [f"router {i} offline" if i % 2 else f"refund {i} please" for i in range(CHUNK * 2 + 7)]
     (tmp_path / "t.txt").write_bytes(("\r\n".join(texts) + "\r\n").encode())   # Windows line ends too
@@ -159,7 +158,7 @@ def test_more_lines_than_one_chunk_come_back_all_in_order(tiny_run, tmp_path):
 
 
 def test_temperature_in_manifest_and_min_confidence_abstains(tiny_run, tmp_path):
-    from shrinkwrap.artifact import load
+    from shrinkwrap.serve.artifact import load
 
     results = json.loads((tiny_run / "results.json").read_text())
     manifest = json.loads((tiny_run / "artifact" / "manifest.json").read_text())
@@ -181,7 +180,7 @@ def test_temperature_in_manifest_and_min_confidence_abstains(tiny_run, tmp_path)
     tops = [max(r["scores"].values()) for r in rows]
     # scores are softmax(logits / T)
     import numpy as np
-    z = art.logits(texts) / t
+    z = art.outputs(texts) / t
     p = np.exp(z - z.max(1, keepdims=True)); p /= p.sum(1, keepdims=True)
     assert np.allclose(tops, p.max(1), atol=1e-5)
     exact = sorted(p.max(1))                  # unrounded: the printed scores carry 6 decimals only
@@ -219,7 +218,7 @@ def test_hostile_texts_are_classified_and_long_ones_noted(tiny_run, tmp_path):
 def test_a_long_text_keeps_exactly_the_tokens_of_the_whole_text(tiny_run):
     """The prefix the artifact tokenises a very long text from gives the same kept tokens as tokenising all of
     it (the tokenizers library run on the whole text is the reference)."""
-    from shrinkwrap.artifact import load
+    from shrinkwrap.serve.artifact import load
 
     art = load(tiny_run / "artifact")
     rng = __import__("random").Random(0)

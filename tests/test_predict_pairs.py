@@ -8,7 +8,6 @@ import subprocess
 import sys
 
 import pytest
-
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
 
 
@@ -20,9 +19,9 @@ def _predict(*args, stdin=None):
 @pytest.fixture(scope="module")
 def pair_run(tmp_path_factory, tiny_base):
     """A whole chain on pairs (first word, rest of the message): its artifact and the test pairs."""
-    from shrinkwrap.pipeline import run_recipe
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import load_recipe
 
     folder = tmp_path_factory.mktemp("pairs")
     rows = [(t.split()[0], " ".join(t.split()[1:]), y) for t, y in keyword_rows(150)]

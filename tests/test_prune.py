@@ -8,19 +8,19 @@ import numpy as np
 import onnx
 import pytest
 import torch
+from conftest import tiny_recipe, write_recipe
 from torch.nn import functional as F
 
-from conftest import tiny_recipe, write_recipe
-from shrinkwrap.errors import UserError
-from shrinkwrap.pruning import importance, least_important, remove_heads, remove_neurons
+from shrinkwrap.ml.pruning import importance, least_important, remove_heads, remove_neurons
+from shrinkwrap.serve.errors import UserError
 
 HEAD = 16  # the tiny student: 2 layers, 2 heads of 16, feed-forward width 64
 
 
 @pytest.fixture(scope="module")
 def examples(tiny_run, tiny_base, keyword_csv, tmp_path_factory):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     folder = tmp_path_factory.mktemp("prune-data")
     ctx = prepare(load_recipe(write_recipe(folder / "r.yaml", tiny_recipe(tiny_base, keyword_csv))), folder / "run",
@@ -29,14 +29,14 @@ def examples(tiny_run, tiny_base, keyword_csv, tmp_path_factory):
 
 
 def _student(tiny_run):
-    from shrinkwrap.models import load_classifier
+    from shrinkwrap.ml.classification import load as load_classifier
 
     return load_classifier(str(tiny_run / "student"))
 
 
 def _batch(examples):
-    from shrinkwrap.batches import collate
-    from shrinkwrap.models import to_torch
+    from shrinkwrap.ml.models import to_torch
+    from shrinkwrap.serve.batches import collate
 
     ex, labels, pad = examples
     return to_torch(collate(ex, pad)), torch.as_tensor(labels)
@@ -90,8 +90,8 @@ def test_least_important_picks_the_lowest_scores_of_each_layer():
 
 
 def test_pruning_removes_exactly_the_chosen_heads_and_neurons(tiny_run, tmp_path, examples):
-    from shrinkwrap.models import load_classifier
-    from shrinkwrap.train import predict_logits
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.ml.train import predict_outputs
 
     model = _student(tiny_run)
     before = {k: v.clone() for k, v in model.state_dict().items()}
@@ -118,13 +118,13 @@ def test_pruning_removes_exactly_the_chosen_heads_and_neurons(tiny_run, tmp_path
     model.save_pretrained(tmp_path / "m", safe_serialization=True)
     again = load_classifier(str(tmp_path / "m"))
     ex, _, pad = examples
-    assert np.array_equal(predict_logits(model, ex, pad), predict_logits(again, ex, pad))
+    assert np.array_equal(predict_outputs(model, ex, pad), predict_outputs(again, ex, pad))
     with pytest.raises(ValueError, match="same number"):
         remove_neurons(again, {0: [0], 1: [0, 1]})
 
 
 def test_units_that_contribute_nothing_prune_to_the_same_logits(tiny_run, examples):
-    from shrinkwrap.train import predict_logits
+    from shrinkwrap.ml.train import predict_outputs
 
     model = _student(tiny_run)
     heads, neurons = {0: [1], 1: [0]}, {0: [3, 7, 9], 1: [0, 1, 2]}
@@ -135,15 +135,15 @@ def test_units_that_contribute_nothing_prune_to_the_same_logits(tiny_run, exampl
                 layer.attention.self.value.bias[h * HEAD:(h + 1) * HEAD] = 0
             layer.output.dense.weight[:, neurons[i]] = 0  # neurons whose outputs are ignored
     ex, _, pad = examples
-    zeroed = predict_logits(model, ex, pad)
+    zeroed = predict_outputs(model, ex, pad)
     remove_heads(model, heads)
     remove_neurons(model, neurons)
-    assert np.abs(predict_logits(model, ex, pad) - zeroed).max() <= 1e-5
+    assert np.abs(predict_outputs(model, ex, pad) - zeroed).max() <= 1e-5
 
 
 def test_pruned_step_in_the_chain_down_to_onnx(tiny_run, tmp_path, tiny_base, keyword_csv):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     for folder in ("teacher", "student", "cache"):  # the cache: the teacher's outputs the student learnt from
         shutil.copytree(tiny_run / folder, tmp_path / "run" / folder)
@@ -170,8 +170,8 @@ def test_pruned_step_in_the_chain_down_to_onnx(tiny_run, tmp_path, tiny_base, ke
 
 
 def test_too_many_heads_is_refused_before_anything_runs(tmp_path, tiny_base, keyword_csv):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv, prune={
         "enabled": True, "heads_removed": 2})))

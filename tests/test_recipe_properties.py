@@ -10,8 +10,8 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from shrinkwrap.errors import UserError
-from shrinkwrap.recipe import Recipe, load_recipe
+from shrinkwrap.recipe.schema import Recipe, load_recipe
+from shrinkwrap.serve.errors import UserError
 
 SHIPPED = Path(__file__).resolve().parents[1] / "recipes" / "demo.yaml"
 BASE = yaml.safe_load(SHIPPED.read_text(encoding="utf-8"))

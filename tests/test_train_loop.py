@@ -10,8 +10,9 @@ import torch
 import torch.nn.functional as F
 from transformers import BertConfig, BertForSequenceClassification
 
-import shrinkwrap.train as train
-from shrinkwrap.train import FitResult, TrainSettings, fit
+import shrinkwrap.ml.classification as classification
+import shrinkwrap.ml.train as train
+from shrinkwrap.ml.train import FitResult, TrainSettings, fit
 
 N_TRAIN, N_VAL, K = 40, 12, 3
 
@@ -52,7 +53,7 @@ def test_stops_patience_epochs_after_the_peak_and_restores_the_best_epoch(monkey
     # 1998: stop after `patience` evaluations without improvement; keep the best).
     scripted = [0.40, 0.55, 0.90, 0.60, 0.70, 0.95, 0.95, 0.95, 0.95, 0.95]
     weights_at_eval = []
-    real_predict = train.predict_logits
+    real_predict = train.predict_outputs
 
     def recording_predict(model, *a, **kw):
         weights_at_eval.append(copy.deepcopy(model.state_dict()))
@@ -62,8 +63,8 @@ def test_stops_patience_epochs_after_the_peak_and_restores_the_best_epoch(monkey
         e = len(weights_at_eval)
         return {"accuracy": scripted[e - 1], "macro_f1": scripted[e - 1]}
 
-    monkeypatch.setattr(train, "predict_logits", recording_predict)
-    monkeypatch.setattr(train, "classification_metrics", scripted_metrics)
+    monkeypatch.setattr(train, "predict_outputs", recording_predict)
+    monkeypatch.setattr(classification, "classification_metrics", scripted_metrics)
     model, result = _fit(_settings(epochs=10, patience=2))
     assert [c["epoch"] for c in result.curve] == [1, 2, 3, 4, 5]
     assert result.best_epoch == 3 and result.best_metric == pytest.approx(0.90)
@@ -143,10 +144,11 @@ def test_teacher_keeps_the_seed_with_the_best_validation_metric(tmp_path, tiny_b
     # fit is replaced by one that reports a scripted validation metric per seed and marks the model with
     # its seed; the step must keep seed 1 (best 0.9), not the first (0) nor the last (2).
     from conftest import tiny_recipe, write_recipe
-    from shrinkwrap.models import load_classifier
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.runner import run_chain
-    import shrinkwrap.steps.finetune as finetune
+
+    import shrinkwrap.chain.steps.teacher as finetune
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.recipe.schema import load_recipe
 
     metric = {0: 0.6, 1: 0.9, 2: 0.7}
 
@@ -220,8 +222,8 @@ def test_teacher_kl_is_the_kullback_leibler_divergence_of_scipy():
     rng = np.random.default_rng(3)
     t, s = rng.normal(size=(9, 4)) * 3, rng.normal(size=(9, 4)) * 3
     expected = np.mean([entropy(softmax(a), softmax(b)) for a, b in zip(t, s)])
-    assert train.teacher_kl(t, s) == pytest.approx(expected, rel=1e-9)
-    assert train.teacher_kl(t, t) == pytest.approx(0.0, abs=1e-12)
+    assert classification.teacher_kl(t, s) == pytest.approx(expected, rel=1e-9)
+    assert classification.teacher_kl(t, t) == pytest.approx(0.0, abs=1e-12)
 
 
 def test_a_tie_on_the_metric_goes_to_the_epoch_closer_to_the_teacher(monkeypatch):
@@ -229,7 +231,7 @@ def test_a_tie_on_the_metric_goes_to_the_epoch_closer_to_the_teacher(monkeypatch
     # teacher logits on the validation texts themselves, so its KL to them falls. With the teacher's
     # logits the loop must keep the epoch of the smallest KL and run on while it falls; with only the
     # teacher's classes a tie is no improvement, and it stops `patience` epochs after epoch 1.
-    monkeypatch.setattr(train, "classification_metrics", lambda labels, preds, n: {"accuracy": 0.5, "macro_f1": 0.5})
+    monkeypatch.setattr(classification, "classification_metrics", lambda labels, preds, n: {"accuracy": 0.5, "macro_f1": 0.5})
     va, yva = _examples(N_VAL, 1)
     teacher_logits = np.random.default_rng(5).normal(size=(N_VAL, K)).astype(np.float32) * 4
 

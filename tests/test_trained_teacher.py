@@ -7,13 +7,13 @@ import json
 import shutil
 
 import pytest
-
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
-from shrinkwrap.errors import UserError
+
+from shrinkwrap.serve.errors import UserError
 
 
 def _recipe(folder, base, data, **teacher):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     folder.mkdir(parents=True, exist_ok=True)
     raw = tiny_recipe(base, data)
@@ -22,7 +22,7 @@ def _recipe(folder, base, data, **teacher):
 
 
 def _teacher_only(folder, base, data, **teacher):
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
 
     return run_chain(_recipe(folder, base, data, **teacher), folder / "run", quiet=True, until="teacher")
 
@@ -110,7 +110,7 @@ def test_cli_refusal_is_one_line_exit_2(tmp_path, tiny_base, keyword_csv, capsys
 
 
 def test_fine_tuning_keys_set_by_the_user_get_one_notice(tmp_path, tiny_run, keyword_csv):
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
 
     own = _own_model(tiny_run, tmp_path)
     with pytest.warns(UserWarning) as caught:

@@ -9,12 +9,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from shrinkwrap.batches import Joined, encode, lengths, length_batches, take
-from shrinkwrap.data import Split
-from shrinkwrap.errors import UserError
-from shrinkwrap.fingerprint import tokenizer_fingerprint_of
-from shrinkwrap.models import load_tokenizer
-from shrinkwrap.transfer import check
+from shrinkwrap.ml.data import Split
+from shrinkwrap.ml.models import load_tokenizer
+from shrinkwrap.ml.transfer import check
+from shrinkwrap.serve.batches import Joined, encode, length_batches, lengths, take
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of
 
 TEXTS = ["my refund please", "router offline again since the morning", "Password locked — café login",
          "x" * 50, "  leading and trailing spaces  "]

@@ -7,15 +7,15 @@ import shutil
 import numpy as np
 import pytest
 import torch
-
 from conftest import tiny_recipe, write_recipe
-from shrinkwrap.errors import UserError
+
+from shrinkwrap.serve.errors import UserError
 
 PRUNE = {"enabled": True, "heads_removed": 1, "neurons_removed_share": 0.25, "epochs": 1}
 
 
 def _recipe(folder, tiny_base, keyword_csv, **sections):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     return load_recipe(write_recipe(folder / "r.yaml", tiny_recipe(tiny_base, keyword_csv, **sections)))
 
@@ -30,8 +30,8 @@ def student_done(tiny_run, tmp_path):
 
 @pytest.fixture
 def trimmed(student_done, tiny_base, keyword_csv):
-    from shrinkwrap.preflight import prepare
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.chain.runner import run_chain
 
     recipe = _recipe(student_done, tiny_base, keyword_csv, trim_vocab={"enabled": True})
     results = run_chain(recipe, student_done / "run", quiet=True, until="student-trimmed")
@@ -99,9 +99,9 @@ def test_unseen_words_fall_back_as_wordpiece_does_with_the_smaller_vocabulary(tr
 def test_trimmed_embeddings_are_the_gathered_rows_and_logits_are_unchanged(trimmed):
     from transformers import AutoTokenizer
 
-    from shrinkwrap.batches import encode
-    from shrinkwrap.models import load_classifier
-    from shrinkwrap.train import predict_logits
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.ml.train import predict_outputs
+    from shrinkwrap.serve.batches import encode
 
     run, results, ctx = trimmed
     original = AutoTokenizer.from_pretrained(run / "student")
@@ -111,8 +111,8 @@ def test_trimmed_embeddings_are_the_gathered_rows_and_logits_are_unchanged(trimm
     w_before, w_after = before.get_input_embeddings().weight, after.get_input_embeddings().weight
     assert after.config.vocab_size == len(kept) == w_after.shape[0]
     assert torch.equal(w_after, w_before[torch.as_tensor(kept)])
-    logits_before = predict_logits(before, encode(original, ctx.data.train, 32), original.pad_token_id)
-    logits_after = predict_logits(after, encode(small, ctx.data.train, 32), small.pad_token_id)
+    logits_before = predict_outputs(before, encode(original, ctx.data.train, 32), original.pad_token_id)
+    logits_after = predict_outputs(after, encode(small, ctx.data.train, 32), small.pad_token_id)
     assert np.abs(logits_before - logits_after).max() <= 1e-5
     # the step's report, recomputed here: test tokens (original ids, specials left out) whose piece was dropped
     info = results["steps"][-1]["info"]
@@ -125,13 +125,13 @@ def test_trimmed_embeddings_are_the_gathered_rows_and_logits_are_unchanged(trimm
     # the row's accuracy is measured with the trimmed tokenizer: the same predictions as the student's
     rows = {s["name"]: s for s in results["steps"]}
     assert rows["student-trimmed"]["tokenizer_fingerprint"] != results["tokenizer_fingerprint"]
-    student_on_test = predict_logits(before, ctx.encoded["test"], original.pad_token_id).argmax(1)
+    student_on_test = predict_outputs(before, ctx.encoded["test"], original.pad_token_id).argmax(1)
     assert rows["student-trimmed"]["predictions"] == student_on_test.tolist()
 
 
 def test_a_step_after_the_trimmed_one_must_carry_the_trimmed_tokenizer(trimmed, tiny_base, keyword_csv):
-    from shrinkwrap.fingerprint import tokenizer_fingerprint_of_file
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of_file
 
     run, results, ctx = trimmed
     record = json.loads((run / "student-trimmed" / "step.json").read_text())
@@ -150,8 +150,8 @@ def test_a_step_after_the_trimmed_one_must_carry_the_trimmed_tokenizer(trimmed, 
 
 
 def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
-    from shrinkwrap.artifact import load
-    from shrinkwrap.pipeline import run_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.serve.artifact import load
 
     run = student_done / "run"
     recipe = _recipe(student_done, tiny_base, keyword_csv, prune=PRUNE, trim_vocab={"enabled": True})
@@ -172,10 +172,10 @@ def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     # the artifact carries the trimmed tokenizer, and predicts what the final step recorded
     art = load(run / "artifact")
     assert art.manifest["tokenizer"]["fingerprint"] == trimmed_fp
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
 
     ctx = prepare(recipe, run, quiet=True)
-    preds = art.logits(ctx.data.test.texts).argmax(1)
+    preds = art.outputs(ctx.data.test.texts).argmax(1)
     assert np.mean(preds == np.array(results["steps"][-1]["predictions"])) == 1.0
     # a rerun reuses every step
     stamps = {n: os.stat(run / n / "step.json").st_mtime_ns for n in names}
@@ -188,7 +188,7 @@ def test_trimming_a_tokenizer_that_is_not_wordpiece_is_refused_before_anything_r
     from tokenizers import Tokenizer, models, pre_tokenizers
     from transformers import PreTrainedTokenizerFast
 
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
 
     base = tmp_path / "base"
     shutil.copytree(tiny_base, base)
@@ -208,7 +208,7 @@ def test_transfer_texts_keep_their_pieces_too(tmp_path, tiny_base, keyword_csv):
     """The transfer texts are read from their table on disk, a batch at a time, and their pieces kept."""
     from transformers import AutoTokenizer
 
-    from shrinkwrap.runner import run_chain
+    from shrinkwrap.chain.runner import run_chain
 
     extra = ["the zeppelin hangar flooded", "quokka sightings near the router"] * 700   # more than one batch
     (tmp_path / "more.txt").write_text("\n".join(extra) + "\n")
@@ -221,6 +221,6 @@ def test_transfer_texts_keep_their_pieces_too(tmp_path, tiny_base, keyword_csv):
         assert small.tokenize(text) == original.tokenize(text)
         assert small.unk_token not in small.tokenize(text)
     info = next(s for s in results["steps"] if s["name"] == "student-trimmed")["info"]
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
 
     assert info["texts"] == len(extra) + len(prepare(recipe, tmp_path / "run", quiet=True).data.train)

@@ -8,17 +8,17 @@ import subprocess
 import sys
 
 import pytest
-
 from conftest import bundled_path, keyword_rows, tiny_recipe, write_csv, write_recipe
-from shrinkwrap.errors import UserError
+
+from shrinkwrap.serve.errors import UserError
 
 
 def test_the_three_rules_keep_the_start_the_end_or_both():
     """Reference: the tokenizer's own untruncated ids, sliced by hand ([CLS] text [SEP] of BERT's template)."""
     from transformers import AutoTokenizer
 
-    from shrinkwrap.batches import encode, head_tokens
-    from shrinkwrap.data import Split
+    from shrinkwrap.ml.data import Split
+    from shrinkwrap.serve.batches import encode, head_tokens
 
     tok = AutoTokenizer.from_pretrained(bundled_path())
     texts = [" ".join(f"w{i}" for i in range(40)), "short text"]
@@ -39,7 +39,7 @@ def test_the_three_rules_keep_the_start_the_end_or_both():
 
 
 def test_head_tail_with_pairs_is_refused_in_the_recipe(tmp_path, tiny_base, keyword_csv):
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
 
     raw = tiny_recipe(tiny_base, keyword_csv)
     raw["data"].update(text_pair="text", truncation="head_tail")
@@ -57,9 +57,9 @@ def _long_rows(seed: int = 0):
 
 @pytest.mark.parametrize("rule", ["tail", "head_tail"])
 def test_predict_cuts_long_texts_as_the_chain_did(rule, tmp_path, tiny_run):
-    from shrinkwrap.pipeline import run_recipe
-    from shrinkwrap.data import load_dataset
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.chain.pipeline import run_recipe
+    from shrinkwrap.ml.data import load_dataset
+    from shrinkwrap.recipe.schema import load_recipe
 
     own = tmp_path / "own"
     shutil.copytree(tiny_run / "teacher", own, ignore=shutil.ignore_patterns("step.json", "bench.json"))

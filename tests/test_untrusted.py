@@ -12,7 +12,6 @@ import sys
 from pathlib import Path
 
 import pytest
-
 from conftest import ROOT, tiny_recipe, write_recipe
 
 
@@ -52,8 +51,8 @@ def test_the_marker_works(tmp_path):
 
 
 def test_load_classifier_refuses_pickled_weights(tmp_path, tiny_base):
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.models import load_classifier
+    from shrinkwrap.ml.classification import load as load_classifier
+    from shrinkwrap.serve.errors import UserError
 
     marker = tmp_path / "marker"
     folder = model_folder_with_pickle_weights(tiny_base, tmp_path / "model", marker)
@@ -76,8 +75,8 @@ def test_teacher_base_with_pickled_weights_is_refused_before_anything_runs(tmp_p
 
 
 def test_a_pickled_checkpoint_is_refused(tmp_path):
-    from shrinkwrap.checkpoint import CHECKPOINT_DIR, Checkpoint
-    from shrinkwrap.errors import UserError
+    from shrinkwrap.ml.checkpoint import CHECKPOINT_DIR, Checkpoint
+    from shrinkwrap.serve.errors import UserError
 
     marker = tmp_path / "marker"
     folder = tmp_path / CHECKPOINT_DIR
@@ -90,12 +89,12 @@ def test_a_pickled_checkpoint_is_refused(tmp_path):
 
 def test_a_pickled_checkpoint_planted_in_a_run_is_refused_by_the_runner(tmp_path, tiny_base, keyword_csv):
     """The planted file sits where a killed run's checkpoint would, for the right fingerprint."""
-    from shrinkwrap.checkpoint import CHECKPOINT_DIR, open_scratch
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
-    from shrinkwrap.runner import run_chain, step_fingerprint
-    from shrinkwrap.steps import chain
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.chain.runner import run_chain, step_fingerprint
+    from shrinkwrap.chain.steps import chain
+    from shrinkwrap.ml.checkpoint import CHECKPOINT_DIR, open_scratch
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.errors import UserError
 
     marker = tmp_path / "marker"
     recipe = load_recipe(write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv)))
@@ -110,8 +109,9 @@ def test_a_pickled_checkpoint_planted_in_a_run_is_refused_by_the_runner(tmp_path
 
 
 def test_a_pickled_int8_state_dict_is_refused(tmp_path, tiny_run):
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.models import INT8_WEIGHTS, load_int8
+    from shrinkwrap.ml.int8 import load_int8
+    from shrinkwrap.serve.errors import UserError
+    from shrinkwrap.serve.rundir import INT8_WEIGHTS
 
     marker = tmp_path / "marker"
     folder = tmp_path / "int8"
@@ -123,8 +123,8 @@ def test_a_pickled_int8_state_dict_is_refused(tmp_path, tiny_run):
 
 
 def test_yaml_python_tags_are_refused(tmp_path):
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.errors import UserError
 
     marker = tmp_path / "marker"
     path = tmp_path / "r.yaml"
@@ -135,8 +135,8 @@ def test_yaml_python_tags_are_refused(tmp_path):
 
 
 def test_set_values_are_parsed_safely(tmp_path, tiny_base, keyword_csv):
-    from shrinkwrap.errors import UserError
-    from shrinkwrap.recipe import load_recipe
+    from shrinkwrap.recipe.schema import load_recipe
+    from shrinkwrap.serve.errors import UserError
 
     marker = tmp_path / "marker"
     path = write_recipe(tmp_path / "r.yaml", tiny_recipe(tiny_base, keyword_csv))
@@ -146,8 +146,8 @@ def test_set_values_are_parsed_safely(tmp_path, tiny_base, keyword_csv):
 
 
 def test_trust_remote_code_is_off_unless_the_recipe_says_so_and_then_warns(tmp_path, tiny_base, keyword_csv):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     plain = load_recipe(write_recipe(tmp_path / "a.yaml", tiny_recipe(tiny_base, keyword_csv)))
     assert plain.teacher.trust_remote_code is False
@@ -177,8 +177,8 @@ def test_no_code_path_loads_pickles_or_enables_remote_code():
 
 
 def test_relative_paths_resolve_against_the_recipe_folder(tmp_path, tiny_base, keyword_csv, monkeypatch):
-    from shrinkwrap.recipe import load_recipe
-    from shrinkwrap.preflight import prepare
+    from shrinkwrap.chain.preflight import prepare
+    from shrinkwrap.recipe.schema import load_recipe
 
     project = tmp_path / "project"
     (project / "data").mkdir(parents=True)
@@ -198,7 +198,7 @@ def test_relative_paths_resolve_against_the_recipe_folder(tmp_path, tiny_base, k
 
 
 def test_outputs_stay_inside_the_run_folder(tiny_run):
-    from shrinkwrap.steps import chain
+    from shrinkwrap.chain.steps import chain
 
     for step in chain():
         assert re.fullmatch(r"[a-z0-9][a-z0-9-]*", step.name), step.name  # a plain folder name, no path parts

@@ -14,8 +14,8 @@ from typing import Optional, Union
 
 import numpy as np
 
-from shrinkwrap.batches import collate
-from shrinkwrap.errors import UserError
+from shrinkwrap.serve.batches import collate
+from shrinkwrap.serve.errors import UserError
 
 REAL = "real"
 SYNTHETIC_SEED = 0

@@ -72,3 +72,12 @@ def summarize(samples_ms: np.ndarray) -> dict:
 def throughput_per_s(batch_size: int, mean_ms: float) -> float:
     """Sequences per second at this batch size, from the mean call time."""
     return batch_size * 1000.0 / mean_ms
+
+
+def graph_p50_ms(path, batch: dict, threads: int) -> float:
+    """Median ms of one ONNX graph on `batch`, briefly (3 warm-up runs, at least 20 timed and 0.5 s): the
+    record of how fast each graph an export considered was, not a benchmark."""
+    from shrinkwrap.serve.sessions import run_outputs, session
+
+    sess = session(path, threads)
+    return summarize(time_calls(lambda: run_outputs(sess, batch), warmup=3, repeats=20, min_time_s=0.5))["p50"]

@@ -13,16 +13,15 @@ from typing import Callable, Optional
 
 import numpy as np
 
-from shrinkwrap import calibration
-from shrinkwrap.batches import all_logits
 from shrinkwrap.bench.grid import REAL, Point, point_batches
 from shrinkwrap.bench.latency import summarize, throughput_per_s, time_calls
 from shrinkwrap.bench.memory import PeakWindow
 from shrinkwrap.bench.reference import EVERY_S, Reference, normalise
 from shrinkwrap.bench.reference import describe as describe_reference
 from shrinkwrap.bench.targets import Target, load_target
-from shrinkwrap.errors import UserError
-from shrinkwrap.metrics import classification_metrics
+from shrinkwrap.bench.tasks import of_target
+from shrinkwrap.serve.batches import all_outputs
+from shrinkwrap.serve.errors import UserError
 
 
 @dataclass
@@ -41,7 +40,7 @@ def _time_point(target: Target, point: Point, batches: list[dict], cfg, referenc
     cycle = itertools.cycle(batches)
 
     def call():
-        return target.logits(next(cycle))
+        return target.outputs(next(cycle))
 
     try:  # one untimed call first, so that a graph refusing this shape says so in one line
         call()
@@ -84,14 +83,9 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
             result["data"] = inputs.about
         if inputs.test is not None:
             log(f"accuracy over {len(inputs.test)} texts")
-            logits = all_logits(target.logits, inputs.test, inputs.pad_id, inputs.n_labels, cfg.eval_batch_size)
-            preds = logits.argmax(1)
-            result["metrics"] = classification_metrics(inputs.labels, preds, inputs.n_labels)
-            result["metrics"].update(calibration.figures(logits, inputs.labels, target.temperature))
-            if target.temperature != 1.0:  # an artifact: its scores are calibrated; say what they were without
-                result["metrics"].update(temperature=target.temperature,
-                                         ece_raw=calibration.ece(calibration.softmax(logits), inputs.labels))
-            result["predictions"] = preds.tolist()
+            outputs = all_outputs(target.outputs, inputs.test, inputs.pad_id, inputs.n_labels, cfg.eval_batch_size)
+            result["metrics"], result["predictions"] = of_target(target).quality(
+                outputs, inputs.labels, inputs.n_labels, target.temperature)
         rows = []
         for point, batches in plan:
             log(f"timing batch {point.batch_size} × {point.sequence_length} tokens")

@@ -54,7 +54,7 @@ class Reference:
     """The reference product at `threads` threads, and the milliseconds of every burst so far."""
 
     def __init__(self, threads: int) -> None:
-        from shrinkwrap.onnx_tools import session
+        from shrinkwrap.serve.sessions import session
 
         self.threads = threads
         self.session = session(_matmul_model(), threads, spin=False)

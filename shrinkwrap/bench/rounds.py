@@ -35,7 +35,7 @@ def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
             for k in range(len(models)):
                 i = (k + r) % len(models)
                 batch, target = models[i][1], targets[i]
-                samples[i] += time_calls(lambda: target.logits(batch), max(1, cfg.warmup), repeats,
+                samples[i] += time_calls(lambda: target.outputs(batch), max(1, cfg.warmup), repeats,
                                          cfg.timed_seconds / rounds, warmup_s=cfg.warm_seconds).tolist()
             reference.burst()
     finally:

@@ -1,7 +1,7 @@
-"""Anything the benchmark can measure, behind one interface: `logits(batch) -> array`.
+"""Anything the benchmark can measure, behind one interface: `outputs(batch) -> array`.
 
 A target is a transformers classification folder (fp32 safetensors or a shrinkwrap int8 folder),
-a folder holding model.onnx, a bare .onnx file, or an artifact (shrinkwrap.artifact; verified first).
+a folder holding model.onnx, a bare .onnx file, or an artifact (shrinkwrap.serve.artifact; verified first).
 """
 from __future__ import annotations
 
@@ -11,9 +11,10 @@ from typing import Callable, Optional
 
 import numpy as np
 
-from shrinkwrap.artifact import is_artifact, labels_of_config
-from shrinkwrap.errors import UserError
-from shrinkwrap.rundir import CONFIG_FILE, MODEL_FILE, TOKENIZER_FILE, read_json_or_none
+from shrinkwrap.serve.artifact import is_artifact
+from shrinkwrap.serve.classification import labels_of_config
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.rundir import CONFIG_FILE, INT8_WEIGHTS, MODEL_FILE, TOKENIZER_FILE, read_json_or_none
 
 
 @dataclass
@@ -21,7 +22,7 @@ class Target:
     format: str                          # "pytorch" or "onnx"
     path: Path
     weight_files: list[Path]
-    logits: Callable[[dict[str, np.ndarray]], np.ndarray]
+    outputs: Callable[[dict[str, np.ndarray]], np.ndarray]   # a batch -> its first output (a classifier's logits)
     input_names: list[str]
     tokenizer_dir: Optional[Path] = None
     extra: dict = field(default_factory=dict)
@@ -57,7 +58,7 @@ class Target:
     def release(self) -> None:
         """Drops the model or session, so its memory and its thread pool are gone before the next
         measurement (onnxruntime's threads keep spinning after a run and would steal CPU from it)."""
-        self.logits = None
+        self.outputs = None
         self.extra.clear()
 
 
@@ -115,28 +116,32 @@ def onnx_embedding_rows(path: Path) -> tuple[Optional[int], Optional[int]]:
 
 
 def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
-    from shrinkwrap.extras import require_train
+    from shrinkwrap.serve.extras import require_train
 
     require_train(f"{folder}: a PyTorch model folder")
     import torch
     import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
+    from transformers import AutoConfig
 
-    from shrinkwrap.models import INT8_WEIGHTS, load_classifier, load_int8, model_inputs, to_torch
+    from shrinkwrap.ml.int8 import load_int8
+    from shrinkwrap.ml.models import model_inputs, to_torch
+    from shrinkwrap.ml.tasks import of_config
 
     torch.set_num_threads(threads)
     ready()
+    task = of_config(AutoConfig.from_pretrained(folder))
     if (folder / INT8_WEIGHTS).exists():
         model, files = load_int8(folder), [folder / INT8_WEIGHTS]
     else:
-        model, files = load_classifier(str(folder)), sorted(folder.glob("*.safetensors"))
+        model, files = task.load(str(folder)), sorted(folder.glob("*.safetensors"))
 
     names = model_inputs(model.config)
 
     @torch.inference_mode()
-    def logits(batch):  # only the inputs the model takes: a tokenizer may give segment ids it has no use for
-        return model(**to_torch({k: v for k, v in batch.items() if k in names})).logits.float().numpy()
+    def outputs(batch):  # only the inputs the model takes: a tokenizer may give segment ids it has no use for
+        return task.outputs(model(**to_torch({k: v for k, v in batch.items() if k in names}))).float().numpy()
 
-    return Target("pytorch", folder, files, logits, names, tokenizer_dir=folder,
+    return Target("pytorch", folder, files, outputs, names, tokenizer_dir=folder,
                   extra={"vocab_size": getattr(model.config, "vocab_size", None)},
                   label_names=labels_of_config(model.config.to_dict()),
                   max_length=getattr(model.config, "max_position_embeddings", None))
@@ -146,7 +151,7 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
     import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
     import onnxruntime  # noqa: F401
 
-    from shrinkwrap.onnx_tools import check_external_data, run_logits, session
+    from shrinkwrap.serve.sessions import check_external_data, run_outputs, session
 
     external = check_external_data(path)  # before ONNX Runtime opens anything the graph points to
     ready()
@@ -161,7 +166,7 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
     config = config if isinstance(config, dict) else {}
     outputs = sess.get_outputs()
     has_head = len(outputs[0].shape) == 2   # [batch, classes]; an encoder gives [batch, tokens, hidden]
-    return Target("onnx", path, files, lambda b: run_logits(sess, b), [i.name for i in sess.get_inputs()],
+    return Target("onnx", path, files, lambda b: run_outputs(sess, b), [i.name for i in sess.get_inputs()],
                   tokenizer_dir=tok, extra={"session": sess},
                   label_names=labels_of_config(config) if has_head else None,
                   max_length=config.get("max_position_embeddings"))
@@ -169,15 +174,29 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
 
 def _artifact(folder: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:
     """An artifact: its hashes are checked before anything is loaded; labels and max length are its own."""
-    from shrinkwrap.artifact import read_labels, temperature_of, verify
+    from shrinkwrap.serve import tasks
+    from shrinkwrap.serve.artifact import verify
 
     manifest = verify(folder)
     target = _onnx(folder / MODEL_FILE, threads, ready, spin)
-    target.label_names = read_labels(folder)
+    info = tasks.of_manifest(manifest).read(folder, manifest)  # what the artifact's task keeps beside its graph
+    target.label_names = info.get("labels")
     target.max_length = manifest["tokenizer"]["max_length"]
     target.extra["manifest"] = manifest
-    target.temperature = temperature_of(manifest)
+    target.temperature = info.get("temperature", 1.0)
     return target
+
+
+def size_of(folder: Path) -> int:
+    """Bytes of a step folder's model files, as a loaded target counts them (its graph and any external data, or
+    its weights), without loading it."""
+    folder = Path(folder)
+    if (folder / MODEL_FILE).exists():
+        from shrinkwrap.serve.sessions import check_external_data
+
+        return sum(f.stat().st_size for f in [folder / MODEL_FILE, *check_external_data(folder / MODEL_FILE)])
+    int8 = folder / INT8_WEIGHTS
+    return int8.stat().st_size if int8.exists() else sum(f.stat().st_size for f in folder.glob("*.safetensors"))
 
 
 def load_target(path: str | Path, threads: int = 2, ready: Callable[[], None] = lambda: None,

@@ -10,7 +10,7 @@ import numpy as np
 
 from shrinkwrap.bench.measure import Inputs
 from shrinkwrap.bench.targets import Target
-from shrinkwrap.errors import UserError
+from shrinkwrap.serve.errors import UserError
 
 # Without --max-length and without a limit from the model, texts are cut at this many tokens
 # (the usual BERT position count, common practice).
@@ -26,9 +26,9 @@ class LabelledTable:
 
 
 def read_table(path: Path, text: str, label: str, text_pair: Optional[str] = None) -> LabelledTable:
-    """Reads and checks the table with the same reader and checks as a recipe's data (shrinkwrap.data)."""
-    from shrinkwrap.data import read_labelled_table
-    from shrinkwrap.recipe import DataConfig
+    """Reads and checks the table with the same reader and checks as a recipe's data (shrinkwrap.ml.data)."""
+    from shrinkwrap.ml.data import read_labelled_table
+    from shrinkwrap.recipe.schema import DataConfig
 
     cfg = DataConfig(path=str(path), text=text, label=label, text_pair=text_pair)
     df = read_labelled_table(cfg, path, f"--data {path}",
@@ -37,8 +37,19 @@ def read_table(path: Path, text: str, label: str, text_pair: Optional[str] = Non
                          pairs=df[text_pair].tolist() if text_pair else None)
 
 
+def label_ids(table: LabelledTable, names: list[str]) -> np.ndarray:
+    """The table's labels as the model's class ids (`names` by id); a one-line UserError naming the first row
+    whose label is not one of the model's."""
+    index = {n: i for i, n in enumerate(names)}
+    unknown = next((i for i, v in enumerate(table.labels) if v not in index), None)
+    if unknown is not None:
+        raise UserError(f"--data {table.path}: label {table.labels[unknown]!r} (data row {unknown + 1}) is not "
+                        f"one of the model's labels: {', '.join(names)}")
+    return np.array([index[v] for v in table.labels], dtype=np.int64)
+
+
 def _tokenizer(target: Target):
-    from shrinkwrap.models import load_tokenizer
+    from shrinkwrap.ml.models import load_tokenizer
 
     if target.tokenizer_dir is None:
         raise UserError(f"{target.path}: no tokenizer beside the model (tokenizer.json) — --data needs the "
@@ -51,12 +62,12 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
     if table is not None:
         import transformers.models.auto.tokenization_auto  # noqa: F401  (now, not inside the memory window)
 
-        import shrinkwrap.models  # noqa: F401  (its loader, likewise)
+        import shrinkwrap.ml.models  # noqa: F401  (its loader, likewise)
 
     def build(target: Target) -> Inputs:
-        from shrinkwrap.artifact import truncation_of
-        from shrinkwrap.batches import encode
-        from shrinkwrap.data import Split
+        from shrinkwrap.ml.data import Split
+        from shrinkwrap.serve.artifact import truncation_of
+        from shrinkwrap.serve.batches import encode
 
         if table is None:
             return Inputs()
@@ -64,16 +75,11 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
         if not names:
             raise UserError(f"{target.path}: no label names (a classification head with id2label in config.json, "
                             f"or an artifact's labels) — accuracy on --data needs them")
-        index = {n: i for i, n in enumerate(names)}
-        unknown = next((i for i, v in enumerate(table.labels) if v not in index), None)
-        if unknown is not None:
-            raise UserError(f"--data {table.path}: label {table.labels[unknown]!r} (data row {unknown + 1}) is not "
-                            f"one of the model's labels: {', '.join(names)}")
+        labels = label_ids(table, names)
         tokenizer = _tokenizer(target)
         limit = max_length or target.token_limit() or DEFAULT_MAX_LENGTH
         if max_length and target.token_limit() and max_length > target.token_limit():
             raise UserError(f"--max-length {max_length} — {target.path} takes at most {target.token_limit()} tokens")
-        labels = np.array([index[v] for v in table.labels], dtype=np.int64)
         # an artifact's texts are cut by the rule its manifest records, as its chain cut them
         manifest = target.extra.get("manifest")
         rule = truncation_of(manifest) if manifest else "head"

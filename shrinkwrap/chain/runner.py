@@ -1,0 +1,236 @@
+"""Walks the chain: for each step, fingerprint -> reuse or run -> benchmark -> record.
+
+Every input is checked (shrinkwrap.chain.preflight) before anything is written. Each step writes into a
+scratch folder that is renamed into place only once complete, and results.json is rewritten
+(atomically) after every step, so a crash never loses a finished step nor leaves a half-written one
+that looks finished. The artifact and the reports are built from the results afterwards (chain.pipeline).
+"""
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Optional
+
+from shrinkwrap.bench.targets import size_of
+from shrinkwrap.bench.timing import write_timing_batch
+from shrinkwrap.chain.context import Context
+from shrinkwrap.chain.preflight import prepare
+from shrinkwrap.chain.steps import Step, chain
+from shrinkwrap.ml import distributed
+from shrinkwrap.ml.checkpoint import close_scratch, open_scratch
+from shrinkwrap.outputs import results as results_file
+from shrinkwrap.recipe.schema import Recipe
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.fingerprint import sha256_json, tokenizer_fingerprint_of_file
+from shrinkwrap.serve.rundir import (
+    BENCH_FILE,
+    RESULTS_FILE,
+    STEP_FILE,
+    TEACHER,
+    TOKENIZER_FILE,
+    is_disk_full,
+    make_run_dir,
+    read_json_or_none,
+    scratch,
+    scratch_path,
+    write_error,
+    write_json_atomic,
+)
+
+# Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
+CODE_VERSION = 1
+
+
+def step_fingerprint(ctx: Context, step: Step) -> str:
+    source = ctx.fingerprints[step.source] if step.source else ctx.data_fingerprint
+    # "upstream": the key's name when fingerprints were first made; renaming it would redo every finished step.
+    return sha256_json({"step": step.name, "code": CODE_VERSION, "config": ctx.recipe.sections(step.sections),
+                        "upstream": source, "tokenizer": ctx.tokenizer_fp, "extra": step.extra(ctx)})
+
+
+def check_output_tokenizer(ctx: Context, step: Step, folder: Path, recorded: Optional[dict] = None) -> str:
+    """A step's output must carry the tokenizer of the step it read (the teacher's base tokenizer for the
+    first step): any other one would turn texts into other ids. A step that changes the tokenizer may
+    write a new one; reused, its output must still hold the tokenizer its step.json `recorded`."""
+    path = folder / TOKENIZER_FILE
+    if not path.exists():
+        raise UserError(f"{path}: missing — every step's output carries its tokenizer")
+    got = tokenizer_fingerprint_of_file(path)
+    source = ctx.tokenizer_fps[step.source] if step.source else ctx.tokenizer_fp
+    if step.changes_tokenizer:
+        want = recorded.get("tokenizer_fingerprint") if recorded else got
+        derived = recorded.get("tokenizer_derived_from") if recorded else source
+        if got != want or derived != source:
+            raise UserError(f"{step.name}: the tokenizer in {folder} (fingerprint {got[:12]}) is not the one the step "
+                            f"wrote (fingerprint {str(want)[:12]}, derived from {str(derived)[:12]}; its source's is "
+                            f"{source[:12]}) — remove {folder} to redo the step")
+    elif got != source:
+        raise UserError(f"{step.name}: the tokenizer in {folder} (fingerprint {got[:12]}) differs from the "
+                        f"{step.source or TEACHER}'s tokenizer (fingerprint {source[:12]}) — remove {folder} to "
+                        f"redo the step")
+    ctx.tokenizer_fps[step.name] = got
+    return got
+
+
+def _call(ctx: Context, step: Step, out: Path) -> dict:
+    """The step's own code, given its source's output folder; a full disk becomes a one-line error."""
+    missing = [name for name in step.reads if name not in ctx.outputs]
+    if missing:  # the chain's declaration is wrong: a bug, not a user's mistake
+        raise RuntimeError(f"step {step.name} reads {', '.join(missing)}, which no earlier step wrote")
+    try:
+        return step.run(ctx, ctx.outputs[step.source] if step.source else None, out)
+    except Exception as e:
+        if is_disk_full(e):
+            raise write_error(getattr(e, "filename", None) or out, e) from None
+        raise
+
+
+def run_step(ctx: Context, step: Step) -> dict:
+    """Reuses the step's finished output when its fingerprint matches; otherwise runs it atomically."""
+    fp = step_fingerprint(ctx, step)
+    ctx.fingerprints[step.name] = fp
+    final = ctx.run_dir / step.name
+    done = read_json_or_none(final / STEP_FILE)
+    if done and done.get("fingerprint") == fp:
+        check_output_tokenizer(ctx, step, final, done)
+        ctx.log(f"[{step.name}] unchanged — reusing {final}")
+        ctx.outputs[step.name] = final
+        return done
+    if not distributed.is_main():  # a helper process: it trains alongside; the main one finishes the step
+        distributed.barrier()  # the scratch folder (and any checkpoint in it) is ready
+        if step.trains:
+            _call(ctx, step, scratch_path(final))
+        distributed.barrier()
+        ctx.outputs[step.name] = final
+        return {}
+    # The scratch folder outlives a crash: a killed run's checkpoints in it are resumed when made for
+    # this very fingerprint (open_scratch), and removed otherwise.
+    with scratch(final, keep=True) as partial:
+        resumed = open_scratch(partial, fp)
+        ctx.log(f"[{step.name}] " + ("resuming from the checkpoint a killed run left" if resumed else "running"))
+        distributed.barrier()  # the scratch folder (and any checkpoint in it) is ready before anyone trains
+        started = time.perf_counter()
+        info = _call(ctx, step, partial)
+        seconds = time.perf_counter() - started
+        close_scratch(partial)
+        tok_fp = check_output_tokenizer(ctx, step, partial)
+        # "after": the step.json key for the step's source since step.json was first written
+        record = {"name": step.name, "format": step.format, "fingerprint": fp, "tokenizer_fingerprint": tok_fp,
+                  "after": step.source, "seconds": round(seconds, 2), "info": info}
+        if step.changes_tokenizer:
+            record["tokenizer_derived_from"] = ctx.tokenizer_fps[step.source] if step.source else ctx.tokenizer_fp
+        write_json_atomic(partial / STEP_FILE, record)
+    distributed.barrier()
+    ctx.outputs[step.name] = final
+    ctx.log(f"[{step.name}] done in {seconds:.1f} s")
+    return record
+
+
+def bench_step(ctx: Context, step: Step) -> dict:
+    from shrinkwrap.bench.measure import measure
+
+    folder = ctx.outputs[step.name]
+    b = ctx.recipe.bench
+    # A step after one that changed the tokenizer reads texts with its own; a student cut at fewer
+    # tokens than the benchmark's texts serves them at the cost of the tokens it reads.
+    length = ctx.length_of(step.name)
+    read = min(length, b.sequence_length)
+    key = sha256_json({"bench": b.model_dump(mode="json"), "step": ctx.fingerprints[step.name], "tokens_read": read})
+    cached = read_json_or_none(folder / BENCH_FILE)
+    if cached and cached.get("key") == key:
+        return cached["result"]
+    tokens = ctx.tokens_of(folder, length)
+    timing, _ = ctx.timing_examples(folder, length)
+    ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens"
+            + (f", the first {read} read" if read < b.sequence_length else "") + f", {b.threads} threads)")
+    result = measure(folder, tokens.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
+                     tokens.pad_id, b.model_copy(update={"sequence_length": read}))
+    result["latency_ms"].update(sequence_length=b.sequence_length, tokens_read=read)
+    write_json_atomic(folder / BENCH_FILE, {"key": key, "result": result})
+    return result
+
+
+def calibrate_step(ctx: Context, step: Step) -> dict:
+    """Temperature scaling of the shipped step (Guo et al. 2017): one T fitted on the validation split's
+    logits to minimise their NLL, then the test split's calibration with and without it, and the
+    accuracy-against-coverage curve the report plots for abstention (predict --min-confidence)."""
+    from shrinkwrap.bench.targets import load_target
+    from shrinkwrap.ml.temperature import fit_temperature
+    from shrinkwrap.serve import calibration
+    from shrinkwrap.serve.batches import all_outputs
+
+    folder, b = ctx.outputs[step.name], ctx.recipe.bench
+    tokens = ctx.tokens_of(folder, ctx.length_of(step.name))
+    n = len(ctx.data.label_names)
+    target = load_target(folder, b.threads)
+    try:
+        val = all_outputs(target.outputs, tokens.encoded["validation"], tokens.pad_id, n, b.eval_batch_size)
+        test = all_outputs(target.outputs, tokens.encoded["test"], tokens.pad_id, n, b.eval_batch_size)
+    finally:
+        target.release()
+    y_val, y_test = ctx.data.validation.labels, ctx.data.test.labels
+    t = fit_temperature(val, y_val) if len(y_val) else 1.0
+    ctx.log(f"[{step.name}] temperature {t:.3f} fitted on {len(y_val)} validation texts")
+    scaled, raw = calibration.figures(test, y_test, t), calibration.figures(test, y_test)
+    return {"temperature": t, "fitted_on": "validation", "validation_texts": int(len(y_val)),
+            "validation_nll_raw": calibration.nll(calibration.softmax(val), y_val) if len(y_val) else None,
+            "validation_nll": calibration.nll(calibration.softmax(val, t), y_val) if len(y_val) else None,
+            "ece": scaled["ece"], "ece_raw": raw["ece"], "brier": scaled["brier"], "nll": scaled["nll"],
+            "reliability": scaled["reliability"],
+            "coverage": calibration.coverage_curve(calibration.softmax(test, t), y_test)}
+
+
+def _record_overlaps(ctx: Context, results: dict) -> None:
+    """Transfer texts and augmented copies that are also test texts: the student is taught the teacher's
+    answers on them (the cautions say so)."""
+    if ctx.transfer is not None:
+        test_texts = set(ctx.data.test.texts)
+        results_file.set_data_overlap(results, "transfer_in_test",
+                                      sum(t in test_texts for batch in ctx.transfer_batches() for t in batch))
+    if ctx.recipe.augment.copies:
+        from shrinkwrap.ml.augment import in_split
+
+        results_file.set_data_overlap(results, "augmented_in_test", in_split(ctx.augmented()[0], ctx.data.test))
+
+
+def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[str] = None,
+              measure: bool = True) -> dict:
+    """Runs (or reuses) every enabled step in order, stopping after `until` when given; returns the
+    results (also in out/results.json). measure=False: no benchmark and no calibration, only each step's
+    output, its size and its timing batch (a search's untrained candidates). A helper process of a
+    distributed run returns {}."""
+    steps = [s for s in chain(recipe) if s.enabled(recipe)]
+    if until is not None and until not in [s.name for s in steps]:
+        raise UserError(f"--until {until} — not a step of this recipe; steps: {', '.join(s.name for s in steps)}")
+    from shrinkwrap.bench.machine import describe
+
+    ctx = prepare(recipe, out, quiet)
+    make_run_dir(out)
+    # A killed run's .partial-<step> folders are never mistaken for finished steps (those have step.json
+    # in <step>/); run_step resumes one from its checkpoint when the step's fingerprint still matches.
+    results = results_file.header(recipe, describe(), ctx.data, ctx.data_fingerprint, ctx.tokenizer_fp)
+    if distributed.is_main():
+        _record_overlaps(ctx, results)
+    teacher = None
+    for step in steps:
+        record = run_step(ctx, step)
+        if distributed.is_main():  # benchmarks and results are the main process's
+            folder = ctx.outputs[step.name]
+            write_timing_batch(folder, ctx.timing_batch(folder, ctx.length_of(step.name)))
+            if measure:
+                row = results_file.step_row(step.name, folder, record, bench_step(ctx, step), teacher,
+                                            ctx.data.test.labels)
+                teacher = teacher or row
+            else:
+                row = results_file.unmeasured_row(step.name, step.format, folder, record, size_of(folder))
+            results_file.add_row(results, row)
+            write_json_atomic(out / RESULTS_FILE, results)
+        if step.name == until:
+            break
+    if measure and distributed.is_main() and results_file.steps_of(results):
+        last = next(s for s in steps if s.name == results_file.final_row(results)["name"])
+        if last.format == "onnx":
+            results_file.set_calibration(results, calibrate_step(ctx, last))
+            write_json_atomic(out / RESULTS_FILE, results)
+    return results if distributed.is_main() else {}
+

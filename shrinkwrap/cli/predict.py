@@ -1,0 +1,44 @@
+"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines from an artifact, with the plain install alone."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from shrinkwrap.cli.options import add_trusted_key, count, positive_int, probability
+
+
+def add(sub) -> None:
+    p = sub.add_parser("predict", help="classify texts with an artifact (needs only onnxruntime, tokenizers, numpy)",
+                       description="Print one JSON line {\"text\", \"label\", \"scores\"} per text. Every "
+                                   "file of ARTIFACT is checked against its manifest.json first; a modified or "
+                                   "incomplete artifact is refused (exit 2).")
+    p.add_argument("artifact", metavar="ARTIFACT",
+                   help="artifact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
+    p.add_argument("texts", nargs="*", metavar="TEXT",
+                   help="texts to classify (none: one per line from --file or stdin)")
+    p.add_argument("--file", metavar="FILE", help="UTF-8 file: one text per line; .jsonl/.ndjson: JSON lines "
+                   "{\"text\": ..., \"text_pair\": ...}; .csv/.tsv: a table with a header (columns --text, --text-pair)")
+    p.add_argument("--text", default="text", metavar="NAME",
+                   help="key (JSON lines) or column (CSV/TSV) holding the text (default: text)")
+    p.add_argument("--text-pair", metavar="NAME",
+                   help="key or column holding the second text, for a model that classifies pairs "
+                        "(default: text_pair)")
+    p.add_argument("--batch-size", type=positive_int, metavar="N",
+                   help="texts per model call; texts are grouped by length (default: 32, as in the chain's "
+                        "accuracy pass, which gives exactly its predictions)")
+    p.add_argument("--threads", type=count, default=0, metavar="N",
+                   help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    add_trusted_key(p)
+    p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
+                   help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
+                        "still printed (default: 0, always answer; the report plots accuracy against coverage)")
+    p.set_defaults(func=main)
+
+
+def main(args) -> int:
+    # Only torch-free modules on this path: an artifact must run in a slim image (tests/test_predict.py).
+    from shrinkwrap.serve.artifact import DEFAULT_BATCH_SIZE
+    from shrinkwrap.serve.predict import run_predict
+
+    return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
+                       trusted_key=args.trusted_key and Path(args.trusted_key),
+                       min_confidence=args.min_confidence, text_col=args.text, pair_col=args.text_pair)

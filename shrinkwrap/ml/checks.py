@@ -1,0 +1,69 @@
+"""The recipe's student settings against the teacher's config, before anything runs: layers, length, and what
+the teacher's family allows (kept layers, pruning). `shrinkwrap run` checks its recipe here and `shrinkwrap
+search` every candidate."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from shrinkwrap.recipe.schema import Recipe
+from shrinkwrap.serve.errors import UserError
+
+
+def teacher_config(recipe: Recipe, where: str):
+    """(the teacher base's folder, its transformers config), or a UserError naming teacher.base."""
+    from transformers import AutoConfig
+
+    from shrinkwrap.ml.models import resolve_base
+
+    base = resolve_base(recipe.teacher.base, where, root=Path(recipe.source).parent if recipe.source else None)
+    try:
+        return base, AutoConfig.from_pretrained(base, trust_remote_code=recipe.teacher.trust_remote_code)
+    except (OSError, ValueError) as e:
+        raise UserError(f"{where}: teacher.base = {recipe.teacher.base!r} — cannot load its config "
+                        f"({str(e).splitlines()[0]})") from None
+
+
+def check_student(recipe: Recipe, config, where: str) -> None:
+    """The student's settings against the teacher's config: layers, length, pruning."""
+    n_layers = getattr(config, "num_hidden_layers", None) or getattr(config, "n_layers", None)
+    layers = recipe.student.layers
+    if layers is not None and n_layers is not None and max(layers) >= n_layers:
+        bad = next(i for i, v in enumerate(layers) if v >= n_layers)
+        raise UserError(f"{where}: student.layers[{bad}] = {layers[bad]} — the teacher has {n_layers} layers "
+                        f"(0–{n_layers - 1})")
+    if layers is None and n_layers is not None and recipe.student.num_layers > n_layers:
+        raise UserError(f"{where}: student.num_layers = {recipe.student.num_layers} — the teacher has {n_layers} layers")
+    max_pos = getattr(config, "max_position_embeddings", None)
+    if max_pos and recipe.teacher.max_length > max_pos:
+        raise UserError(f"{where}: teacher.max_length = {recipe.teacher.max_length} — the model takes at most {max_pos} tokens")
+    student_length = recipe.student.max_length
+    if student_length is not None and student_length > recipe.teacher.max_length:
+        raise UserError(f"{where}: student.max_length = {student_length} — at most teacher.max_length "
+                        f"({recipe.teacher.max_length}): the teacher's outputs the student learns from are computed "
+                        f"on texts cut there")
+    if recipe.student.init == "teacher_layers":
+        check_layers(config, where)
+    from shrinkwrap.ml.pruning import check_prune
+
+    check_prune(recipe, config, where)
+
+
+def check_layers(config, where: str) -> None:
+    """Refuses, before anything runs, student.init: teacher_layers for a family whose layers cannot be
+    kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT)."""
+    from shrinkwrap.ml.models import encoder_layers
+    from shrinkwrap.ml.tasks import of_config
+
+    family = getattr(config, "model_type", "?")
+    if getattr(config, "num_hidden_groups", None) is not None:  # ALBERT: every layer runs the same weights
+        raise UserError(f"{where}: student.init = teacher_layers — a {family!r} model shares one layer's weights "
+                        f"across its depth, so step student cannot keep some of its layers; use init: pretrained or config")
+    try:
+        model = of_config(config).empty(config)
+    except (ValueError, KeyError):
+        return  # not a classifier family transformers knows: loading the teacher reports it
+    try:
+        encoder_layers(model)
+    except UserError:
+        raise UserError(f"{where}: student.init = teacher_layers — step student finds no list of layers in a "
+                        f"{family!r} model to keep some of; use init: pretrained or config") from None

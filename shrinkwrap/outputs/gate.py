@@ -1,0 +1,238 @@
+"""Release gate: a budget and a results.json -> one verdict per limit -> an exit code and JUnit XML.
+
+Reads only results.json (and, in regression mode, a baseline results.json). A limit the results
+cannot answer (a field missing, latency measured at another shape) is bad input, never a pass.
+"""
+from __future__ import annotations
+
+import xml.etree.ElementTree as ET
+from dataclasses import asdict, dataclass
+from dataclasses import field as dataclass_field
+from pathlib import Path
+from typing import Optional
+
+from shrinkwrap.outputs.checks import FAIL, PASS, SKIP, Check, check, field, num, number
+from shrinkwrap.outputs.findings import cautions
+from shrinkwrap.outputs.results import final_row, load, recipe_dump, step_named, steps_of, teacher_row
+from shrinkwrap.outputs.tasks import of_results
+from shrinkwrap.recipe.budget import BudgetConfig, RegressionTolerance, validate_budget
+from shrinkwrap.serve.errors import EXIT_BUDGET, EXIT_OK, UserError
+
+
+@dataclass
+class Verdict:
+    results_path: str
+    step: str
+    budget_source: str
+    checks: list[Check]
+    cautions: list = dataclass_field(default_factory=list)   # report.cautions: what the averages hide, one line each
+
+    @property
+    def failed(self) -> list[Check]:
+        return [c for c in self.checks if c.verdict == FAIL]
+
+    @property
+    def exit_code(self) -> int:
+        return EXIT_BUDGET if self.failed else EXIT_OK
+
+    def as_dict(self) -> dict:
+        return {"results": self.results_path, "step": self.step, "budget": self.budget_source,
+                "passed": not self.failed, "checks": [asdict(c) for c in self.checks], "cautions": self.cautions}
+
+
+def pick_step(results: dict, name: Optional[str], where: str) -> dict:
+    steps = steps_of(results)
+    if not steps:
+        raise UserError(f"{where}: no steps recorded — nothing to gate")
+    if name is None:
+        return final_row(results)  # the final step is what ships
+    step = step_named(results, name)
+    if step is not None:
+        return step
+    raise UserError(f"{where}: --step {name} — steps in this run: {', '.join(s.get('name', '?') for s in steps)}")
+
+
+def budget_of_results(results: dict, where: str) -> BudgetConfig:
+    """The budget: section of the recipe the run used (results.json keeps the recipe)."""
+    recipe = recipe_dump(results)
+    if not isinstance(recipe, dict) or not recipe:
+        raise UserError(f"{where}: no recipe recorded — pass --budget FILE")
+    return validate_budget(recipe.get("budget") or {}, f"{where}: recipe.budget")
+
+
+def with_tolerances(budget: BudgetConfig, items: list[str]) -> BudgetConfig:
+    """`--tolerance p95_percent=10` sets the budget's regression.p95_percent (command line wins over the file)."""
+    if not items:
+        return budget
+    names = ", ".join(RegressionTolerance.model_fields)
+    raw = budget.model_dump()
+    for item in items:
+        key, sep, value = item.partition("=")
+        if not sep or not key.strip():
+            raise UserError(f"--tolerance {item} — expected NAME=VALUE with NAME one of {names}")
+        try:
+            number = float(value.strip().removesuffix("%"))
+        except ValueError:
+            raise UserError(f"--tolerance {item} — {value!r} is not a number") from None
+        raw["regression"][key.strip()] = number
+    return validate_budget(raw, "--tolerance")
+
+
+def _latency_shape(step: dict, budget: BudgetConfig, where: str) -> str:
+    lat = field(step, "latency_ms", where)
+    batch, length = lat.get("batch_size"), lat.get("sequence_length")
+    for key, want, have in (("batch_size", budget.batch_size, batch), ("sequence_length", budget.sequence_length, length)):
+        if want is not None and want != have:
+            raise UserError(f"{where}: step {step['name']} latency was measured at {key} {have} — the budget's "
+                            f"{key} is {want}; benchmark at {want} (recipe bench.{key}) or change the budget")
+    return f"batch {batch} × {length} tokens"
+
+
+def speed_size_checks(budget: BudgetConfig, p95_ms: float, size_bytes: float, teacher_p95_ms: float,
+                      teacher_size_bytes: float, p95_over_reference: Optional[float] = None, shape: str = "",
+                      teacher: str = "teacher") -> list[Check]:
+    """The limits a model's shapes decide, from its p95 and size and the teacher's, timed in the same run
+    (shared by the gate and `shrinkwrap search`, which checks them before training anything)."""
+    out, at = [], f", {shape}" if shape else ""
+    if budget.latency_p95_ms is not None:
+        out.append(check("latency_p95_ms", f"p95 latency{at}", budget.latency_p95_ms, p95_ms, "<=", " ms"))
+    if budget.latency_p95_over_reference is not None:
+        out.append(check("latency_p95_over_reference", f"p95 / reference matrix-product workload{at}",
+                          budget.latency_p95_over_reference, p95_over_reference, "<=", "×"))
+    if budget.size_mb is not None:
+        out.append(check("size_mb", "size on disk, MB = 10^6 bytes", budget.size_mb, size_bytes / 1e6, "<=", " MB"))
+    if budget.min_speedup is not None:
+        out.append(check("min_speedup", f"{teacher} p95 {num(teacher_p95_ms)} ms / this p95 {num(p95_ms)} ms, "
+                          f"same run{at}", budget.min_speedup, teacher_p95_ms / p95_ms, ">=", "×"))
+    if budget.min_shrink is not None:
+        out.append(check("min_shrink", f"{teacher} size {num(teacher_size_bytes / 1e6)} MB / this size "
+                          f"{num(size_bytes / 1e6)} MB", budget.min_shrink, teacher_size_bytes / size_bytes, ">=", "×"))
+    return out
+
+
+def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str, base_where: str) -> list[Check]:
+    out, tol = [], budget.regression
+    if tol.p95_percent is not None:
+        shape = _latency_shape(step, budget, where)
+        base_lat, lat = field(base, "latency_ms", base_where), step["latency_ms"]
+        if (base_lat.get("batch_size"), base_lat.get("sequence_length")) != (lat.get("batch_size"), lat.get("sequence_length")):
+            raise UserError(f"{base_where}: step {base['name']} latency was measured at batch {base_lat.get('batch_size')} "
+                            f"× {base_lat.get('sequence_length')} tokens, this run at {shape} — not comparable")
+        # Absolute times drift between runs; the ratio to the reference workload of the same run does much less,
+        # so it is compared whenever both runs have it.
+        if "p95_over_reference" in lat and "p95_over_reference" in base_lat:
+            key, what = "p95_over_reference", "p95 / reference workload"
+        else:
+            key, what = "p95", "p95 ms"
+        now, then = number(step, f"latency_ms.{key}", where), number(base, f"latency_ms.{key}", base_where)
+        rise = (now / then - 1) * 100
+        out.append(check("regression.p95_percent", f"{what} {num(now)} vs baseline {num(then)}, {shape}",
+                          tol.p95_percent, rise, "<=", " %"))
+    if tol.accuracy_points is not None:
+        now = number(step, "metrics.accuracy", where)
+        then = number(base, "metrics.accuracy", base_where)
+        out.append(check("regression.accuracy_points", f"accuracy {num(now)} vs baseline {num(then)}",
+                          tol.accuracy_points, (then - now) * 100, "<=", " points"))
+    if tol.size_percent is not None:
+        now = number(step, "size_bytes", where)
+        then = number(base, "size_bytes", base_where)
+        out.append(check("regression.size_percent", f"{num(now / 1e6)} MB vs baseline {num(then / 1e6)} MB",
+                          tol.size_percent, (now / then - 1) * 100, "<=", " %"))
+    return out
+
+
+def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = None, baseline: Optional[dict] = None,
+             where: str = "results.json", baseline_where: str = "baseline", budget_source: str = "recipe") -> Verdict:
+    """Every limit the budget sets, checked against one step. Raises UserError when results cannot answer one."""
+    step = pick_step(results, step_name, where)
+    checks = []
+    limits = budget.speed_size_limits()
+    if limits:
+        shape = _latency_shape(step, budget, where) if set(limits) - {"size_mb", "min_shrink"} else ""
+        ref = teacher_row(results)
+        if "min_speedup" in limits:
+            _latency_shape(ref, budget, where)
+        ratio = (number(step, "latency_ms.p95_over_reference", where,
+                         "these results predate the reference workload; benchmark again with this version")
+                 if "latency_p95_over_reference" in limits else None)
+        checks += speed_size_checks(budget, number(step, "latency_ms.p95", where), number(step, "size_bytes", where),
+                                    number(ref, "latency_ms.p95", where), number(ref, "size_bytes", where),
+                                    ratio, shape, ref["name"])
+    task = of_results(results)
+    foreign = [k for k in budget.quality_keys() if k not in task.BUDGET_KEYS]
+    if foreign:
+        raise UserError(f"{budget_source}: {', '.join(foreign)} — not a limit of a {task.NAME} run; its quality limits "
+                        f"are {', '.join(task.BUDGET_KEYS)}")
+    checks += task.quality_checks(results, step, budget, where)
+    tol = budget.regression
+    tolerances = {k: v for k, v in tol.model_dump().items() if v is not None}
+    if baseline is not None:
+        if not tolerances:
+            raise UserError(f"--baseline {baseline_where}: the budget sets no regression tolerance — add e.g. "
+                            f"--tolerance p95_percent=10 --tolerance accuracy_points=1")
+        checks += _regression_checks(step, pick_step(baseline, step["name"], baseline_where), budget, where,
+                                     baseline_where)
+    else:
+        checks += [Check(f"regression.{k}", "no --baseline to compare with", v, None, "<=",
+                         " points" if k.endswith("points") else " %", SKIP) for k, v in tolerances.items()]
+    if all(c.verdict == SKIP for c in checks):
+        keys = [k for k in BudgetConfig.model_fields if k not in ("batch_size", "sequence_length", "accuracy_drop_upper_bound")]
+        raise UserError(f"{budget_source}: the budget sets no limit to check" + (" without --baseline" if checks else "")
+                        + f" — set at least one of {', '.join(keys)}")
+    return Verdict(where, step["name"], budget_source, checks, cautions(results, budget))
+
+
+def format_table(verdict: Verdict) -> str:
+    rows = [("limit", "allowed", "measured", "verdict", "what")]
+    for c in verdict.checks:
+        sign = "≤" if c.comparison == "<=" else "≥"
+        rows.append((c.name, f"{sign} {num(c.allowed)}{c.unit}", num(c.measured) + (c.unit if c.measured is not None else ""), c.verdict,
+                     c.detail))
+    widths = [max(len(r[i]) for r in rows) for i in range(5)]
+    lines = [f"gate: step {verdict.step} of {verdict.results_path} (budget: {verdict.budget_source})"]
+    lines += ["  ".join(cell.ljust(w) for cell, w in zip(r, widths)).rstrip() for r in rows]
+    lines.append("")
+    if verdict.failed:
+        lines += [f"gate FAILED — {c.line()}" for c in verdict.failed]
+    else:
+        met = sum(c.verdict == PASS for c in verdict.checks)
+        lines.append(f"gate passed: {met} of {met} limits met")
+    lines += [f"note: {c.line()}" for c in verdict.checks if c.verdict == SKIP]
+    return "\n".join(lines)
+
+
+def junit_xml(verdict: Verdict) -> str:
+    """One testsuite, one testcase per limit: CI systems list each limit as a test."""
+    n_fail = len(verdict.failed)
+    n_skip = sum(c.verdict == SKIP for c in verdict.checks)
+    counts = {"tests": str(len(verdict.checks)), "failures": str(n_fail), "errors": "0", "skipped": str(n_skip)}
+    root = ET.Element("testsuites", name="shrinkwrap gate", **counts)
+    suite = ET.SubElement(root, "testsuite", name=f"shrinkwrap gate: {verdict.step}", **counts)
+    ET.SubElement(ET.SubElement(suite, "properties"), "property", name="results", value=verdict.results_path)
+    for c in verdict.checks:
+        case = ET.SubElement(suite, "testcase", classname=f"shrinkwrap.gate.{verdict.step}", name=c.name)
+        if c.verdict == FAIL:
+            ET.SubElement(case, "failure", message=c.line(), type="budget").text = c.line()
+        elif c.verdict == SKIP:
+            ET.SubElement(case, "skipped", message=c.detail)
+        else:
+            ET.SubElement(case, "system-out").text = c.line()
+    ET.indent(root)
+    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
+
+
+def gate_results(results_path: Path, budget_path: Optional[Path] = None, step: Optional[str] = None,
+                 baseline_path: Optional[Path] = None, tolerances: list[str] = ()) -> Verdict:
+    """What `shrinkwrap gate` checks: all inputs are read and validated before any verdict."""
+    from shrinkwrap.recipe.budget import load_budget
+
+    if tolerances and baseline_path is None:
+        raise UserError(f"--tolerance {tolerances[0]} — tolerances are against a baseline; add --baseline OLD_RESULTS")
+    results = load(results_path)
+    if budget_path is not None:
+        budget, source = load_budget(budget_path), str(budget_path)
+    else:
+        budget, source = budget_of_results(results, str(results_path)), f"{results_path}: recipe.budget"
+    budget = with_tolerances(budget, list(tolerances))
+    baseline = load(baseline_path) if baseline_path is not None else None
+    return evaluate(results, budget, step, baseline, str(results_path), str(baseline_path), source)

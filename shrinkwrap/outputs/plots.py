@@ -1,0 +1,128 @@
+"""The report's plots, as PNG data URIs for report.html: accuracy against latency, size, per-class recall drop,
+reliability diagrams and accuracy against coverage. matplotlib is imported only here, and only when called (the
+plain serving install has none; report.py then writes the tables alone)."""
+from __future__ import annotations
+
+import base64
+import io
+
+
+def png_data_uri(fig) -> str:
+    """A figure as a base64 PNG data URI (Agg canvas: no display, no global pyplot state)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100, bbox_inches="tight")
+    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def plots(results: dict) -> list[tuple[str, str]]:
+    """(caption, PNG data URI) of each plot."""
+    from matplotlib.figure import Figure
+
+    from shrinkwrap.outputs.results import label_names, steps_of
+
+    steps = steps_of(results)
+    names = [s["name"] for s in steps]
+    lat = steps[0]["latency_ms"]
+    out = []
+
+    fig = Figure(figsize=(7.5, 4.2))
+    ax = fig.add_subplot()
+    x = [s["latency_ms"]["p95"] for s in steps]
+    y = [s["metrics"]["accuracy"] for s in steps]
+    # A legend rather than labels beside the points: steps of similar speed would print over each other.
+    for i, (xi, yi, n) in enumerate(zip(x, y, names)):
+        ax.plot([xi], [yi], "osD^vP*X"[i % 8], markersize=8, label=n, alpha=0.85)
+    ax.set_xscale("log")  # steps differ by factors, not by milliseconds
+    ax.set_xlabel(f"p95 latency, ms, log scale (batch {lat['batch_size']} × {lat['sequence_length']} tokens, "
+                  f"{lat['threads']} threads)")
+    ax.set_ylabel("accuracy (test split)")
+    ax.set_ylim(max(0.0, min(y) - 0.05), min(1.005, max(y) + 0.03))
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=8, loc="lower right")
+    out.append(("Accuracy against p95 latency, one point per step: up and to the left is better.", png_data_uri(fig)))
+
+    fig = Figure(figsize=(7.5, 0.6 + 0.45 * len(steps)))
+    ax = fig.add_subplot()
+    mb = [s["size_bytes"] / 1e6 for s in steps]
+    ax.barh(names, mb, color="tab:green")
+    ax.invert_yaxis()  # chain order from the top
+    for i, v in enumerate(mb):
+        ax.text(v, i, f" {v:.1f}", va="center", fontsize=9)
+    ax.set_xlabel("size on disk, MB (10^6 bytes)")
+    ax.set_xlim(0, max(mb) * 1.15)
+    out.append(("Size of each step's output.", png_data_uri(fig)))
+
+    if len(steps) > 1:
+        import numpy as np
+
+        labels = label_names(results)
+        ref = np.asarray(steps[0]["metrics"]["per_class"]["recall"])
+        fig = Figure(figsize=(max(7.5, 0.9 * len(labels) * (len(steps) - 1) / 2), 4.2))
+        ax = fig.add_subplot()
+        width = 0.8 / (len(steps) - 1)
+        for j, s in enumerate(steps[1:]):
+            drop = (ref - np.asarray(s["metrics"]["per_class"]["recall"])) * 100
+            ax.bar(np.arange(len(labels)) + (j - (len(steps) - 2) / 2) * width, drop, width, label=s["name"])
+        ax.axhline(0, color="black", linewidth=0.8)
+        if all(np.allclose(ref, s["metrics"]["per_class"]["recall"]) for s in steps[1:]):
+            ax.text(0.5, 0.75, "every class kept its recall in every step", transform=ax.transAxes, ha="center",
+                    color="#555")
+        ax.set_xticks(range(len(labels)), labels, rotation=30 if len(labels) > 6 else 0, ha="right" if len(labels) > 6 else "center")
+        ax.set_ylabel(f"recall drop vs {steps[0]['name']}, points")
+        ax.legend(fontsize=8)
+        ax.grid(axis="y", alpha=0.3)
+        out.append((f"Per-class recall drop against {steps[0]['name']} (above 0 = the class lost recall).", png_data_uri(fig)))
+    out += calibration_plots(results)
+    return out
+
+
+def calibration_plots(results: dict) -> list[tuple[str, str]]:
+    """A reliability diagram per step (its metrics' `reliability` bins) and, for the shipped step, accuracy
+    against coverage when abstaining below each calibrated top score (its `calibration` block)."""
+    from matplotlib.figure import Figure
+
+    from shrinkwrap.outputs.results import final_row, steps_of
+
+    out = []
+    for s in steps_of(results):
+        bins = s["metrics"].get("reliability")
+        if not bins:
+            continue
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([0, 1], [0, 1], "--", color="#888", linewidth=1, label="perfect calibration")
+        ax.bar([b["lo"] for b in bins], [b["accuracy"] for b in bins], [b["hi"] - b["lo"] for b in bins],
+               align="edge", alpha=0.6, edgecolor="black", label="accuracy in the bin")
+        ax.plot([b["confidence"] for b in bins], [b["accuracy"] for b in bins], "o", color="tab:red",
+                markersize=4, label="mean confidence")
+        for b in bins:
+            ax.text((b["lo"] + b["hi"]) / 2, min(b["accuracy"] + 0.02, 1.0), str(b["count"]), ha="center", fontsize=7)
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1.08)
+        ax.set_xlabel("top-label confidence (softmax score)")
+        ax.set_ylabel("accuracy (test split)")
+        ax.legend(fontsize=8, loc="upper left")
+        ece = s["metrics"].get("ece")
+        out.append((f"Reliability diagram of {s['name']}: test texts binned by top score (count above each bar)"
+                    + (f"; ECE {ece:.4f}" if ece is not None else "") + ". Bars below the diagonal: over-confident.",
+                    png_data_uri(fig)))
+    final = final_row(results)
+    cal = final.get("calibration")
+    if cal and cal.get("coverage"):
+        pts = [c for c in cal["coverage"] if c["accuracy"] is not None]
+        fig = Figure(figsize=(5.5, 4.2))
+        ax = fig.add_subplot()
+        ax.plot([c["coverage"] for c in pts], [c["accuracy"] for c in pts], "o-", color="tab:blue")
+        for c in pts:
+            ax.annotate(f"{c['threshold']:.2f}", (c["coverage"], c["accuracy"]), fontsize=7,
+                        textcoords="offset points", xytext=(3, 3))
+        ax.set_xlim(0, 1.05)
+        ax.set_xlabel("coverage (share of test texts answered)")
+        ax.set_ylabel("accuracy on the answered texts")
+        ax.grid(alpha=0.3)
+        out.append((f"Accuracy against coverage of {final['name']} when abstaining below each calibrated top score "
+                    f"(threshold beside each point; temperature {cal['temperature']:.3f}).", png_data_uri(fig)))
+    return out

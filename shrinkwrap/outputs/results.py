@@ -1,0 +1,188 @@
+"""results.json: every figure of a run. This module owns its keys: the runner builds it here (a header, then one
+row per step), and every other module reads and adds to it through the functions below, never by its keys.
+
+    recipe, recipe_fingerprint, machine, data {path, label_names, sizes, fingerprint, notes, transfer_in_test,
+    augmented_in_test}, tokenizer_fingerprint, test_labels, steps [one row per step, the teacher first],
+    artifact {path, temperature, ece, ece_raw} (when built), cautions (once the run is finished)
+
+A step's row: name, format, path, metrics {accuracy, macro_f1, per_class, ...}, latency_ms {p50, p95, ...},
+size_bytes, load_seconds, memory, seconds, tokenizer_fingerprint, info (what the step did: its step.json's),
+predictions, accuracy_drop, agreement_with_teacher, and against the teacher accuracy_drop_ci95, mcnemar,
+bootstrap; agreement_with_fp32 for an int8 step; calibration for the shipped step.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.rundir import STUDENT, STUDENT_PRUNED, read_json
+
+SPLITS = ("train", "validation", "test")
+
+
+# ---- building ----------------------------------------------------------------------------------------------
+
+
+def header(recipe, machine: dict, data, data_fingerprint: str, tokenizer_fp: str) -> dict:
+    """A run's results before any step: what it was asked, where, and on which data (`data` as
+    shrinkwrap.ml.data loads it)."""
+    return {
+        "recipe": recipe.model_dump(mode="json"), "recipe_fingerprint": recipe.fingerprint(),
+        "machine": machine,
+        "data": {"path": str(recipe.resolve(recipe.data.path)), "label_names": data.label_names,
+                 "sizes": {s: len(getattr(data, s)) for s in SPLITS},
+                 "fingerprint": data_fingerprint, "notes": data.notes},
+        "tokenizer_fingerprint": tokenizer_fp,
+        "test_labels": data.test.labels.tolist(),
+        "steps": [],
+    }
+
+
+def step_row(name: str, path: Path, record: dict, bench: dict, teacher: Optional[dict], test_labels) -> dict:
+    """A step's row: its benchmark, what it did (`record`, its step.json) and how it compares with the
+    `teacher` row (None: this is the teacher's row)."""
+    import numpy as np
+
+    row = {"name": name, "format": bench["format"], "path": str(path),
+           "metrics": bench["metrics"], "latency_ms": bench["latency_ms"], "size_bytes": bench["size_bytes"],
+           "load_seconds": bench["load_seconds"], "memory": bench.get("memory"), "seconds": record["seconds"],
+           "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"],
+           "predictions": bench["predictions"]}
+    if "agreement_with_fp32" in record["info"]:  # an int8 step against the fp32 graph it came from
+        row["agreement_with_fp32"] = record["info"]["agreement_with_fp32"]
+    ref = teacher or row
+    row["accuracy_drop"] = round((ref["metrics"]["accuracy"] - row["metrics"]["accuracy"]) * 100, 4)
+    row["agreement_with_teacher"] = float(np.mean(np.array(ref["predictions"]) == np.array(row["predictions"])))
+    if teacher is not None:
+        from shrinkwrap.bench.stats import compare_to_reference
+
+        row.update(compare_to_reference(test_labels, ref["predictions"], row["predictions"]))
+    return row
+
+
+def unmeasured_row(name: str, fmt: str, path: Path, record: dict, size_bytes: int) -> dict:
+    """A step's row when the run measures nothing (a search's untrained candidates): where it is and its size."""
+    return {"name": name, "format": fmt, "path": str(path), "size_bytes": size_bytes, "seconds": record["seconds"],
+            "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"]}
+
+
+def add_row(results: dict, row: dict) -> None:
+    results["steps"].append(row)
+
+
+def set_data_overlap(results: dict, key: str, count: int) -> None:
+    """How many transfer texts (`transfer_in_test`) or augmented copies (`augmented_in_test`) are test texts."""
+    results["data"][key] = count
+
+
+def set_calibration(results: dict, calibration: dict) -> None:
+    """The shipped step's temperature scaling (shrinkwrap.chain.runner.calibrate_step)."""
+    final_row(results)["calibration"] = calibration
+
+
+def set_artifact(results: dict, path: Path) -> None:
+    """Where the run's artifact is, with the shipped step's calibration figures."""
+    cal = final_row(results).get("calibration") or {}
+    results["artifact"] = {"path": str(path), **{k: cal[k] for k in ("temperature", "ece", "ece_raw") if k in cal}}
+
+
+def set_cautions(results: dict, lines: list[str]) -> None:
+    results["cautions"] = lines
+
+
+# ---- reading -----------------------------------------------------------------------------------------------
+
+
+def load(path: Path) -> dict:
+    """A results.json, or a one-line UserError saying why it cannot be one."""
+    results = read_json(path, "results file")
+    if not isinstance(results, dict) or not isinstance(results.get("steps"), list):
+        raise UserError(f"{path}: not a shrinkwrap results.json (no list of steps)")
+    return results
+
+
+def steps_of(results: dict) -> list[dict]:
+    """Every step's row, in chain order, the teacher first."""
+    return results["steps"]
+
+
+def rows_after_teacher(results: dict) -> list[dict]:
+    return results["steps"][1:]
+
+
+def teacher_row(results: dict) -> dict:
+    """The first row: the reference every other step is compared with."""
+    return results["steps"][0]
+
+
+def final_row(results: dict) -> dict:
+    """The last row: the step that ships."""
+    return results["steps"][-1]
+
+
+def step_named(results: dict, name: str) -> Optional[dict]:
+    return next((s for s in results.get("steps") or [] if isinstance(s, dict) and s.get("name") == name), None)
+
+
+def recipe_dump(results: dict) -> dict:
+    """The recipe the run used, as plain data (every key, defaults included)."""
+    return results.get("recipe") or {}
+
+
+def recipe_of(results: dict):
+    """The recipe the run used, validated again (its methods, e.g. student_length)."""
+    from shrinkwrap.recipe.schema import Recipe
+
+    return Recipe.model_validate(recipe_dump(results))
+
+
+def recipe_fingerprint(results: dict) -> str:
+    return results["recipe_fingerprint"]
+
+
+def run_name(results: dict) -> str:
+    return recipe_dump(results)["name"]
+
+
+def data_info(results: dict) -> dict:
+    """The data block: path, label_names, sizes, fingerprint, notes (and the overlap counts)."""
+    return results.get("data") or {}
+
+
+def label_names(results: dict) -> list[str]:
+    return data_info(results).get("label_names") or []
+
+
+def data_notes(results: dict) -> list[str]:
+    return data_info(results).get("notes") or []
+
+
+def test_labels(results: dict) -> list[int]:
+    return results["test_labels"]
+
+
+def machine_of(results: dict) -> dict:
+    return results["machine"]
+
+
+def artifact_path(results: dict) -> Optional[str]:
+    return (results.get("artifact") or {}).get("path")
+
+
+def cautions_of(results: dict) -> list[str]:
+    return results.get("cautions") or []
+
+
+def validation_accuracy(results: dict) -> float:
+    """The best validation accuracy of the last trained student step (a pruned student's recovery first);
+    -inf when no student step trained."""
+    for name in (STUDENT_PRUNED, STUDENT):
+        row = step_named(results, name)
+        if row is None:
+            continue
+        info = row["info"].get("recovery", {}) if name == STUDENT_PRUNED else row["info"]
+        curve, best = info.get("curve"), info.get("best_epoch")
+        if curve and best:
+            return float(curve[best - 1]["accuracy"])
+    return float("-inf")

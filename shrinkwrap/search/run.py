@@ -1,0 +1,334 @@
+"""`shrinkwrap search`: say the budget, get the most accurate candidate that meets it.
+
+Latency and size depend on a candidate's shapes, not on its weights, so most candidates that cannot
+meet the budget are found before any training. In order:
+
+1. the teacher, fine-tuned once (an ordinary run stopped after the teacher step); its outputs on the
+   training texts are cached once, in a cache folder every candidate's run folder shares;
+2. every candidate's *untrained* student: an ordinary run of the candidate's recipe with nothing trained
+   (the teacher's layers kept, pruned to its shapes, its vocabulary cut, exported and made int8 by the
+   chain's own steps), timed with the teacher in interleaved rounds and sized: a candidate that cannot
+   meet the latency or size limits is never trained;
+3. the others trained cheapest first (lowest untrained p95 first), each an ordinary run of the recipe
+   with its settings applied, in a run folder of its own that a rerun reuses step by step; a student
+   another candidate already trained with the same student settings is copied in, not trained again
+   (a pruned candidate starts from the unpruned student of its depth);
+4. every trained candidate and the teacher timed again together, in interleaved rounds;
+5. the winner — the most accurate candidate meeting every limit, ties to the faster — gets its artifact.
+
+Every run goes through the chain's one door, shrinkwrap.chain.pipeline.run_recipe. Under `accelerate
+launch` / `torchrun` every process takes part in each run exactly as in `shrinkwrap run` (the main process
+writes); the timing, the choices and the files are the main process's, and the candidates it picks are
+sent to the others.
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+from pathlib import Path
+from typing import Callable
+
+from shrinkwrap.chain.pipeline import run_recipe
+from shrinkwrap.ml import distributed
+from shrinkwrap.outputs.checks import FAIL, SKIP, Check
+from shrinkwrap.outputs.gate import evaluate, speed_size_checks
+from shrinkwrap.outputs.results import final_row, recipe_dump, teacher_row
+from shrinkwrap.search.halving import FOLDER as HALVING
+from shrinkwrap.search.halving import halving
+from shrinkwrap.search.ranking import miss, pareto_frontier, pick_winner, relative_miss
+from shrinkwrap.search.space import Candidate, Space
+from shrinkwrap.serve.errors import EXIT_BUDGET, EXIT_OK, StepFailed
+from shrinkwrap.serve.rundir import (
+    ARTIFACT_DIR,
+    RESULTS_FILE,
+    STEP_FILE,
+    STUDENT,
+    TEACHER,
+    read_json_or_none,
+    run_lock,
+    scratch,
+    write_json_atomic,
+)
+
+SEARCH_FILE = "search.json"
+TEACHER_RUN, CANDIDATES, UNTRAINED, CACHE = "teacher-run", "candidates", "untrained", "cache"
+# Which heads and neurons an untrained candidate loses does not change its shapes: a few texts decide them.
+SCREEN_IMPORTANCE_TEXTS = 8
+
+
+def _row(c: Candidate) -> dict:
+    return {"settings": c.settings, "trained": False, "meets_budget": False, "accuracy": None,
+            "accuracy_drop": None, "latency_ms": None, "speedup": None, "size_bytes": None, "reason": None,
+            "cautions": None}
+
+
+def _lat(row: dict) -> dict:
+    return {"p50": row["p50"], "p95": row["p95"]}
+
+
+def untrained(recipe):
+    """A candidate's recipe as its screen runs it: the same shapes, nothing trained (no distillation, no
+    recovery after pruning) and none of the steps that are only measured."""
+    r = recipe.model_copy(deep=True)
+    r.student.epochs = 0
+    r.prune.epochs = 0
+    r.prune.importance_texts = SCREEN_IMPORTANCE_TEXTS
+    r.quantize.enabled = False
+    r.onnx_quantize.static = False
+    return r
+
+
+def _short(recipe, epochs: int):
+    short = recipe.model_copy(deep=True)
+    short.student.epochs = epochs
+    return short
+
+
+class Search:
+    def __init__(self, space: Space, out: Path, quiet: bool = False):
+        self.space, self.out, self.quiet = space, Path(out), quiet or not distributed.is_main()
+        self.recipe, self.budget = space.recipe, space.recipe.budget
+        self.rows = [_row(c) for c in space.candidates]
+        self.checks: dict[int, list[Check]] = {}      # candidate -> its limits, as last measured
+        self.results: dict[int, dict] = {}             # trained candidate -> its run's results
+
+    def log(self, message: str) -> None:
+        if not self.quiet:
+            print(f"[search] {message}", file=sys.stderr, flush=True)
+
+    # ---- (1) the teacher ---------------------------------------------------------------------------
+    def teacher(self) -> None:
+        run = self.out / TEACHER_RUN
+        if distributed.is_main():
+            _share_cache(run, self.out / CACHE)
+        distributed.barrier()
+        self.log("teacher: fine-tuned once for every candidate (reused when finished)")
+        self.teacher_results = run_recipe(self.recipe, run, quiet=True, until=TEACHER)
+        self.teacher_dir = run / TEACHER
+
+    # ---- (2) untrained candidates: exported, int8, timed, sized ---------------------------------------
+    def screen_runs(self) -> dict[int, dict]:
+        """Every candidate's untrained run (in every process: the chain's steps run in all of them)."""
+        self.log(f"{len(self.rows)} candidates: each untrained student through the chain's own steps to its "
+                 f"shipped form (reused when made before)")
+        return self.train(list(range(len(self.rows))), untrained, UNTRAINED, measure=False)
+
+    def screen(self, runs: dict[int, dict]) -> list[int]:
+        """The candidates that can meet the latency and size limits untrained, cheapest first."""
+        done = sorted(runs)
+        b = self.recipe.bench
+        self.log(f"timing the {len(done)} untrained candidates with the teacher, {self.recipe.search.rounds} "
+                 f"interleaved rounds (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
+        timed = self._time_with_teacher([Path(final_row(runs[i])["path"]) for i in done])
+        survivors = []
+        for i, lat in zip(done, timed):
+            c, row, size = self.space.candidates[i], self.rows[i], final_row(runs[i])["size_bytes"]
+            checks = self._limits(row, lat, size)
+            failed = [k for k in checks if k.verdict == FAIL]
+            self.checks[i] = checks
+            line = (f"candidate {i} {c.label()}: untrained p95 {lat['p95']:.2f} ms, "
+                    f"{row['speedup']:.2f}× the teacher, {size / 1e6:.2f} MB")
+            if failed:
+                row["reason"] = "not trained — " + "; ".join(miss(k) for k in failed)
+                self.log(f"{line} — {row['reason']}")
+            else:
+                survivors.append(i)
+                self.log(f"{line} — to train")
+        return sorted(survivors, key=lambda i: self.rows[i]["latency_ms"]["p95"])
+
+    def _time_with_teacher(self, folders: list[Path]) -> list[dict]:
+        """Each folder's model timed with the teacher in interleaved rounds, on the batch each was benchmarked
+        on; the teacher's figures are kept in self.teacher_latency."""
+        from shrinkwrap.bench.rounds import time_in_rounds
+        from shrinkwrap.bench.timing import read_timing_batch
+
+        models = [(f, read_timing_batch(f)) for f in [self.teacher_dir, *folders]]
+        timed = time_in_rounds(models, self.recipe.bench, self.recipe.search.rounds)
+        self.teacher_latency = timed[0]
+        return timed[1:]
+
+    def _limits(self, row: dict, lat: dict, size: int) -> list[Check]:
+        """The latency and size limits of a candidate timed with the teacher (its row gets the figures)."""
+        b = self.recipe.bench
+        row.update(latency_ms=_lat(lat), speedup=self.teacher_latency["p95"] / lat["p95"], size_bytes=size)
+        return speed_size_checks(self.budget, lat["p95"], size, self.teacher_latency["p95"],
+                                 teacher_row(self.teacher_results)["size_bytes"], lat["p95_over_reference"],
+                                 f"batch {b.batch_size} × {b.sequence_length} tokens")
+
+    # ---- (3) training ----------------------------------------------------------------------------------
+    def train(self, order: list[int], recipe_of: Callable = lambda r: r, where: str = CANDIDATES,
+              suffix: str = "", measure: bool = True) -> dict[int, dict]:
+        """Runs each candidate in `order` (an ordinary run of `recipe_of(its recipe)` in its own folder);
+        returns its results, leaving out a candidate whose run failed (its row says why)."""
+        done: dict[int, dict] = {}
+        for k, i in enumerate(order):
+            c = self.space.candidates[i]
+            recipe = recipe_of(c.recipe)
+            folder = self.out / where / (c.folder_name + suffix)
+            reused = self._prepare_folder(folder, recipe, where, suffix) if distributed.is_main() else False
+            distributed.barrier()  # the folder is ready before any process runs in it
+            finished = (read_json_or_none(folder / RESULTS_FILE) or {}).get("recipe_fingerprint") == recipe.fingerprint()
+            if measure:
+                self.log(f"training {k + 1}/{len(order)}: candidate {i} {c.label()}"
+                         + (f", {recipe.student.epochs} epoch(s)" if suffix else "")
+                         + (" (finished before: reusing it)" if finished else
+                            " (its student copied from a candidate with the same student settings)" if reused else ""))
+            try:
+                done[i] = run_recipe(recipe, folder, quiet=True, measure=measure)
+            except StepFailed as e:  # one candidate that cannot be trained does not end the search
+                if distributed.launched():  # ...except under a launcher: the other processes are inside its run
+                    raise
+                self.rows[i]["reason"] = f"its run failed — {e}"
+                self.log(f"candidate {i} {c.label()}: {self.rows[i]['reason']}")
+        return done
+
+    def _prepare_folder(self, folder: Path, recipe, where: str, suffix: str) -> bool:
+        """The teacher (hard links) and the shared cache; a finished student of the same settings, if any."""
+        folder.mkdir(parents=True, exist_ok=True)
+        _share_cache(folder, self.out / CACHE)
+        teacher_fp = read_json_or_none(self.teacher_dir / STEP_FILE)["fingerprint"]
+        if (read_json_or_none(folder / TEACHER / STEP_FILE) or {}).get("fingerprint") != teacher_fp:
+            _link_copy(self.teacher_dir, folder / TEACHER)
+        if (folder / STUDENT / STEP_FILE).exists():
+            return False
+        student = recipe.model_dump(mode="json")["student"]
+        for other in (self.out / where).glob(f"c-*{suffix}"):
+            results = read_json_or_none(other / RESULTS_FILE)
+            if (other != folder and results and recipe_dump(results).get("student") == student
+                    and (other / STUDENT / STEP_FILE).exists()):
+                _link_copy(other / STUDENT, folder / STUDENT)  # the runner checks its fingerprint
+                return True
+        return False
+
+    def halving(self, order: list[int]) -> list[int]:
+        """Successive halving of `order`; the rows of those dropped are filled in from their short run."""
+        def train(alive: list[int], epochs: int) -> dict[int, dict]:
+            return self.train(alive, lambda r: _short(r, epochs), HALVING, f"-e{epochs}")
+
+        full = min(self.space.candidates[i].recipe.student.epochs for i in order)
+        alive, dropped = halving(order, self.recipe.search.short_epochs, full, train, self.log)
+        for i, (results, reason) in dropped.items():
+            final = final_row(results)
+            self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
+                                accuracy_drop=final["accuracy_drop"], reason=reason)
+            self.log(f"candidate {i} {self.space.candidates[i].label()}: {reason}")
+        return alive
+
+    def record_trained(self, i: int, results: dict) -> None:
+        from shrinkwrap.outputs.findings import cautions
+
+        final = final_row(results)
+        # what the candidate's average accuracy hides (a class much worse, a drop the test split cannot settle)
+        self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
+                            accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget))
+        self.results[i] = results
+
+    # ---- (4) timing again, together --------------------------------------------------------------------
+    def retime(self) -> None:
+        trained = sorted(self.results)
+        if not trained:
+            return
+        self.log(f"timing the {len(trained)} trained candidates with the teacher again, "
+                 f"{self.recipe.search.rounds} interleaved rounds")
+        timed = self._time_with_teacher([Path(final_row(self.results[i])["path"]) for i in trained])
+        rest = self.budget.model_copy(update={k: None for k in self.budget.speed_size_limits()})
+        for i, lat in zip(trained, timed):
+            row, results = self.rows[i], self.results[i]
+            size = final_row(results)["size_bytes"]
+            checks = self._limits(row, lat, size)
+            if rest.limits_set():
+                checks += [k for k in evaluate(results, rest).checks if k.verdict != SKIP]
+            self.checks[i] = checks
+            failed = [k for k in checks if k.verdict == FAIL]
+            row["meets_budget"] = not failed
+            if row["reason"] is None:
+                row["reason"] = "; ".join(miss(k) for k in failed) if failed else "meets every limit"
+            self.log(f"candidate {i} {self.space.candidates[i].label()}: accuracy {row['accuracy']:.4f} "
+                     f"(drop {row['accuracy_drop']:.2f} points), p95 {lat['p95']:.2f} ms, {row['speedup']:.2f}× the "
+                     f"teacher, {size / 1e6:.2f} MB — {row['reason']}")
+
+    # ---- (5) the winner ----------------------------------------------------------------------------------
+    def finish(self) -> dict:
+        from shrinkwrap.search.report import write_search_report
+
+        summary = {"candidates": self.rows, "frontier": pareto_frontier(self.rows), "winner": pick_winner(self.rows)}
+        w = summary["winner"]
+        if w is not None:
+            src = self.out / CANDIDATES / self.space.candidates[w].folder_name / ARTIFACT_DIR
+            with scratch(self.out / ARTIFACT_DIR) as tmp:
+                shutil.copytree(src, tmp, dirs_exist_ok=True)
+        elif (self.out / ARTIFACT_DIR).exists():  # an earlier search's winner is not this one's
+            shutil.rmtree(self.out / ARTIFACT_DIR)
+        write_json_atomic(self.out / SEARCH_FILE, summary)
+        write_search_report(summary, self.budget, self.teacher_latency, self.out, self.space.candidates,
+                            teacher_row(self.teacher_results)["metrics"]["accuracy"])
+        return summary
+
+    def closest(self) -> str:
+        """The candidate nearest to meeting the budget (smallest sum of relative misses) and its misses."""
+        scored = [(sum(relative_miss(k) for k in checks if k.verdict == FAIL), i)
+                  for i, checks in self.checks.items()]
+        if not scored:
+            return "no candidate could be measured"
+        _, i = min(scored)
+        misses = "; ".join(miss(k) for k in self.checks[i] if k.verdict == FAIL)
+        return f"closest: candidate {i} {self.space.candidates[i].label()} — {misses}"
+
+
+def _share_cache(run_dir: Path, shared: Path) -> None:
+    """run_dir/cache is the search's one cache folder (teacher outputs, transfer texts): computed once."""
+    run_dir.mkdir(parents=True, exist_ok=True)
+    shared.mkdir(parents=True, exist_ok=True)
+    link = run_dir / CACHE
+    if link.is_symlink() or not link.exists():
+        if link.is_symlink():
+            link.unlink()
+        link.symlink_to(os.path.relpath(shared, run_dir), target_is_directory=True)
+
+
+def _link_copy(src: Path, dst: Path) -> None:
+    """A finished step's folder copied by hard links (no bytes copied; files are replaced, never edited)."""
+    def link(a, b):
+        try:
+            os.link(a, b)
+        except OSError:
+            shutil.copy2(a, b)
+
+    with scratch(dst) as tmp:
+        shutil.copytree(src, tmp, dirs_exist_ok=True, copy_function=link)
+
+
+def run_search(space: Space, out: Path, quiet: bool = False) -> tuple[dict, int, str]:
+    """Runs the search; returns (search.json's content, exit code, the closing line)."""
+    s = Search(space, out, quiet)
+    if not distributed.is_main():  # a helper process: it runs what the main one picks, nothing else
+        s.teacher()
+        s.screen_runs()
+        order = distributed.share(None)
+        if order and space.recipe.search.strategy == "halving":
+            order = s.halving(order)
+        if order:
+            s.train(order)
+        return {}, EXIT_OK, ""
+    with run_lock(s.out):
+        s.teacher()
+        order = distributed.share(s.screen(s.screen_runs()))
+        if not order:
+            summary = s.finish()
+            return summary, EXIT_BUDGET, (f"no candidate can meet the latency and size limits, so none was trained "
+                                          f"— {s.closest()}")
+        if space.recipe.search.strategy == "halving":
+            order = s.halving(order)
+        for i, results in s.train(order).items():
+            s.record_trained(i, results)
+        s.retime()
+        summary = s.finish()
+    w = summary["winner"]
+    if w is None:
+        return summary, EXIT_BUDGET, f"no candidate meets the budget — {s.closest()}"
+    row = s.rows[w]
+    return summary, EXIT_OK, (f"winner: candidate {w} {space.candidates[w].label()} — accuracy {row['accuracy']:.4f} "
+                              f"(drop {row['accuracy_drop']:.2f} points), p95 {row['latency_ms']['p95']:.2f} ms, "
+                              f"{row['speedup']:.2f}× the teacher, {row['size_bytes'] / 1e6:.2f} MB; artifact: "
+                              f"{s.out / ARTIFACT_DIR}")

@@ -1,0 +1,185 @@
+"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from an artifact
+(with "text_pair" for a model that classifies pairs of texts).
+
+Scores are calibrated: the softmax of the logits divided by the temperature the manifest records.
+With --min-confidence P, a text whose top score is below P gets "label": null.
+
+Texts come from the arguments, from --file (one per line; JSON lines for .jsonl, a table for .csv/.tsv),
+or from stdin (one per line; JSON lines for a pair model). All input
+is read and checked before the first line is printed, so a bad line never leaves half an output;
+then it is classified a chunk at a time, so a file of millions of lines runs in flat memory.
+Torch-free like shrinkwrap.serve.artifact: this path must run in a slim image.
+"""
+from __future__ import annotations
+
+import json
+import sys
+import tempfile
+from pathlib import Path
+from typing import BinaryIO, Iterator, Optional, TextIO
+
+from shrinkwrap.serve.artifact import load, verify
+from shrinkwrap.serve.errors import EXIT_OK, UserError
+from shrinkwrap.serve.textfiles import json_line, utf8_lines
+
+CHUNK = 4096  # texts classified and written at a time: memory stays flat on a file of millions of lines
+PAIR_HELP = ('give --file with JSON lines {"text": ..., "text_pair": ...} (.jsonl), a .csv/.tsv with --text '
+             'and --text-pair columns, or JSON lines on stdin')
+
+
+def file_kind(path: Path) -> str:
+    """How a --file is read: JSON lines (.jsonl, .ndjson), a table (.csv, .tsv), else one text per line."""
+    suffix = path.suffix.lower()
+    return {".jsonl": "jsonl", ".ndjson": "jsonl", ".csv": "csv", ".tsv": "tsv"}.get(suffix, "lines")
+
+
+def _records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: str,
+             copy: Optional[BinaryIO] = None) -> Iterator[tuple[str, str, Optional[str]]]:
+    """(place, text, text pair or None) of every input in the stream; `place` names it in errors."""
+    if kind in ("csv", "tsv"):
+        yield from _table_records(stream, kind, where, text_col, pair_col)
+        return
+    raw = (line.encode("utf-8") if isinstance(line, str) else line for line in stream)
+    for number, line in utf8_lines(raw, where, copy):
+        if not line.strip():
+            raise UserError(f"{where}: line {number} is empty — one text per line, none empty")
+        if kind == "lines":
+            yield f"line {number}", line.rstrip("\r\n"), None
+            continue
+        obj = json_line(line, number, where) if line.lstrip().startswith("{") else None
+        if not isinstance(obj, dict):
+            raise UserError(f"{where}: line {number} is not a JSON object — expected {{\"{text_col}\": ..., "
+                            f"\"{pair_col}\": ...}} on each line")
+        text, pair = obj.get(text_col), obj.get(pair_col)
+        for key, value in ((text_col, text), (pair_col, pair)):
+            if value is not None and not isinstance(value, str):
+                raise UserError(f"{where}: line {number}: {key!r} is {type(value).__name__} — expected a string")
+        if text is None:
+            raise UserError(f"{where}: line {number} has no {text_col!r} — keys: {', '.join(map(repr, obj)) or 'none'}")
+        yield f"line {number}", text, pair
+
+
+def _table_records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: str):
+    import csv
+    import io
+
+    reader = csv.reader(io.TextIOWrapper(stream, encoding="utf-8", newline=""),
+                        delimiter="\t" if kind == "tsv" else ",")
+    try:
+        header = next(reader, None)
+        if header is None:
+            return
+        if text_col not in header:
+            raise UserError(f"{where}: --text {text_col!r} is not a column — columns: {', '.join(header)}")
+        t, p = header.index(text_col), header.index(pair_col) if pair_col in header else None
+        for row in reader:
+            if not row:
+                continue
+            place = f"row {reader.line_num - 1} (line {reader.line_num})"
+            if len(row) != len(header):
+                raise UserError(f"{where}: {place} has {len(row)} fields where the header has {len(header)}")
+            yield place, row[t], (row[p] if p is not None else None)
+    except UnicodeDecodeError as e:
+        raise UserError(f"{where}: not UTF-8 text — after row {reader.line_num - 1} (byte {e.start} of a "
+                        f"read block); save the file as UTF-8") from None
+    except csv.Error as e:
+        raise UserError(f"{where}: cannot parse line {reader.line_num} — {e}") from None
+
+
+def _checked(records, where: str, pairs: bool) -> Iterator[tuple[str, Optional[str]]]:
+    """The records' (text, pair), each checked: a text and, for a pair model, a second text; none for a
+    single-text model. One line naming the place otherwise."""
+    for place, text, pair in records:
+        if not text.strip():
+            raise UserError(f"{where + ': ' if where else ''}{place} is empty — every text needs at least one character")
+        if pairs and (pair is None or not pair.strip()):
+            raise UserError(f"{where}: {place} is a single text (no text_pair), but this model classifies pairs "
+                            f"of texts — {PAIR_HELP}")
+        if not pairs and pair is not None and pair.strip():
+            raise UserError(f"{where}: {place} gives a text_pair, but this model classifies single texts")
+        yield text, (pair if pairs else None)
+
+
+def _chunked(items: Iterator[tuple[str, Optional[str]]]) -> Iterator[list[tuple[str, Optional[str]]]]:
+    chunk: list = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) == CHUNK:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def read_inputs(texts: list[str], file: Optional[str], stdin, pairs: bool = False, text_col: str = "text",
+                pair_col: str = "text_pair") -> Iterator[list[tuple[str, Optional[str]]]]:
+    """Checks every input first (so that a bad line never leaves half an output), then returns an iterator
+    over (text, pair) in chunks of CHUNK (pair None for a single-text model). A file is read twice; stdin
+    is copied to a temporary file as it is checked. Neither is held in memory whole. Stdin holds one text
+    per line, or JSON lines for a pair model."""
+    if texts and file:
+        raise UserError("give texts as arguments or with --file, not both")
+    if texts:
+        if pairs:
+            raise UserError(f"TEXT argument 1 is a single text, but this model classifies pairs of texts — {PAIR_HELP}")
+        records = [(f"TEXT argument {i + 1}", t, None) for i, t in enumerate(texts)]
+        checked = list(_checked(iter(records), "", False))
+        return iter([checked[i:i + CHUNK] for i in range(0, len(checked), CHUNK)])
+    if file:
+        path = Path(file)
+        kind, where = file_kind(path), f"--file {path}"
+
+        def passes():
+            with open(path, "rb") as f:
+                yield from _checked(_records(f, kind, where, text_col, pair_col), where, pairs)
+        try:
+            count = sum(1 for _ in passes())
+        except FileNotFoundError:
+            raise UserError(f"{where}: no such file") from None
+        except IsADirectoryError:
+            raise UserError(f"{where}: is a folder, not a file") from None
+        if not count:
+            raise UserError(f"{where}: no texts in it")
+        return _chunked(passes())
+    if stdin.isatty():
+        raise UserError("no texts — give them as arguments, with --file, or one per line on stdin")
+    kind = "jsonl" if pairs else "lines"
+    spool = tempfile.TemporaryFile()
+    try:
+        count = sum(1 for _ in _checked(_records(getattr(stdin, "buffer", stdin), kind, "stdin", text_col, pair_col,
+                                                 copy=spool), "stdin", pairs))
+    except BaseException:
+        spool.close()
+        raise
+    if not count:
+        spool.close()
+        raise UserError("stdin: no texts in it")
+    spool.seek(0)
+
+    def from_spool():
+        with spool:
+            yield from _chunked(_checked(_records(spool, kind, "stdin", text_col, pair_col), "stdin", pairs))
+    return from_spool()
+
+
+def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
+                stdin: Optional[TextIO] = None, stdout: Optional[TextIO] = None, trusted_key: Optional[Path] = None,
+                min_confidence: float = 0.0, text_col: str = "text", pair_col: Optional[str] = None) -> int:
+    stdin, stdout = stdin or sys.stdin, stdout or sys.stdout  # looked up per call: a caller may have swapped them
+    if trusted_key is not None:  # the signature vouches for the manifest, whose hashes vouch for the rest
+        from shrinkwrap.serve.signing import check_signature
+
+        check_signature(Path(artifact), trusted_key)
+    manifest = verify(artifact)  # before reading stdin, so a bad artifact fails fast
+    pairs = bool((manifest.get("tokenizer") or {}).get("text_pair"))
+    if pair_col is not None and not pairs:
+        raise UserError(f"--text-pair {pair_col}: this model classifies single texts, not pairs")
+    chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair")
+    model = load(artifact, threads, verified=manifest)
+    for chunk in chunks:
+        batch_texts = [t for t, _ in chunk]
+        batch_pairs = [p for _, p in chunk] if pairs else None
+        for row in model.predict(batch_texts, batch_size, min_confidence, pairs=batch_pairs):
+            stdout.write(json.dumps(row, ensure_ascii=False) + "\n")
+    stdout.flush()
+    return EXIT_OK

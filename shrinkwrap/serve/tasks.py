@@ -1,0 +1,27 @@
+"""The tasks an artifact can serve, by the name its manifest records under `task` (an artifact made before
+tasks were recorded is a classifier). Each is one module beside this one answering the same names:
+
+    NAME                       the task's name, as the manifest records it
+    FILES                      what its artifact carries beside the graph and the tokenizer
+    read(folder, manifest)     what predict needs beyond the graph (class names, a temperature, ...)
+    width(info)                how many numbers the graph gives per text
+    width_error(folder, info, got)   the one-line error when the graph gives another number
+    rows(outputs, info, ...)   the fields predict prints for each text, beside "text"
+"""
+from __future__ import annotations
+
+from types import ModuleType
+
+from shrinkwrap.serve import classification
+from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.rundir import MANIFEST_FILE
+
+TASKS = {classification.NAME: classification}
+DEFAULT = classification.NAME
+
+
+def of_manifest(manifest: dict) -> ModuleType:
+    name = manifest.get("task", DEFAULT)
+    if name not in TASKS:
+        raise UserError(f"{MANIFEST_FILE}: task = {name!r} — this shrinkwrap serves {', '.join(map(repr, TASKS))}")
+    return TASKS[name]
