@@ -92,7 +92,7 @@ def main() -> None:
     w = summary["winner"]
     if w is not None:  # the winner's shipped step, beside the batch it was timed on
         models["search winner"] = out / "search" / CANDIDATES / space.candidates[w].folder_name / "student-onnx-int8"
-    timed = s._time_with_teacher(list(models.values()))
+    timed = [lat for lat, _ in s._with_teacher(list(range(len(models))), list(models.values())).values()]
     models = {"teacher (PyTorch fp32)": s.teacher_dir, **models}
     timed = [s.teacher_latency, *timed]
     ctx = prepare(space.recipe, out / "search" / "teacher-run", quiet=True)

@@ -10,7 +10,7 @@ from shrinkwrap.cli import main
 from shrinkwrap.search.ranking import pareto_frontier, pick_winner
 
 ROW_KEYS = {"cautions", "settings", "trained", "meets_budget", "accuracy", "accuracy_drop", "latency_ms", "speedup", "size_bytes",
-            "reason"}
+            "reason", "validation_accuracy", "tied_with_winner"}
 
 
 def brute_force_frontier(rows):
@@ -53,6 +53,31 @@ def test_frontier_and_winner_on_a_worked_example():
     rows[2]["meets_budget"] = False
     assert pick_winner(rows) == 1               # 0.90 twice: the tie goes to the faster
     assert pick_winner([_row(0.9, 1, 1, meets=False)]) is None
+
+
+def test_the_winner_is_the_fastest_of_those_tied_with_the_best_on_validation():
+    # 200 validation texts. A is right on 180, B on 178 and C on 150; A and B disagree on only 6 texts.
+    # Exact McNemar (McNemar 1947) by hand with scipy.stats.binomtest, two-sided at p = 1/2 on the discordant
+    # texts: A-B 4 against 2 -> p = 0.69 (tied); A-C 32 against 2 -> p < 1e-6 (not tied).
+    from scipy.stats import binomtest
+
+    from shrinkwrap.search.ranking import TIE_P, tied
+
+    labels = [0] * 200
+    a = [0] * 180 + [1] * 20
+    b = [0] * 176 + [1, 1, 1, 1] + [0, 0] + [1] * 18
+    c = [0] * 150 + [1] * 50
+    c[185], c[186] = 0, 0                      # C right on two texts A gets wrong
+    assert binomtest(4, 6, 0.5).pvalue >= TIE_P > binomtest(32, 34, 0.5).pvalue
+    rows = [_row(0.90, 5.0, 100), _row(0.89, 3.0, 100), _row(0.75, 1.0, 100)]
+    for r, preds in zip(rows, (a, b, c)):
+        r["validation_accuracy"] = sum(p == y for p, y in zip(preds, labels)) / len(labels)
+    val = {0: a, 1: b, 2: c}
+    assert tied(rows, val, labels, None) == [0, 1]
+    assert pick_winner(rows, val, labels, None) == 1           # the faster of the tied pair
+    assert pick_winner(rows, val, labels, 0.5) == 0            # 1 point apart on validation: more than 0.5 allowed
+    rows[0]["meets_budget"] = False                            # the best that meets the budget is B now
+    assert tied(rows, val, labels, None) == [1] and pick_winner(rows, val, labels, None) == 1
 
 
 def _recipe(tmp_path, tiny_base, keyword_csv, search, **sections):

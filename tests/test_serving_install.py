@@ -32,8 +32,10 @@ class Refuse:
         return None
 
 sys.meta_path.insert(0, Refuse())
+import shrinkwrap
 from shrinkwrap.cli import main
 art, results, recipe, out = sys.argv[1:5]
+api = [row["label"] for row in shrinkwrap.load_artifact(art).predict(["my router is offline", "locked out of my account"])]
 codes = {
     "predict": main(["predict", art, "my router is offline", "locked out of my account"]),
     "bench": main(["bench", art, "--repeats", "3", "--timed-seconds", "0", "--warmup", "0", "--warm-seconds", "0",
@@ -46,7 +48,7 @@ codes = {
     "package": main(["package", art, "--out", out + "/pkg"]),
 }
 loaded = sorted({m.split(".")[0] for m in sys.modules} & BLOCKED)
-print("PROBE " + json.dumps({"codes": codes, "loaded": loaded}))
+print("PROBE " + json.dumps({"codes": codes, "loaded": loaded, "api": api}))
 """
 
 
@@ -65,6 +67,7 @@ def test_serving_commands_work_without_the_training_extra(tiny_run, tmp_path):
                            "my router is offline", "locked out of my account"], capture_output=True, text=True, cwd=ROOT)
     slim_lines = [json.loads(x) for x in proc.stdout.splitlines() if x.startswith("{\"text\"")]
     assert [x["label"] for x in slim_lines] == [json.loads(x)["label"] for x in full.stdout.splitlines()]
+    assert probe["api"] == [x["label"] for x in slim_lines]  # shrinkwrap.load_artifact(...).predict, torch-free
     assert json.loads((tmp_path / "bench.json").read_text())["latency"], "bench wrote no figures"
     assert "No plots: matplotlib is not installed" in (tmp_path / "report.html").read_text(encoding="utf-8")
     # run and package: exit 2, one line each with the exact install command, nothing written.

@@ -5,13 +5,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from shrinkwrap.bench.stats import (
-    N_RESAMPLES,
-    compare_to_reference,
-    discordant_pairs,
-    mcnemar_exact_p,
-    paired_bootstrap_drop,
-)
+from shrinkwrap.bench.stats import (N_RESAMPLES, compare_to_reference, discordant_pairs, mcnemar_exact_p,
+                                    paired_bootstrap_drop)
 
 
 def paired_predictions(n=1000, seed=1, copy=0.93):

@@ -2,6 +2,7 @@
 target's own tokenizer and labelled by the target's own label names."""
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Optional
@@ -11,6 +12,7 @@ import numpy as np
 from shrinkwrap.bench.measure import Inputs
 from shrinkwrap.bench.targets import Target
 from shrinkwrap.serve.errors import UserError
+from shrinkwrap.serve.rundir import trained_length
 
 # Without --max-length and without a limit from the model, texts are cut at this many tokens
 # (the usual BERT position count, common practice).
@@ -48,6 +50,20 @@ def label_ids(table: LabelledTable, names: list[str]) -> np.ndarray:
     return np.array([index[v] for v in table.labels], dtype=np.int64)
 
 
+def _trained_length(target: Target) -> int:
+    """Where an artifact cuts texts (its manifest), or the length a step folder records it was trained at; else
+    the model's position count (or 512), said in a note."""
+    if target.extra.get("manifest") is not None:
+        return target.token_limit()
+    recorded = trained_length(target.tokenizer_dir, target.token_limit())
+    if recorded is not None:
+        return recorded
+    limit = target.token_limit() or DEFAULT_MAX_LENGTH
+    print(f"note: {target.tokenizer_dir} does not record the length it was trained at — --data texts are cut at "
+          f"{limit} tokens (the most the model takes); give --max-length to choose", file=sys.stderr, flush=True)
+    return limit
+
+
 def _tokenizer(target: Target):
     from shrinkwrap.ml.models import load_tokenizer
 
@@ -77,7 +93,7 @@ def inputs_for(table: Optional[LabelledTable], max_length: Optional[int] = None)
                             f"or an artifact's labels) — accuracy on --data needs them")
         labels = label_ids(table, names)
         tokenizer = _tokenizer(target)
-        limit = max_length or target.token_limit() or DEFAULT_MAX_LENGTH
+        limit = max_length or _trained_length(target)
         if max_length and target.token_limit() and max_length > target.token_limit():
             raise UserError(f"--max-length {max_length} — {target.path} takes at most {target.token_limit()} tokens")
         # an artifact's texts are cut by the rule its manifest records, as its chain cut them

@@ -10,26 +10,30 @@ from typing import Optional
 from shrinkwrap.chain.runner import run_chain
 from shrinkwrap.ml import distributed
 from shrinkwrap.outputs import results as results_file
+from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import RESULTS_FILE, run_lock, write_json_atomic
 
 
 def run_recipe(recipe, out: Path, quiet: bool = False, until: Optional[str] = None,
-               signing_key: Optional[Path] = None, measure: bool = True) -> dict:
+               signing_key: Optional[Path] = None, measure: bool = True, retime: bool = False) -> dict:
     """What `shrinkwrap run` writes, in order: every step (up to `until`) and results.json, the artifact, the
     reports. measure=False runs the steps and times nothing (no benchmark, artifact or report: a search's
-    untrained candidates, whose shapes alone are wanted). Returns the results ({} in a helper process of a
-    distributed run)."""
+    untrained candidates, whose shapes alone are wanted). retime=True trains nothing: a finished run's steps
+    are timed together again (`run --retime`). Returns the results ({} in a helper process of a distributed
+    run)."""
     if not distributed.is_main():  # the main process holds the run folder's lock for all of them
-        return run_chain(recipe, out, quiet=quiet, until=until, measure=measure)
+        return run_chain(recipe, out, quiet=quiet, until=until, measure=measure, retime=retime)
     with run_lock(out):
-        results = run_chain(recipe, out, quiet=quiet, until=until, measure=measure)
+        results = run_chain(recipe, out, quiet=quiet, until=until, measure=measure, retime=retime)
         if results and measure:
-            _finish(results, out, quiet, signing_key)
+            _finish(results, out, quiet, signing_key, gate=recipe.budget.limits_set() and until is None)
     return results
 
 
-def _finish(results: dict, out: Path, quiet: bool, signing_key: Optional[Path] = None) -> None:
-    """The artifact (when the chain ends with an ONNX step) and the reports, once the steps are done."""
+def _finish(results: dict, out: Path, quiet: bool, signing_key: Optional[Path] = None, gate: bool = False) -> None:
+    """The artifact (when the chain ends with an ONNX step), the recipe budget's verdict (`gate`) and the reports,
+    once the steps are done. A budget the results cannot answer is bad input, raised once the reports are out."""
+    from shrinkwrap.outputs.gate import evaluate
     from shrinkwrap.outputs.findings import cautions
     from shrinkwrap.outputs.package import from_run
     from shrinkwrap.outputs.report import write_reports
@@ -44,5 +48,15 @@ def _finish(results: dict, out: Path, quiet: bool, signing_key: Optional[Path] =
         if not quiet:
             print(f"[artifact] written to {results_file.artifact_path(results)}", file=sys.stderr, flush=True)
     results_file.set_cautions(results, cautions(results))
+    error = None
+    if gate:
+        try:
+            budget = results_file.recipe_of(results).budget
+            results_file.set_verdict(results, evaluate(results, budget, where=str(out / RESULTS_FILE),
+                                                       budget_source="recipe budget").as_dict())
+        except UserError as e:
+            error = e
     write_json_atomic(out / RESULTS_FILE, results)
     write_reports(results, out)
+    if error is not None:
+        raise error

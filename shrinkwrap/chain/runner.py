@@ -22,20 +22,9 @@ from shrinkwrap.outputs import results as results_file
 from shrinkwrap.recipe.schema import Recipe
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.fingerprint import sha256_json, tokenizer_fingerprint_of_file
-from shrinkwrap.serve.rundir import (
-    BENCH_FILE,
-    RESULTS_FILE,
-    STEP_FILE,
-    TEACHER,
-    TOKENIZER_FILE,
-    is_disk_full,
-    make_run_dir,
-    read_json_or_none,
-    scratch,
-    scratch_path,
-    write_error,
-    write_json_atomic,
-)
+from shrinkwrap.serve.rundir import (BENCH_FILE, RESULTS_FILE, STEP_FILE, TEACHER, TOKENIZER_FILE, is_disk_full,
+                                     make_run_dir, read_json_or_none, record_trained_length, scratch, scratch_path,
+                                     write_error, write_json_atomic)
 
 # Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
 CODE_VERSION = 1
@@ -85,8 +74,9 @@ def _call(ctx: Context, step: Step, out: Path) -> dict:
         raise
 
 
-def run_step(ctx: Context, step: Step) -> dict:
-    """Reuses the step's finished output when its fingerprint matches; otherwise runs it atomically."""
+def run_step(ctx: Context, step: Step, finished_only: bool = False) -> dict:
+    """Reuses the step's finished output when its fingerprint matches; otherwise runs it atomically (with
+    `finished_only`, a one-line UserError instead: `run --retime` never trains)."""
     fp = step_fingerprint(ctx, step)
     ctx.fingerprints[step.name] = fp
     final = ctx.run_dir / step.name
@@ -96,6 +86,10 @@ def run_step(ctx: Context, step: Step) -> dict:
         ctx.log(f"[{step.name}] unchanged — reusing {final}")
         ctx.outputs[step.name] = final
         return done
+    if finished_only:
+        raise UserError(f"--retime: step {step.name} is not finished in {ctx.run_dir}"
+                        + (" (the recipe changed since it ran)" if done else "")
+                        + " — run without --retime to make it; --retime only times a finished run again")
     if not distributed.is_main():  # a helper process: it trains alongside; the main one finishes the step
         distributed.barrier()  # the scratch folder (and any checkpoint in it) is ready
         if step.trains:
@@ -113,6 +107,7 @@ def run_step(ctx: Context, step: Step) -> dict:
         info = _call(ctx, step, partial)
         seconds = time.perf_counter() - started
         close_scratch(partial)
+        record_trained_length(partial, ctx.length_of(step.name))  # where bench --data and package cut texts
         tok_fp = check_output_tokenizer(ctx, step, partial)
         # "after": the step.json key for the step's source since step.json was first written
         record = {"name": step.name, "format": step.format, "fingerprint": fp, "tokenizer_fingerprint": tok_fp,
@@ -150,11 +145,13 @@ def bench_step(ctx: Context, step: Step) -> dict:
     return result
 
 
-def calibrate_step(ctx: Context, step: Step) -> dict:
+def calibrate_step(ctx: Context, step: Step, results: dict) -> dict:
     """Temperature scaling of the shipped step (Guo et al. 2017): one T fitted on the validation split's
     logits to minimise their NLL, then the test split's calibration with and without it, and the
-    accuracy-against-coverage curve the report plots for abstention (predict --min-confidence)."""
+    accuracy-against-coverage curve the report plots for abstention (predict --min-confidence). The shipped
+    step's quality on the validation split is recorded too (a search ranks its candidates by it)."""
     from shrinkwrap.bench.targets import load_target
+    from shrinkwrap.bench.tasks import TASKS
     from shrinkwrap.ml.temperature import fit_temperature
     from shrinkwrap.serve import calibration
     from shrinkwrap.serve.batches import all_outputs
@@ -169,6 +166,8 @@ def calibrate_step(ctx: Context, step: Step) -> dict:
     finally:
         target.release()
     y_val, y_test = ctx.data.validation.labels, ctx.data.test.labels
+    if len(y_val):
+        results_file.set_validation(results, *TASKS[ctx.task.NAME].quality(val, y_val, n))
     t = fit_temperature(val, y_val) if len(y_val) else 1.0
     ctx.log(f"[{step.name}] temperature {t:.3f} fitted on {len(y_val)} validation texts")
     scaled, raw = calibration.figures(test, y_test, t), calibration.figures(test, y_test)
@@ -178,6 +177,25 @@ def calibrate_step(ctx: Context, step: Step) -> dict:
             "ece": scaled["ece"], "ece_raw": raw["ece"], "brier": scaled["brier"], "nll": scaled["nll"],
             "reliability": scaled["reliability"],
             "coverage": calibration.coverage_curve(calibration.softmax(test, t), y_test)}
+
+
+def time_together(ctx: Context, results: dict) -> None:
+    """The teacher and every step's output timed together in interleaved rounds (bench.rounds), each on the
+    batch it was benchmarked on: the figures results.json's `latency_ms` holds, and the gate reads. The timing
+    taken right after each step stays as `latency_ms_alone`, a progress figure."""
+    from shrinkwrap.bench.rounds import time_folders
+
+    b = ctx.recipe.bench
+    rows = results_file.steps_of(results)
+    ctx.log(f"[timing] the teacher and {len(rows) - 1} step(s) together, {b.rounds} interleaved rounds (batch "
+            f"{b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
+    timed = time_folders([Path(r["path"]) for r in rows], b, b.rounds)
+    for row, latency in zip(rows, timed):
+        results_file.set_latency(row, {**latency, "sequence_length": b.sequence_length})
+    unsteady = [r["name"] for r in rows if r["latency_ms"]["unstable"]]
+    if unsteady:
+        ctx.log(f"[timing] unstable (the machine was busy): {', '.join(unsteady)} — the gate re-times before it "
+                f"judges a latency limit on them; `shrinkwrap run RECIPE --retime` times the run again")
 
 
 def _record_overlaps(ctx: Context, results: dict) -> None:
@@ -194,11 +212,12 @@ def _record_overlaps(ctx: Context, results: dict) -> None:
 
 
 def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[str] = None,
-              measure: bool = True) -> dict:
+              measure: bool = True, retime: bool = False) -> dict:
     """Runs (or reuses) every enabled step in order, stopping after `until` when given; returns the
     results (also in out/results.json). measure=False: no benchmark and no calibration, only each step's
-    output, its size and its timing batch (a search's untrained candidates). A helper process of a
-    distributed run returns {}."""
+    output, its size and its timing batch (a search's untrained candidates). retime=True: every step must be
+    finished already (nothing trains); they are timed together again. A helper process of a distributed run
+    returns {}."""
     steps = [s for s in chain(recipe) if s.enabled(recipe)]
     if until is not None and until not in [s.name for s in steps]:
         raise UserError(f"--until {until} — not a step of this recipe; steps: {', '.join(s.name for s in steps)}")
@@ -213,7 +232,7 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         _record_overlaps(ctx, results)
     teacher = None
     for step in steps:
-        record = run_step(ctx, step)
+        record = run_step(ctx, step, finished_only=retime)
         if distributed.is_main():  # benchmarks and results are the main process's
             folder = ctx.outputs[step.name]
             write_timing_batch(folder, ctx.timing_batch(folder, ctx.length_of(step.name)))
@@ -228,9 +247,11 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         if step.name == until:
             break
     if measure and distributed.is_main() and results_file.steps_of(results):
+        time_together(ctx, results)
+        write_json_atomic(out / RESULTS_FILE, results)
         last = next(s for s in steps if s.name == results_file.final_row(results)["name"])
         if last.format == "onnx":
-            results_file.set_calibration(results, calibrate_step(ctx, last))
+            results_file.set_calibration(results, calibrate_step(ctx, last, results))
             write_json_atomic(out / RESULTS_FILE, results)
     return results if distributed.is_main() else {}
 

@@ -10,6 +10,7 @@ import sys
 import tempfile
 import time
 import traceback
+import warnings
 from pathlib import Path
 
 from shrinkwrap import __version__
@@ -55,12 +56,32 @@ def _where(e: BaseException) -> str:
     return f"{'shrinkwrap/' + name if ours else name}:{frame.lineno}"
 
 
+def _notice(message, category, filename, lineno, file=None, line=None):
+    """shrinkwrap's own notices (UserWarnings, which the Python API leaves as warnings) as plain `note:` lines:
+    each names its file and place itself; Python's warning line would add a source path and line of ours."""
+    if issubclass(category, UserWarning) and f"{os.sep}shrinkwrap{os.sep}" in filename:
+        print(f"note: {message}", file=file or sys.stderr, flush=True)
+    else:
+        _show_warning(message, category, filename, lineno, file, line)
+
+
+_show_warning = warnings.showwarning
+
+
 def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     try:
         args = build_parser().parse_args(argv)
     except SystemExit as e:  # a bad option (exit 2, one line), --help or --version (0): returned like any outcome
         return e.code if isinstance(e.code, int) else EXIT_INPUT
+    warnings.showwarning = _notice
+    try:
+        return _run(args)
+    finally:
+        warnings.showwarning = _show_warning
+
+
+def _run(args) -> int:
     try:
         return args.func(args)
     except UserError as e:

@@ -4,17 +4,8 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from shrinkwrap.cli.options import (
-    RENAMED_OPTIONS,
-    Renamed,
-    add_trusted_key,
-    at_least,
-    count,
-    field_bounds,
-    logger,
-    positive_int,
-    seconds,
-)
+from shrinkwrap.cli.options import (RENAMED_OPTIONS, Renamed, add_trusted_key, at_least, count, field_bounds, logger,
+                                    positive_int, seconds)
 from shrinkwrap.serve.errors import EXIT_OK, UserError
 
 

@@ -5,15 +5,8 @@ import argparse
 import json
 from pathlib import Path
 
-from shrinkwrap.cli.options import (
-    add_signing_key,
-    at_least,
-    field_bounds,
-    logger,
-    positive_int,
-    print_cautions,
-    signing_key,
-)
+from shrinkwrap.cli.options import (add_signing_key, at_least, field_bounds, logger, positive_int, print_cautions,
+                                    signing_key)
 from shrinkwrap.serve.errors import EXIT_OK
 
 
@@ -73,8 +66,12 @@ def main(args) -> int:
         print(json.dumps(manifest, indent=2))
     else:
         m = manifest.get("metrics")
+        timing = (f"; p95 {m['latency_ms']['p95']:.2f} ms against {m['source_latency_ms']['p95']:.2f} ms for the "
+                  f"source, {m['speedup_p95']:.2f}× faster, timed together"
+                  + (" — unstable: the machine was busy" if m["latency_ms"]["unstable"]
+                     or m["source_latency_ms"]["unstable"] else "") if m and "speedup_p95" in m else "")
         print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
-                                    f"{m['texts']} texts)" if m else ""))
+                                    f"{m['texts']} texts{timing})" if m else ""))
     if caution:
         print_cautions([caution])
     return EXIT_OK

@@ -27,6 +27,9 @@ def add(sub) -> None:
                         "accuracy pass, which gives exactly its predictions)")
     p.add_argument("--threads", type=count, default=0, metavar="N",
                    help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
+    p.add_argument("--id", metavar="NAME",
+                   help="key (JSON lines) or column (CSV/TSV) of --file holding each row's id: printed first in its "
+                        "output line, under that name, so that results join back to the rows")
     add_trusted_key(p)
     p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
                    help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
@@ -41,4 +44,5 @@ def main(args) -> int:
 
     return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
                        trusted_key=args.trusted_key and Path(args.trusted_key),
-                       min_confidence=args.min_confidence, text_col=args.text, pair_col=args.text_pair)
+                       min_confidence=args.min_confidence, text_col=args.text, pair_col=args.text_pair,
+                       id_col=args.id)

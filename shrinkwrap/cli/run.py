@@ -19,6 +19,10 @@ def add(sub) -> None:
     p.add_argument("--json", action="store_true", help="print results.json to stdout instead of the table")
     p.add_argument("--until", metavar="STEP",
                    help="stop after this step, e.g. --until student (finished later steps are kept on disk)")
+    p.add_argument("--retime", action="store_true",
+                   help="time a finished run again without training anything: every step must be finished (exit 2 "
+                        "otherwise); the teacher and every step are timed together again, then the reports and the "
+                        "budget as usual")
     add_signing_key(p)
     p.set_defaults(func=main)
 
@@ -36,7 +40,7 @@ def main(args) -> int:
     recipe = load_recipe(args.recipe, args.set)
     out = Path(args.out) if args.out else Path("runs") / recipe.name
     key = signing_key(args)
-    results = run_recipe(recipe, out, quiet=args.json, until=args.until, signing_key=key)
+    results = run_recipe(recipe, out, quiet=args.json, until=args.until, signing_key=key, retime=args.retime)
     if not results:  # a helper process of a distributed run: the main process reports
         return EXIT_OK
     if args.json:
@@ -53,9 +57,10 @@ def main(args) -> int:
     if args.until:
         print("note: the recipe's budget is not checked — --until stopped the chain early", file=sys.stderr)
         return EXIT_OK
-    from shrinkwrap.outputs.gate import evaluate, format_table
+    from shrinkwrap.outputs.gate import Verdict, format_table
+    from shrinkwrap.outputs.results import verdict_of
 
-    verdict = evaluate(results, recipe.budget, where=str(out / RESULTS_FILE), budget_source="recipe budget")
+    verdict = Verdict.from_dict(verdict_of(results))  # checked by the run, after everything was written
     print("\n" + format_table(verdict), file=sys.stderr if args.json else sys.stdout)
     print_cautions(cautions_of(results))
     return verdict.exit_code

@@ -209,13 +209,8 @@ def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: i
                         op_types: list[str]) -> None:
     """QDQ int8 of `src`: int8 weights, uint8 activations (the pairing ONNX Runtime's CPU kernels are
     fastest with), ranges from the min/max seen on `calibration` (one unpadded text per run)."""
-    from onnxruntime.quantization import (
-        CalibrationDataReader,
-        CalibrationMethod,
-        QuantFormat,
-        QuantType,
-        quantize_static,
-    )
+    from onnxruntime.quantization import (CalibrationDataReader, CalibrationMethod, QuantFormat, QuantType,
+                                          quantize_static)
 
     graph_inputs = {i.name for i in onnx.load(str(src), load_external_data=False).graph.input}
 

@@ -24,14 +24,8 @@ from torch import nn
 from shrinkwrap.ml import distributed
 from shrinkwrap.ml.checkpoint import CHECKPOINT_DIR, Checkpoint
 from shrinkwrap.ml.losses import attention_loss, hidden_state_loss
-from shrinkwrap.ml.models import (
-    ATTENTION_FALLBACK,
-    evenly_spaced,
-    keep_layers,
-    library_notices_silenced,
-    num_layers,
-    to_torch,
-)
+from shrinkwrap.ml.models import (ATTENTION_FALLBACK, evenly_spaced, keep_layers, library_notices_silenced, num_layers,
+                                  to_torch)
 from shrinkwrap.ml.train import TrainSettings, fit, settings_from
 from shrinkwrap.serve.batches import Joined, length_batches
 from shrinkwrap.serve.fingerprint import sha256_json

@@ -6,16 +6,8 @@ from pathlib import Path
 from typing import Optional
 
 from shrinkwrap.outputs.report import int8_agreement_lines, per_class_table, step_table
-from shrinkwrap.outputs.results import (
-    data_info,
-    data_notes,
-    final_row,
-    label_names,
-    recipe_dump,
-    recipe_fingerprint,
-    steps_of,
-    teacher_row,
-)
+from shrinkwrap.outputs.results import (data_info, data_notes, final_row, label_names, recipe_dump, recipe_fingerprint,
+                                        steps_of, teacher_row)
 from shrinkwrap.outputs.tasks import of_results
 
 # What data.truncation keeps of a long text, in the card's words.

@@ -51,31 +51,33 @@ def lost_too_many(lost: int, support: int, average_drop_points: float) -> tuple[
     return p < CLASS_P, p
 
 
-def class_caution_list(results: dict) -> list[str]:
-    """One plain line per step and class that lost much more than the average (CLASS_RULE)."""
+def class_caution_list(results: dict) -> list[tuple[str, str]]:
+    """(step, one plain line) per step and class that lost much more than the average (CLASS_RULE)."""
     out = []
     for s in rows_after_teacher(results):
         for c in class_changes(results, s):
             flagged, p = lost_too_many(c["lost"], c["support"], s["accuracy_drop"])
             if flagged:
-                out.append(f"{s['name']}: class '{c['class']}' lost {c['lost']} of {c['support']} texts "
-                           f"(recall {c['recall_change_points']:+.1f} points) while accuracy fell "
-                           f"{s['accuracy_drop']:.2f} points — more than the average explains (binomial p = {p:.2g})")
+                moved = (f"fell {s['accuracy_drop']:.2f} points" if s["accuracy_drop"] >= 0 else
+                         f"rose {-s['accuracy_drop']:.2f} points")
+                out.append((s["name"], f"{s['name']}: class '{c['class']}' lost {c['lost']} of {c['support']} texts "
+                                       f"(recall {c['recall_change_points']:+.1f} points) while accuracy {moved} — "
+                                       f"more than the average explains (binomial p = {p:.2g})"))
     return out
 
 
 def per_class_cautions(results: dict) -> list[str]:
     """report.md / card bullets of class_caution_list."""
-    return [f"- {line}." for line in class_caution_list(results)]
+    return [f"- {line}." for _, line in class_caution_list(results)]
 
 
 CAUTION_RULE = CLASS_RULE
 
 
-def cautions(results: dict, budget=None) -> list[str]:
-    """What a classifier's averages hide, one line each: a class that lost much more than the average
-    (CLASS_RULE), and a drop within the budget that the test split is too small to settle. `budget`: a
-    BudgetConfig (else the recipe's)."""
+def cautions(results: dict, budget=None) -> list[tuple[str, str]]:
+    """What a classifier's averages hide, as (the step it concerns, one line): a class that lost much more than
+    the average (CLASS_RULE), and a drop within the budget that the test split is too small to settle.
+    `budget`: a BudgetConfig (else the recipe's)."""
     out = class_caution_list(results)
     if budget is None:
         allowed = (recipe_dump(results).get("budget") or {}).get("accuracy_drop_points")
@@ -84,9 +86,9 @@ def cautions(results: dict, budget=None) -> list[str]:
     final = final_row(results)
     ci = final.get("accuracy_drop_ci95")
     if allowed is not None and ci and final["accuracy_drop"] <= allowed < ci[1]:
-        out.append(f"{final['name']}: the accuracy drop {final['accuracy_drop']:.2f} points is within the budget "
-                   f"{allowed:g}, but its 95 % upper bound {ci[1]:.2f} is not — the test split is too small to show "
-                   f"the budget is met")
+        out.append((final["name"], f"{final['name']}: the accuracy drop {final['accuracy_drop']:.2f} points is "
+                                   f"within the budget {allowed:g}, but its 95 % upper bound {ci[1]:.2f} is not — the "
+                                   f"test split is too small to show the budget is met"))
     return out
 
 

@@ -4,31 +4,44 @@ is too small to settle), test texts the student saw the teacher's answers on, a 
 tokens. The report, the model card, the gate and the search all say them from here."""
 from __future__ import annotations
 
-from shrinkwrap.outputs.results import data_info, steps_of
+from typing import Optional
+
+from shrinkwrap.outputs.results import data_info, lineage, steps_of
 from shrinkwrap.outputs.tasks import of_results
 
 # Share of test tokens a trimmed vocabulary no longer holds above which the trimming is called out.
 OOV_CAUTION = 0.005
 
 
-def cautions(results: dict, budget=None) -> list[str]:
-    """Every caution, one line each, for the console (stderr) and results.json `cautions`: what the table's
-    averages can hide — the task's own (a classifier's: a class much worse than the average, a drop the test split
-    cannot settle; `budget` a BudgetConfig, else the recipe's), then test texts the student saw the teacher's
+def cautions_by_step(results: dict, budget=None) -> list[tuple[Optional[str], str]]:
+    """Every caution as (the step it concerns, or None for the run as a whole; one line): what the table's
+    averages can hide — the task's own (a classifier's: a class much worse than the average, a drop the test
+    split cannot settle; `budget` a BudgetConfig, else the recipe's), test texts the student saw the teacher's
     answers on, and a trimmed vocabulary that loses test tokens."""
-    out = of_results(results).cautions(results, budget)
+    out: list[tuple[Optional[str], str]] = list(of_results(results).cautions(results, budget))
     overlap = data_info(results).get("transfer_in_test")
     if overlap:
-        out.append(f"{overlap} transfer texts also occur in the test split: the student saw the teacher's answers "
-                   f"on them, so its test accuracy is optimistic")
+        out.append((None, f"{overlap} transfer texts also occur in the test split: the student saw the teacher's "
+                          f"answers on them, so its test accuracy is optimistic"))
     overlap = data_info(results).get("augmented_in_test")
     if overlap:
-        out.append(f"{overlap} augmented copies of training texts are also test texts: the student saw the "
-                   f"teacher's answers on them, so its test accuracy is optimistic")
+        out.append((None, f"{overlap} augmented copies of training texts are also test texts: the student saw the "
+                          f"teacher's answers on them, so its test accuracy is optimistic"))
     for s in steps_of(results):
         rate = s["info"].get("test_oov_rate") if isinstance(s.get("info"), dict) else None
         if rate is not None and rate > OOV_CAUTION:
-            out.append(f"{s['name']}: {rate * 100:.2f} % of the test tokens ({round(rate * s['info']['test_tokens'])} "
-                       f"of {s['info']['test_tokens']}) are no longer in the trimmed vocabulary and fall back to "
-                       f"unknown or shorter pieces")
+            out.append((s["name"], f"{s['name']}: {rate * 100:.2f} % of the test tokens "
+                                   f"({round(rate * s['info']['test_tokens'])} of {s['info']['test_tokens']}) are no "
+                                   f"longer in the trimmed vocabulary and fall back to unknown or shorter pieces"))
     return out
+
+
+def cautions(results: dict, budget=None) -> list[str]:
+    """Every caution, one line each (cautions_by_step without the steps): the console's and results.json's."""
+    return [line for _, line in cautions_by_step(results, budget)]
+
+
+def concern_release(results: dict, step: Optional[str]) -> bool:
+    """Whether a caution about `step` (None: the whole run) concerns what ships: the final step and every step it
+    was made from; the steps only measured beside them (e.g. student-int8) do not."""
+    return step is None or step in lineage(results)

@@ -9,41 +9,24 @@ from __future__ import annotations
 
 import json
 import shutil
+import sys
 import tempfile
 import time
 from pathlib import Path
 from typing import Callable, Optional
 
 from shrinkwrap.outputs.card import folder_card, run_card
-from shrinkwrap.outputs.results import (
-    data_info,
-    final_row,
-    label_names,
-    recipe_fingerprint,
-    recipe_of,
-    step_named,
-    test_labels,
-)
+from shrinkwrap.outputs.results import (data_info, final_row, label_names, recipe_fingerprint, recipe_of, step_named,
+                                        test_labels)
 from shrinkwrap.outputs.tasks import of_results
 from shrinkwrap.serve import tasks
 from shrinkwrap.serve.artifact import DEFAULT_BATCH_SIZE, FORMAT, FORMAT_VERSION, file_entries, is_artifact, open_folder
 from shrinkwrap.serve.classification import labels_of_config
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.fingerprint import sha256_file, tokenizer_fingerprint_of_file
-from shrinkwrap.serve.rundir import (
-    ARTIFACT_DIR,
-    CARD_FILE,
-    CONFIG_FILE,
-    LABELS_FILE,
-    MANIFEST_FILE,
-    MODEL_FILE,
-    STEP_FILE,
-    TOKENIZER_FILE,
-    check_out_dir,
-    read_json,
-    read_json_or_none,
-    scratch,
-)
+from shrinkwrap.serve.rundir import (ARTIFACT_DIR, CARD_FILE, CONFIG_FILE, LABELS_FILE, MANIFEST_FILE, MODEL_FILE,
+                                     STEP_FILE, TOKENIZER_FILE, check_out_dir, read_json, read_json_or_none, scratch,
+                                     trained_length)
 
 # Tokenizer files the transformers libraries may write; whichever the source has travel with the model.
 TOKENIZER_FILES = (TOKENIZER_FILE, "tokenizer_config.json", "special_tokens_map.json", "added_tokens.json",
@@ -249,7 +232,12 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
     positions = config.get("max_position_embeddings")
     if max_length is not None and positions and max_length > positions:
         raise UserError(f"--max-length {max_length} — the model takes at most {positions} tokens")
-    max_length = max_length or min(positions or 512, 512)
+    if max_length is None:
+        max_length = trained_length(model_dir, positions)
+        if max_length is None:
+            max_length = min(positions or 512, 512)
+            print(f"note: {model_dir} does not record the length it was trained at — texts are cut at {max_length} "
+                  f"tokens (its position count, at most 512); give --max-length to choose", file=sys.stderr, flush=True)
     table = None
     if data is not None:
         from shrinkwrap.bench.testset import label_ids, read_table
@@ -270,7 +258,8 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
             describe["data"] = {"path": Path(data).name, "rows": len(table.texts),
                                 "fingerprint": sha256_file(Path(data)) if Path(data).is_file() else None,
                                 "caution": data_caution(len(table.texts))}
-        measure = None if table is None else (lambda art: _table_metrics(art, table, labels))
+        source = None if (model_dir / MODEL_FILE).is_file() else model_dir  # a PyTorch folder: timed beside it
+        measure = None if table is None else (lambda art: _table_metrics(art, table, labels, source, threads, log))
         log(f"writing {out}")
         return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False,
                                                    "truncation": "head"},
@@ -327,7 +316,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
     return facts
 
 
-def _table_metrics(art, table, labels: list[str]) -> dict:
+def _table_metrics(art, table, labels: list[str], source: Optional[Path], threads: int, log) -> dict:
     from shrinkwrap.bench.testset import label_ids
     from shrinkwrap.ml.metrics import classification_metrics
 
@@ -335,4 +324,24 @@ def _table_metrics(art, table, labels: list[str]) -> dict:
     preds = art.outputs(table.texts).argmax(1)
     m = classification_metrics(y, preds, len(labels))
     return {"split": "all rows of --data", "texts": len(y), "accuracy": m["accuracy"], "macro_f1": m["macro_f1"],
-            "per_class": m["per_class"]}
+            "per_class": m["per_class"], **_timed_together(art, table, source, threads, log)}
+
+
+def _timed_together(art, table, source: Optional[Path], threads: int, log) -> dict:
+    """The artifact's graph, and the PyTorch model it came from (`source`), timed together in interleaved rounds
+    on the first --data text at the benchmark's default shape: latency_ms, source_latency_ms, speedup_p95."""
+    from shrinkwrap.bench.rounds import time_in_rounds
+    from shrinkwrap.recipe.schema import BenchConfig
+    from shrinkwrap.serve.batches import collate
+
+    cfg = BenchConfig(threads=threads)
+    examples, _ = art.encode(table.texts[:1])
+    batch = collate(examples * cfg.batch_size, int(art.manifest["tokenizer"].get("pad_id", 0)),
+                    length=min(cfg.sequence_length, art.max_length))
+    models = [(art.folder / MODEL_FILE, batch)] + ([(source, batch)] if source is not None else [])
+    log(f"timing the artifact{' and its source' if source else ''} together, {cfg.rounds} interleaved rounds")
+    timed = time_in_rounds(models, cfg, cfg.rounds)
+    out = {"latency_ms": timed[0]}
+    if source is not None:
+        out.update(source_latency_ms=timed[1], speedup_p95=timed[1]["p95"] / timed[0]["p95"])
+    return out

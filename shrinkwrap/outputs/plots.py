@@ -87,8 +87,12 @@ def calibration_plots(results: dict) -> list[tuple[str, str]]:
     from shrinkwrap.outputs.results import final_row, steps_of
 
     out = []
+    final = final_row(results)
     for s in steps_of(results):
         bins = s["metrics"].get("reliability")
+        cal = s.get("calibration") if s is final else None
+        if cal and cal.get("reliability"):  # the shipped step's scores as predict gives them: calibrated
+            bins = cal["reliability"]
         if not bins:
             continue
         fig = Figure(figsize=(5.5, 4.2))
@@ -105,11 +109,12 @@ def calibration_plots(results: dict) -> list[tuple[str, str]]:
         ax.set_xlabel("top-label confidence (softmax score)")
         ax.set_ylabel("accuracy (test split)")
         ax.legend(fontsize=8, loc="upper left")
-        ece = s["metrics"].get("ece")
-        out.append((f"Reliability diagram of {s['name']}: test texts binned by top score (count above each bar)"
-                    + (f"; ECE {ece:.4f}" if ece is not None else "") + ". Bars below the diagonal: over-confident.",
-                    png_data_uri(fig)))
-    final = final_row(results)
+        ece = cal["ece"] if cal else s["metrics"].get("ece")
+        scores = (f"its calibrated scores, softmax(logits / {cal['temperature']:.3f}), as predict gives them"
+                  if cal else "its scores")
+        out.append((f"Reliability diagram of {s['name']}: test texts binned by the top one of {scores} (count above "
+                    f"each bar)" + (f"; ECE {ece:.4f}" if ece is not None else "") + ". Bars below the diagonal: "
+                    f"over-confident.", png_data_uri(fig)))
     cal = final.get("calibration")
     if cal and cal.get("coverage"):
         pts = [c for c in cal["coverage"] if c["accuracy"] is not None]

@@ -1,25 +1,24 @@
-"""results.json -> report.md and a self-contained report.html (tables, plots, cautions where an average can mislead)."""
+"""results.json -> report.md and a self-contained report.html (tables, plots, cautions where an average can mislead).
+
+Both are rendered from one list of sections, so the page carries what the Markdown carries; the page adds the
+plots. The report opens with what shipped: the step, the artifact, the budget's verdict per limit and the
+cautions that concern the release; cautions about steps only measured stand under those steps.
+"""
 from __future__ import annotations
 
 import html
 from pathlib import Path
 
-from shrinkwrap.outputs.findings import cautions
+from shrinkwrap.outputs.findings import cautions_by_step, concern_release
 from shrinkwrap.outputs.html import inline, page, table
-from shrinkwrap.outputs.results import (
-    data_info,
-    data_notes,
-    final_row,
-    label_names,
-    load,
-    machine_of,
-    run_name,
-    steps_of,
-    teacher_row,
-)
+from shrinkwrap.outputs.results import (artifact_path, data_info, data_notes, final_row, label_names, load, machine_of,
+                                        recipe_dump, run_name, steps_of, teacher_row, verdict_of)
 from shrinkwrap.outputs.tasks import of_results
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import REPORT_FILE, REPORT_HTML_FILE, check_out_dir, write_text_atomic
+
+# A section: (title, parts); a part is ("p", text), ("list", [lines]) or ("table", header, rows, left columns).
+Section = tuple[str, list[tuple]]
 
 
 def md_table(header: list[str], rows: list[list[str]], left: int) -> str:
@@ -57,56 +56,110 @@ def int8_agreement_lines(results: dict) -> list[str]:
             for s in steps_of(results) if "agreement_with_fp32" in s]
 
 
-def calibration_lines(results: dict) -> list[str]:
-    """report.md: per-class precision / recall change of the shipped step, calibration per step, and the
-    shipped step's accuracy against coverage when abstaining below each threshold."""
+def _what_shipped(results: dict) -> Section:
+    final, path = final_row(results), artifact_path(results)
+    lat = final["latency_ms"]
+    if path:
+        shipped = (f"Step `{final['name']}` ships as `{path}`: accuracy {final['metrics']['accuracy']:.4f}, p95 "
+                   f"{lat['p95']:.2f} ms (timed with the teacher and every step in interleaved rounds"
+                   + (", unstable: the machine was busy" if lat.get("unstable") else "") + f"), "
+                   f"{final['size_bytes'] / 1e6:.1f} MB.")
+    else:
+        shipped = f"Nothing shipped: the chain ended at step `{final['name']}`, which makes no artifact."
+    parts: list[tuple] = [("p", shipped)]
+    verdict = verdict_of(results)
+    if verdict is not None:
+        parts += [("p", f"Budget ({verdict['budget']}), checked on `{verdict['step']}`: "
+                        + ("every limit met." if verdict["passed"] else "**a limit failed**.")),
+                  ("table", ["limit", "allowed", "measured", "verdict", "what"],
+                   [[c["name"], f"{'≤' if c['comparison'] == '<=' else '≥'} {c['allowed']:.4g}{c['unit']}",
+                     "—" if c["measured"] is None else f"{c['measured']:.4g}{c['unit']}",
+                     c["verdict"].lower(), c["detail"]] for c in verdict["checks"]], 1)]
+    elif any(v not in (None, False) for k, v in (recipe_dump(results).get("budget") or {}).items() if k != "regression"):
+        parts.append(("p", "Budget: not checked (the chain was stopped early)."))
+    else:
+        parts.append(("p", "No budget: the recipe sets no limit."))
+    release = [line for step, line in cautions_by_step(results) if concern_release(results, step)]
+    parts.append(("p", "Cautions that concern the release:" if release else
+                  f"Cautions that concern the release: none. {of_results(results).NO_CAUTION}"))
+    if release:
+        parts.append(("list", [f"{line}." for line in release]))
+    return "What shipped", parts
+
+
+def _calibration(results: dict) -> list[Section]:
+    """Per-class precision / recall change of the shipped step, calibration per step, and the shipped step's
+    accuracy against coverage when abstaining below each threshold."""
     final = final_row(results)
-    out = []
+    out: list[Section] = []
     if len(steps_of(results)) > 1:
         rows = [[c["class"], str(c["support"]), f"{c['precision']:.3f} ({c['precision_change_points']:+.1f})",
                  f"{c['recall']:.3f} ({c['recall_change_points']:+.1f})",
                  f"lost {c['lost']} of {c['support']}" if c["lost"] >= 0 else f"gained {-c['lost']} of {c['support']}"]
                 for c in of_results(results).class_changes(results, final)]
-        out += [f"## Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)", "",
-                md_table(["class", "support", "precision", "recall", "texts"], rows, 1), ""]
+        out.append((f"Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)",
+                    [("table", ["class", "support", "precision", "recall", "texts"], rows, 1)]))
     rows = [[s["name"], *(f"{s['metrics'][k]:.4f}" if k in s["metrics"] else "—" for k in ("ece", "brier", "nll"))]
             for s in steps_of(results)]
-    out += ["## Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", "", md_table(["step", "ECE", "Brier", "NLL"], rows, 1), ""]
+    parts: list[tuple] = [("table", ["step", "ECE", "Brier", "NLL"], rows, 1)]
     cal = final.get("calibration")
     if cal:
-        out += [f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: test ECE "
-                f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top score "
-                f"(`predict --min-confidence`):", "",
-                md_table(["threshold", "coverage", "accuracy"],
-                          [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
-                            "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0), ""]
+        parts += [("p", f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: "
+                        f"test ECE {cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top "
+                        f"score (`predict --min-confidence`):"),
+                  ("table", ["threshold", "coverage", "accuracy"],
+                   [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
+                     "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0)]
+    out.append(("Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", parts))
+    return out
+
+
+def _measured_only_cautions(results: dict) -> Section:
+    task = of_results(results)
+    by_step: dict[str, list[str]] = {}
+    for step, line in cautions_by_step(results):
+        if not concern_release(results, step):
+            by_step.setdefault(step, []).append(f"{line}.")
+    parts: list[tuple] = []
+    for step, lines in by_step.items():
+        parts += [("p", f"`{step}` (measured only, it does not ship):"), ("list", lines)]
+    if not parts:
+        parts.append(("p", "None."))
+    return "Cautions about steps only measured", parts + [("p", f"Rule for classes: {task.CAUTION_RULE}.")]
+
+
+def sections(results: dict) -> list[Section]:
+    header, rows, caption = of_results(results).step_rows(results)
+    agreement = int8_agreement_lines(results)
+    out: list[Section] = [
+        _what_shipped(results),
+        ("Steps", [("table", header, rows, 2), ("p", caption)]
+         + ([("list", [line[2:] for line in agreement])] if agreement else [])),
+        ("Per-class recall (test split)", [("table", *of_results(results).per_class_rows(results), 1)]),
+        *_calibration(results),
+        _measured_only_cautions(results),
+    ]
+    if data_notes(results):
+        out.append(("Data notes", [("list", list(data_notes(results)))]))
+    out.append(("Setup", [("list", setup_lines(results))]))
     return out
 
 
 def markdown_report(results: dict) -> str:
-    agreement = int8_agreement_lines(results)
-    lines = [
-        f"# shrinkwrap report — {run_name(results)}",
-        "",
-        step_table(results),
-        "",
-        *(agreement + [""] if agreement else []),
-        "## Per-class recall (test split)",
-        "",
-        per_class_table(results),
-        "",
-    ]
-    lines += calibration_lines(results)
-    found = [f"- {c}." for c in cautions(results)]
-    task = of_results(results)
-    lines += ["## Cautions", ""] + (found or [f"- {task.NO_CAUTION}"]) + [f"- Rule for classes: {task.CAUTION_RULE}.", ""]
-    if data_notes(results):
-        lines += ["## Data notes", ""] + [f"- {n}" for n in data_notes(results)] + [""]
-    lines += ["## Setup", "", *(f"- {line}" for line in setup_lines(results)), ""]
+    lines = [f"# shrinkwrap report — {run_name(results)}", ""]
+    for title, parts in sections(results):
+        lines += [f"## {title}", ""]
+        for part in parts:
+            if part[0] == "p":
+                lines += [part[1], ""]
+            elif part[0] == "list":
+                lines += [f"- {item}" for item in part[1]] + [""]
+            else:
+                lines += [md_table(*part[1:]), ""]
     return "\n".join(lines)
 
 
-# ---- report.html: the same tables plus plots, in one file with nothing outside it -----------------------------
+# ---- report.html: the same sections plus plots, in one file with nothing outside it ---------------------------
 
 
 NO_PLOTS = "No plots: matplotlib is not installed (pip install matplotlib, or the [train] extra)."
@@ -121,9 +174,16 @@ def _has_matplotlib() -> bool:
         return False
 
 
+def _html_part(part: tuple) -> str:
+    if part[0] == "p":
+        return f"<p>{inline(part[1])}</p>"
+    if part[0] == "list":
+        return "<ul>" + "".join(f"<li>{inline(item)}</li>" for item in part[1]) + "</ul>"
+    return table(*part[1:])
+
+
 def html_report(results: dict) -> str:
     title = f"shrinkwrap report — {run_name(results)}"
-    header, rows, caption = of_results(results).step_rows(results)
     if _has_matplotlib():
         from shrinkwrap.outputs.plots import plots
 
@@ -131,17 +191,11 @@ def html_report(results: dict) -> str:
                           f"</figcaption></figure>" for cap, uri in plots(results))
     else:  # the plain (serving) install: the tables alone, and how to get the plots
         figures = f"<p>{html.escape(NO_PLOTS)}</p>"
-    found = cautions(results) or [of_results(results).NO_CAUTION]
-    parts = [
-        f"<h1>{html.escape(title)}</h1>",
-        "<h2>Steps</h2>", table(header, rows, 2), f"<p class=caption>{inline(caption)}</p>",
-        "<h2>Plots</h2>", figures,
-        "<h2>Per-class recall (test split)</h2>", table(*of_results(results).per_class_rows(results), 1),
-        "<h2>Cautions</h2>", "<ul>" + "".join(f"<li>{inline(c)}</li>" for c in found) + "</ul>",
-    ]
-    if data_notes(results):
-        parts += ["<h2>Data notes</h2>", "<ul>" + "".join(f"<li>{inline(n)}</li>" for n in data_notes(results)) + "</ul>"]
-    parts += ["<h2>Setup</h2>", "<ul>" + "".join(f"<li>{html.escape(l)}</li>" for l in setup_lines(results)) + "</ul>"]
+    parts = [f"<h1>{html.escape(title)}</h1>"]
+    for name, section in sections(results):
+        parts += [f"<h2>{inline(name)}</h2>", *(_html_part(p) for p in section)]
+        if name == "Steps":
+            parts += ["<h2>Plots</h2>", figures]
     return page(title, parts, check_images=True)
 
 

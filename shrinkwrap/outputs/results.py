@@ -2,13 +2,17 @@
 row per step), and every other module reads and adds to it through the functions below, never by its keys.
 
     recipe, recipe_fingerprint, machine, data {path, label_names, sizes, fingerprint, notes, transfer_in_test,
-    augmented_in_test}, tokenizer_fingerprint, test_labels, steps [one row per step, the teacher first],
-    artifact {path, temperature, ece, ece_raw} (when built), cautions (once the run is finished)
+    augmented_in_test}, tokenizer_fingerprint, test_labels, validation_labels, steps [one row per step, the
+    teacher first],
+    artifact {path, temperature, ece, ece_raw} (when built), cautions (once the run is finished), budget_verdict
+    (the recipe budget's verdict, when it sets limits)
 
-A step's row: name, format, path, metrics {accuracy, macro_f1, per_class, ...}, latency_ms {p50, p95, ...},
-size_bytes, load_seconds, memory, seconds, tokenizer_fingerprint, info (what the step did: its step.json's),
-predictions, accuracy_drop, agreement_with_teacher, and against the teacher accuracy_drop_ci95, mcnemar,
-bootstrap; agreement_with_fp32 for an int8 step; calibration for the shipped step.
+A step's row: name, format, path, metrics {accuracy, macro_f1, per_class, ...}, latency_ms {p50, p95, ..., the
+teacher and every step timed together in interleaved rounds: round_p50, spread, p95_over_p50, unstable},
+latency_ms_alone (timed right after the step), size_bytes, load_seconds, memory, seconds, tokenizer_fingerprint,
+info (what the step did: its step.json's), predictions, accuracy_drop, agreement_with_teacher, and against the
+teacher accuracy_drop_ci95, mcnemar, bootstrap; agreement_with_fp32 for an int8 step; calibration and
+validation {metrics, predictions} for the shipped step.
 """
 from __future__ import annotations
 
@@ -16,7 +20,7 @@ from pathlib import Path
 from typing import Optional
 
 from shrinkwrap.serve.errors import UserError
-from shrinkwrap.serve.rundir import STUDENT, STUDENT_PRUNED, read_json
+from shrinkwrap.serve.rundir import STUDENT, STUDENT_INT8, STUDENT_ONNX_INT8_STATIC, STUDENT_PRUNED, read_json
 
 SPLITS = ("train", "validation", "test")
 
@@ -35,6 +39,7 @@ def header(recipe, machine: dict, data, data_fingerprint: str, tokenizer_fp: str
                  "fingerprint": data_fingerprint, "notes": data.notes},
         "tokenizer_fingerprint": tokenizer_fp,
         "test_labels": data.test.labels.tolist(),
+        "validation_labels": data.validation.labels.tolist(),
         "steps": [],
     }
 
@@ -48,7 +53,7 @@ def step_row(name: str, path: Path, record: dict, bench: dict, teacher: Optional
            "metrics": bench["metrics"], "latency_ms": bench["latency_ms"], "size_bytes": bench["size_bytes"],
            "load_seconds": bench["load_seconds"], "memory": bench.get("memory"), "seconds": record["seconds"],
            "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"],
-           "predictions": bench["predictions"]}
+           "source": record.get("after"), "predictions": bench["predictions"]}
     if "agreement_with_fp32" in record["info"]:  # an int8 step against the fp32 graph it came from
         row["agreement_with_fp32"] = record["info"]["agreement_with_fp32"]
     ref = teacher or row
@@ -67,6 +72,14 @@ def unmeasured_row(name: str, fmt: str, path: Path, record: dict, size_bytes: in
             "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"]}
 
 
+def set_latency(row: dict, latency: dict) -> None:
+    """A step's latency timed with the others in interleaved rounds becomes its `latency_ms`; the figure timed
+    right after the step, alone, stays as `latency_ms_alone`."""
+    if "latency_ms" in row and "latency_ms_alone" not in row:
+        row["latency_ms_alone"] = row["latency_ms"]
+    row["latency_ms"] = latency
+
+
 def add_row(results: dict, row: dict) -> None:
     results["steps"].append(row)
 
@@ -81,6 +94,11 @@ def set_calibration(results: dict, calibration: dict) -> None:
     final_row(results)["calibration"] = calibration
 
 
+def set_validation(results: dict, metrics: dict, predictions: list) -> None:
+    """The shipped step's quality on the validation split (what a search ranks candidates by)."""
+    final_row(results)["validation"] = {"metrics": metrics, "predictions": predictions}
+
+
 def set_artifact(results: dict, path: Path) -> None:
     """Where the run's artifact is, with the shipped step's calibration figures."""
     cal = final_row(results).get("calibration") or {}
@@ -89,6 +107,11 @@ def set_artifact(results: dict, path: Path) -> None:
 
 def set_cautions(results: dict, lines: list[str]) -> None:
     results["cautions"] = lines
+
+
+def set_verdict(results: dict, verdict: dict) -> None:
+    """The recipe budget's verdict on the shipped step (outputs.gate.Verdict.as_dict), as `run` gated it."""
+    results["budget_verdict"] = verdict
 
 
 # ---- reading -----------------------------------------------------------------------------------------------
@@ -162,6 +185,15 @@ def test_labels(results: dict) -> list[int]:
     return results["test_labels"]
 
 
+def validation_labels(results: dict) -> Optional[list[int]]:
+    return results.get("validation_labels")
+
+
+def validation_of(row: dict) -> Optional[dict]:
+    """A step's quality on the validation split, {metrics, predictions}, where it was measured (the shipped step)."""
+    return row.get("validation")
+
+
 def machine_of(results: dict) -> dict:
     return results["machine"]
 
@@ -170,8 +202,26 @@ def artifact_path(results: dict) -> Optional[str]:
     return (results.get("artifact") or {}).get("path")
 
 
+def verdict_of(results: dict) -> Optional[dict]:
+    return results.get("budget_verdict")
+
+
 def cautions_of(results: dict) -> list[str]:
     return results.get("cautions") or []
+
+
+def lineage(results: dict, row: Optional[dict] = None) -> list[str]:
+    """The names of `row` (default: the final row) and of every step it was made from, following each row's
+    `source`; rows from before sources were recorded: the chain's rule, every step but the measured-only int8
+    side branches."""
+    row = row or final_row(results)
+    if "source" not in row:
+        return [s["name"] for s in steps_of(results) if s["name"] not in (STUDENT_INT8, STUDENT_ONNX_INT8_STATIC)]
+    names = []
+    while row is not None:
+        names.append(row["name"])
+        row = step_named(results, row["source"]) if row.get("source") else None
+    return names
 
 
 def validation_accuracy(results: dict) -> float:

@@ -3,7 +3,7 @@
     NAME                                   the task's name
     BUDGET_KEYS                            the budget keys that judge its quality
     quality_checks(results, step, budget, where) -> [Check]   those limits on one step
-    cautions(results, budget) -> [str]     what its averages hide, one line each
+    cautions(results, budget) -> [(step, line)]   what its averages hide: the step each concerns, one line
     CAUTION_RULE, NO_CAUTION               the rule the cautions follow, and what is said when none applies
     per_class_cautions(results) -> [str]   the model card's bullets of what a class lost (none: [])
     step_rows(results) -> (header, rows, caption)             the table of every step

@@ -8,7 +8,7 @@ from typing import Optional
 from pydantic import Field, ValidationError, model_validator
 
 from shrinkwrap.recipe.base import RENAMED_KEYS, Section
-from shrinkwrap.recipe.yaml_io import explain, read_yaml_mapping
+from shrinkwrap.recipe.yaml_io import explain, key_lines, read_yaml_mapping
 from shrinkwrap.serve.errors import UserError
 
 
@@ -77,11 +77,11 @@ class BudgetConfig(Section):
 def load_budget(path: str | Path) -> BudgetConfig:
     """A budget file: YAML whose keys are those of a recipe's `budget:` section."""
     path = Path(path)
-    return validate_budget(read_yaml_mapping(path, "budget"), str(path))
+    return validate_budget(read_yaml_mapping(path, "budget"), str(path), key_lines(path))
 
 
-def validate_budget(raw: dict, where: str) -> BudgetConfig:
+def validate_budget(raw: dict, where: str, lines: Optional[dict[tuple, int]] = None) -> BudgetConfig:
     try:
         return BudgetConfig.model_validate(raw)
     except ValidationError as e:
-        raise UserError(explain(e.errors()[0], raw, where, BudgetConfig, RENAMED_KEYS)) from None
+        raise UserError(explain(e.errors()[0], raw, where, BudgetConfig, RENAMED_KEYS, lines)) from None

@@ -13,7 +13,8 @@ from pydantic import Field, ValidationError, field_validator, model_validator
 
 from shrinkwrap.recipe.base import RENAMED_KEYS, Section, no_repeats
 from shrinkwrap.recipe.budget import BudgetConfig
-from shrinkwrap.recipe.yaml_io import apply_overrides, error_loc, explain, key_path, parse_override, read_yaml_mapping
+from shrinkwrap.recipe.yaml_io import (apply_overrides, error_loc, explain, key_lines, key_path, parse_override,
+                                        read_yaml_mapping)
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.fingerprint import sha256_json
 
@@ -235,6 +236,10 @@ class BenchConfig(Section):
     repeats: int = Field(30, ge=3, description="timed runs, at least")
     timed_seconds: float = Field(1.0, ge=0, description="keep timing until this many seconds have passed")
     eval_batch_size: int = Field(32, ge=1, description="batch size of the accuracy pass over the test split")
+    rounds: int = Field(5, ge=2, description="interleaved rounds in which the teacher and every step are timed "
+                        "together after the chain (each round times every model in turn, so that the machine's "
+                        "drift hits them alike); these are the latency figures results.json, the report and the "
+                        "gate read")
 
 
 class SearchConfig(Section):
@@ -342,17 +347,18 @@ def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:
     path = Path(path)
     raw = apply_overrides(read_yaml_mapping(path, "recipe"), list(overrides))
     overridden = {".".join(parse_override(text)[0]): text for text in overrides}
-    return validate_recipe(raw, str(path), source=str(path.resolve()), overridden=overridden)
+    return validate_recipe(raw, str(path), source=str(path.resolve()), overridden=overridden, lines=key_lines(path))
 
 
 def validate_recipe(raw: dict, where: str = "recipe", source: Optional[str] = None,
-                    overridden: Optional[dict[str, str]] = None) -> Recipe:
+                    overridden: Optional[dict[str, str]] = None, lines: Optional[dict[tuple, int]] = None) -> Recipe:
     try:
         recipe = Recipe.model_validate(raw)
     except ValidationError as e:
         # One line, the first problem: fixing one usually changes the rest.
         err = e.errors()[0]
         text = (overridden or {}).get(key_path(error_loc(err)))
-        raise UserError(explain(err, raw, f"{where} (--set {text})" if text else where, Recipe, RENAMED_KEYS)) from None
+        raise UserError(explain(err, raw, f"{where} (--set {text})" if text else where, Recipe, RENAMED_KEYS,
+                                None if text else lines)) from None
     recipe.source = source
     return recipe

@@ -2,9 +2,10 @@
 key, the value and what is allowed. Knows no keys: recipe.py (the recipe and budget schemas) calls it."""
 from __future__ import annotations
 
+import difflib
 import json
 from pathlib import Path
-from typing import Any
+from typing import Any, Optional
 
 import yaml
 
@@ -38,33 +39,38 @@ def error_loc(err: dict) -> tuple:
     return tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
 
 
-def explain(err: dict, raw: dict, where: str, root: Any, renamed: dict[str, str]) -> str:
-    """A pydantic error as one printable line: the place, the value and what is allowed (`root`: the model
-    validated; `renamed`: old key path -> new, for a key that was renamed since it shipped)."""
-    return printable(_explain_raw(err, raw, where, root, renamed))
+def explain(err: dict, raw: dict, where: str, root: Any, renamed: dict[str, str],
+            lines: Optional[dict[tuple, int]] = None) -> str:
+    """A pydantic error as one printable line: the place (with its line in the file, from `lines`: key path ->
+    line number), the value and what is allowed (`root`: the model validated; `renamed`: old key path -> new,
+    for a key that was renamed since it shipped)."""
+    return printable(_explain_raw(err, raw, where, root, renamed, lines or {}))
 
 
-def _explain_raw(err: dict, raw: dict, where: str, root: Any, renamed: dict[str, str]) -> str:
+def _explain_raw(err: dict, raw: dict, where: str, root: Any, renamed: dict[str, str], lines: dict[tuple, int]) -> str:
     loc = error_loc(err)
     place = key_path(loc) or "(top level)"
     kind = err["type"]
     msg = err["msg"].removeprefix("Value error, ")
+    line = next((f" (line {lines[loc[:n]]})" for n in range(len(loc), 0, -1) if loc[:n] in lines), "")
     if kind == "extra_forbidden":
         parent = key_path(loc[:-1])
         if place in renamed:
-            return f"{where}: {place} is now {renamed[place]} — rename the key"
+            return f"{where}: {place} is now {renamed[place]} — rename the key{line}"
         model: Any = root
         for part in loc[:-1]:
             model = model.model_fields[part].annotation if isinstance(part, str) else model
-        allowed = (", ".join(k for k, f in model.model_fields.items() if not f.exclude)
-                   if hasattr(model, "model_fields") else "")
-        return f"{where}: unknown key {place!s}" + (f" — allowed keys in {parent or 'the top level'}: {allowed}" if allowed else "")
+        keys = [k for k, f in model.model_fields.items() if not f.exclude] if hasattr(model, "model_fields") else []
+        near = difflib.get_close_matches(str(loc[-1]), keys, n=1)
+        guess = f" — did you mean {key_path((*loc[:-1], near[0]))}?" if near else ""
+        return (f"{where}: unknown key {place!s}{line}{guess}"
+                + (f" — allowed keys in {parent or 'the top level'}: {', '.join(keys)}" if keys else ""))
     if kind == "missing":
-        return f"{where}: {place} is missing — it is required"
+        return f"{where}: {place}{line} is missing — it is required"
     value = _dig(raw, loc)
     if not loc or isinstance(value, dict):  # a rule across several keys: its message names them
-        return f"{where}: {place + ' — ' if loc else ''}{msg}"
-    return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'} — {msg}"
+        return f"{where}: {place + line + ' — ' if loc else ''}{msg}"
+    return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'}{line} — {msg}"
 
 
 def parse_override(text: str) -> tuple[list[str], Any]:
@@ -90,6 +96,30 @@ def apply_overrides(raw: dict, overrides: list[str]) -> dict:
             node = node.setdefault(part, {})
         node[path[-1]] = value
     return raw
+
+
+def key_lines(path: Path) -> dict[tuple, int]:
+    """Key path (as a pydantic error locates it) -> the line it stands on in the YAML file, for errors that
+    point there; empty for a file that cannot be read as YAML (read_yaml_mapping says why)."""
+    try:
+        node = yaml.compose(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, yaml.YAMLError):
+        return {}
+    out: dict[tuple, int] = {}
+
+    def walk(n, prefix: tuple) -> None:
+        if isinstance(n, yaml.MappingNode):
+            for key, value in n.value:
+                here = (*prefix, key.value)
+                out[here] = key.start_mark.line + 1
+                walk(value, here)
+        elif isinstance(n, yaml.SequenceNode):
+            for i, item in enumerate(n.value):
+                out[(*prefix, i)] = item.start_mark.line + 1
+                walk(item, (*prefix, i))
+
+    walk(node, ())
+    return out
 
 
 def read_yaml_mapping(path: Path, kind: str) -> dict:

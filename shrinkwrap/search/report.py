@@ -8,6 +8,7 @@ from pathlib import Path
 
 from shrinkwrap.outputs.html import page, table
 from shrinkwrap.outputs.plots import png_data_uri
+from shrinkwrap.search.ranking import TIE_RULE
 from shrinkwrap.serve.rundir import REPORT_HTML_FILE, write_text_atomic
 
 
@@ -63,22 +64,24 @@ def frontier_plot(summary: dict, budget, teacher: dict) -> str:
 
 
 def write_search_report(summary: dict, budget, teacher: dict, out: Path, candidates, teacher_accuracy=None) -> Path:
-    head = ["#", "settings", "trained", "meets budget", "accuracy", "drop (points)", "p50 ms", "p95 ms",
-            "× teacher", "MB", "frontier", "reason"]
+    head = ["#", "settings", "trained", "meets budget", "validation accuracy", "tied with the winner",
+            "accuracy (test)", "drop (points)", "p50 ms", "p95 ms", "× teacher", "MB", "frontier", "reason"]
     body = []
     for i, r in enumerate(summary["candidates"]):
         lat = r["latency_ms"] or {}
         body.append([str(i) + (" ★" if i == summary["winner"] else ""),
                      ", ".join(f"{k}={json.dumps(v)}" for k, v in r["settings"].items()),
-                     "yes" if r["trained"] else "no", "yes" if r["meets_budget"] else "no", _fmt(r["accuracy"]),
+                     "yes" if r["trained"] else "no", "yes" if r["meets_budget"] else "no",
+                     _fmt(r.get("validation_accuracy")), "yes" if r.get("tied_with_winner") else "", _fmt(r["accuracy"]),
                      _fmt(r["accuracy_drop"], ".2f"), _fmt(lat.get("p50"), ".2f"), _fmt(lat.get("p95"), ".2f"),
                      _fmt(r["speedup"], ".2f"), _fmt(r["size_bytes"] and r["size_bytes"] / 1e6, ".2f"),
                      "yes" if i in summary["frontier"] else "", r["reason"] or ""])
     plot = frontier_plot({**summary, "teacher_accuracy": teacher_accuracy}, budget, teacher)
     limits = {k: v for k, v in budget.model_dump().items() if v not in (None, False) and k != "regression"}
     winner = summary["winner"]
-    verdict = (f"Winner: candidate {winner}; its artifact is in artifact/." if winner is not None
-               else "No candidate meets every limit.")
+    verdict = (f"Winner: candidate {winner}, the fastest of the candidates meeting the budget that are tied with "
+               f"the most accurate of them on the validation split ({TIE_RULE}); "
+               f"its artifact is in artifact/." if winner is not None else "No candidate meets every limit.")
     parts = ["<h1>shrinkwrap search</h1>", f"<p>{html.escape(verdict)} Budget: "
              f"{html.escape(', '.join(f'{k} = {v}' for k, v in limits.items()) or 'none')}. Teacher p95 "
              f"{_fmt(teacher.get('p95') if teacher else None, '.2f')} ms in the same rounds.</p>",

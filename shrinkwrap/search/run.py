@@ -23,44 +23,40 @@ sent to the others.
 """
 from __future__ import annotations
 
-import os
 import shutil
 import sys
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Optional
 
 from shrinkwrap.chain.pipeline import run_recipe
 from shrinkwrap.ml import distributed
 from shrinkwrap.outputs.checks import FAIL, SKIP, Check
-from shrinkwrap.outputs.gate import evaluate, speed_size_checks
-from shrinkwrap.outputs.results import final_row, recipe_dump, teacher_row
+from shrinkwrap.outputs.gate import MAX_RETIMES, TIMED_LIMITS, evaluate, speed_size_checks
+from shrinkwrap.outputs.results import final_row, recipe_dump, teacher_row, validation_labels, validation_of
+from shrinkwrap.search.folders import CACHE, link_copy, share_cache
 from shrinkwrap.search.halving import FOLDER as HALVING
 from shrinkwrap.search.halving import halving
-from shrinkwrap.search.ranking import miss, pareto_frontier, pick_winner, relative_miss
+from shrinkwrap.search.ranking import miss, pareto_frontier, pick_winner, relative_miss, tied
 from shrinkwrap.search.space import Candidate, Space
 from shrinkwrap.serve.errors import EXIT_BUDGET, EXIT_OK, StepFailed
-from shrinkwrap.serve.rundir import (
-    ARTIFACT_DIR,
-    RESULTS_FILE,
-    STEP_FILE,
-    STUDENT,
-    TEACHER,
-    read_json_or_none,
-    run_lock,
-    scratch,
-    write_json_atomic,
-)
+from shrinkwrap.serve.rundir import (ARTIFACT_DIR, RESULTS_FILE, STEP_FILE, STUDENT, TEACHER, read_json_or_none,
+                                     run_lock, scratch, write_json_atomic)
 
 SEARCH_FILE = "search.json"
-TEACHER_RUN, CANDIDATES, UNTRAINED, CACHE = "teacher-run", "candidates", "untrained", "cache"
+TEACHER_RUN, CANDIDATES, UNTRAINED = "teacher-run", "candidates", "untrained"
 # Which heads and neurons an untrained candidate loses does not change its shapes: a few texts decide them.
 SCREEN_IMPORTANCE_TEXTS = 8
 
 
 def _row(c: Candidate) -> dict:
     return {"settings": c.settings, "trained": False, "meets_budget": False, "accuracy": None,
-            "accuracy_drop": None, "latency_ms": None, "speedup": None, "size_bytes": None, "reason": None,
-            "cautions": None}
+            "accuracy_drop": None, "validation_accuracy": None, "tied_with_winner": False, "latency_ms": None,
+            "speedup": None, "size_bytes": None, "reason": None, "cautions": None}
+
+
+def _validation_accuracy(row: dict) -> Optional[float]:
+    validation = validation_of(row)
+    return validation["metrics"]["accuracy"] if validation else None
 
 
 def _lat(row: dict) -> dict:
@@ -101,7 +97,7 @@ class Search:
     def teacher(self) -> None:
         run = self.out / TEACHER_RUN
         if distributed.is_main():
-            _share_cache(run, self.out / CACHE)
+            share_cache(run, self.out / CACHE)
         distributed.barrier()
         self.log("teacher: fine-tuned once for every candidate (reused when finished)")
         self.teacher_results = run_recipe(self.recipe, run, quiet=True, until=TEACHER)
@@ -115,44 +111,60 @@ class Search:
         return self.train(list(range(len(self.rows))), untrained, UNTRAINED, measure=False)
 
     def screen(self, runs: dict[int, dict]) -> list[int]:
-        """The candidates that can meet the latency and size limits untrained, cheapest first."""
-        done = sorted(runs)
+        """The candidates that can meet the latency and size limits untrained, cheapest first. A candidate is
+        refused only when it misses a limit by more than its timing's own spread across rounds; one within it is
+        timed again with the teacher first, and trained if it is still within it."""
+        folder = {i: Path(final_row(runs[i])["path"]) for i in runs}
+        size = {i: final_row(runs[i])["size_bytes"] for i in runs}
         b = self.recipe.bench
-        self.log(f"timing the {len(done)} untrained candidates with the teacher, {self.recipe.search.rounds} "
+        self.log(f"timing the {len(runs)} untrained candidates with the teacher, {self.recipe.search.rounds} "
                  f"interleaved rounds (batch {b.batch_size} × {b.sequence_length} tokens, {b.threads} threads)")
-        timed = self._time_with_teacher([Path(final_row(runs[i])["path"]) for i in done])
+        latency = self._with_teacher(sorted(runs), [folder[i] for i in sorted(runs)])
+        close = [i for i in sorted(runs) if self._misses(i, *latency[i], size[i]) == "close"]
+        if close:
+            self.log(f"timing again, with the teacher, the {len(close)} candidate(s) that miss a latency limit by "
+                     f"less than their timing's spread")
+            latency.update(self._with_teacher(close, [folder[i] for i in close]))
         survivors = []
-        for i, lat in zip(done, timed):
-            c, row, size = self.space.candidates[i], self.rows[i], final_row(runs[i])["size_bytes"]
-            checks = self._limits(row, lat, size)
-            failed = [k for k in checks if k.verdict == FAIL]
-            self.checks[i] = checks
-            line = (f"candidate {i} {c.label()}: untrained p95 {lat['p95']:.2f} ms, "
-                    f"{row['speedup']:.2f}× the teacher, {size / 1e6:.2f} MB")
-            if failed:
-                row["reason"] = "not trained — " + "; ".join(miss(k) for k in failed)
+        for i in sorted(runs):
+            verdict = self._misses(i, *latency[i], size[i])
+            row, lat = self.rows[i], latency[i][0]
+            line = (f"candidate {i} {self.space.candidates[i].label()}: untrained p95 {lat['p95']:.2f} ms, "
+                    f"{row['speedup']:.2f}× the teacher, {size[i] / 1e6:.2f} MB")
+            if verdict == "fails":
+                row["reason"] = "not trained — " + "; ".join(miss(k) for k in self.checks[i] if k.verdict == FAIL)
                 self.log(f"{line} — {row['reason']}")
             else:
                 survivors.append(i)
-                self.log(f"{line} — to train")
+                self.log(f"{line} — to train" + (" (within its timing's spread of a latency limit)"
+                                                 if verdict == "close" else ""))
         return sorted(survivors, key=lambda i: self.rows[i]["latency_ms"]["p95"])
 
-    def _time_with_teacher(self, folders: list[Path]) -> list[dict]:
-        """Each folder's model timed with the teacher in interleaved rounds, on the batch each was benchmarked
-        on; the teacher's figures are kept in self.teacher_latency."""
-        from shrinkwrap.bench.rounds import time_in_rounds
-        from shrinkwrap.bench.timing import read_timing_batch
+    def _misses(self, i: int, lat: dict, teacher: dict, size: int) -> str:
+        """"meets", "close" (every limit it misses is a latency limit missed by less than the spread of its own
+        timing and the teacher's across rounds: no evidence) or "fails"; the row and self.checks get the figures."""
+        checks = self._limits(self.rows[i], lat, size, teacher)
+        self.checks[i] = checks
+        failed = [k for k in checks if k.verdict == FAIL]
+        if not failed:
+            return "meets"
+        slack = lat.get("spread", 0.0) + teacher.get("spread", 0.0)
+        return "close" if all(k.name in TIMED_LIMITS and relative_miss(k) <= slack for k in failed) else "fails"
 
-        models = [(f, read_timing_batch(f)) for f in [self.teacher_dir, *folders]]
-        timed = time_in_rounds(models, self.recipe.bench, self.recipe.search.rounds)
+    def _with_teacher(self, candidates: list[int], folders: list[Path]) -> dict[int, tuple[dict, dict]]:
+        """candidate -> (its latency, the teacher's): each folder's model timed with the teacher in interleaved
+        rounds, on the batch each was benchmarked on; the teacher's last figures are kept (teacher_latency)."""
+        from shrinkwrap.bench.rounds import time_folders
+
+        timed = time_folders([self.teacher_dir, *folders], self.recipe.bench, self.recipe.search.rounds)
         self.teacher_latency = timed[0]
-        return timed[1:]
+        return {i: (lat, timed[0]) for i, lat in zip(candidates, timed[1:])}
 
-    def _limits(self, row: dict, lat: dict, size: int) -> list[Check]:
+    def _limits(self, row: dict, lat: dict, size: int, teacher: dict) -> list[Check]:
         """The latency and size limits of a candidate timed with the teacher (its row gets the figures)."""
         b = self.recipe.bench
-        row.update(latency_ms=_lat(lat), speedup=self.teacher_latency["p95"] / lat["p95"], size_bytes=size)
-        return speed_size_checks(self.budget, lat["p95"], size, self.teacher_latency["p95"],
+        row.update(latency_ms=_lat(lat), speedup=teacher["p95"] / lat["p95"], size_bytes=size)
+        return speed_size_checks(self.budget, lat["p95"], size, teacher["p95"],
                                  teacher_row(self.teacher_results)["size_bytes"], lat["p95_over_reference"],
                                  f"batch {b.batch_size} × {b.sequence_length} tokens")
 
@@ -186,10 +198,10 @@ class Search:
     def _prepare_folder(self, folder: Path, recipe, where: str, suffix: str) -> bool:
         """The teacher (hard links) and the shared cache; a finished student of the same settings, if any."""
         folder.mkdir(parents=True, exist_ok=True)
-        _share_cache(folder, self.out / CACHE)
+        share_cache(folder, self.out / CACHE)
         teacher_fp = read_json_or_none(self.teacher_dir / STEP_FILE)["fingerprint"]
         if (read_json_or_none(folder / TEACHER / STEP_FILE) or {}).get("fingerprint") != teacher_fp:
-            _link_copy(self.teacher_dir, folder / TEACHER)
+            link_copy(self.teacher_dir, folder / TEACHER)
         if (folder / STUDENT / STEP_FILE).exists():
             return False
         student = recipe.model_dump(mode="json")["student"]
@@ -197,7 +209,7 @@ class Search:
             results = read_json_or_none(other / RESULTS_FILE)
             if (other != folder and results and recipe_dump(results).get("student") == student
                     and (other / STUDENT / STEP_FILE).exists()):
-                _link_copy(other / STUDENT, folder / STUDENT)  # the runner checks its fingerprint
+                link_copy(other / STUDENT, folder / STUDENT)  # the runner checks its fingerprint
                 return True
         return False
 
@@ -211,7 +223,8 @@ class Search:
         for i, (results, reason) in dropped.items():
             final = final_row(results)
             self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
-                                accuracy_drop=final["accuracy_drop"], reason=reason)
+                                accuracy_drop=final["accuracy_drop"], reason=reason,
+                                validation_accuracy=_validation_accuracy(final))
             self.log(f"candidate {i} {self.space.candidates[i].label()}: {reason}")
         return alive
 
@@ -221,7 +234,8 @@ class Search:
         final = final_row(results)
         # what the candidate's average accuracy hides (a class much worse, a drop the test split cannot settle)
         self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
-                            accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget))
+                            accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget),
+                            validation_accuracy=_validation_accuracy(final))
         self.results[i] = results
 
     # ---- (4) timing again, together --------------------------------------------------------------------
@@ -231,12 +245,22 @@ class Search:
             return
         self.log(f"timing the {len(trained)} trained candidates with the teacher again, "
                  f"{self.recipe.search.rounds} interleaved rounds")
-        timed = self._time_with_teacher([Path(final_row(self.results[i])["path"]) for i in trained])
+        folders = [Path(final_row(self.results[i])["path"]) for i in trained]
+        latency = self._with_teacher(trained, folders)
+        for _ in range(MAX_RETIMES):  # as the gate: never judged on a timing the machine made unstable
+            if not any(lat["unstable"] or teacher["unstable"] for lat, teacher in latency.values()):
+                break
+            self.log("the machine was busy (unstable timings): timing them all together again")
+            latency = self._with_teacher(trained, folders)
         rest = self.budget.model_copy(update={k: None for k in self.budget.speed_size_limits()})
-        for i, lat in zip(trained, timed):
+        for i, (lat, teacher) in latency.items():
             row, results = self.rows[i], self.results[i]
             size = final_row(results)["size_bytes"]
-            checks = self._limits(row, lat, size)
+            checks = self._limits(row, lat, size, teacher)
+            if lat["unstable"] or teacher["unstable"]:
+                why = lat.get("unstable_why") or f"the teacher: {teacher.get('unstable_why')}"
+                checks = [Check(k.name, f"the measurement could not be trusted — {why}", k.allowed, k.measured,
+                                k.comparison, k.unit, FAIL) if k.name in TIMED_LIMITS else k for k in checks]
             if rest.limits_set():
                 checks += [k for k in evaluate(results, rest).checks if k.verdict != SKIP]
             self.checks[i] = checks
@@ -248,11 +272,24 @@ class Search:
                      f"(drop {row['accuracy_drop']:.2f} points), p95 {lat['p95']:.2f} ms, {row['speedup']:.2f}× the "
                      f"teacher, {size / 1e6:.2f} MB — {row['reason']}")
 
+    def _validation(self) -> tuple[dict[int, list], Optional[list]]:
+        """Each trained candidate's predicted class per validation text, and the true classes."""
+        val = {i: validation_of(final_row(r))["predictions"] for i, r in self.results.items()
+               if validation_of(final_row(r))}
+        labels = next((validation_labels(r) for r in self.results.values()), None)
+        return val, labels
+
     # ---- (5) the winner ----------------------------------------------------------------------------------
     def finish(self) -> dict:
         from shrinkwrap.search.report import write_search_report
 
-        summary = {"candidates": self.rows, "frontier": pareto_frontier(self.rows), "winner": pick_winner(self.rows)}
+        val, labels = self._validation()
+        drop = self.budget.accuracy_drop_points
+        group = set(tied(self.rows, val, labels, drop))
+        for i, row in enumerate(self.rows):
+            row["tied_with_winner"] = i in group
+        summary = {"candidates": self.rows, "frontier": pareto_frontier(self.rows),
+                   "winner": pick_winner(self.rows, val, labels, drop)}
         w = summary["winner"]
         if w is not None:
             src = self.out / CANDIDATES / self.space.candidates[w].folder_name / ARTIFACT_DIR
@@ -274,29 +311,6 @@ class Search:
         _, i = min(scored)
         misses = "; ".join(miss(k) for k in self.checks[i] if k.verdict == FAIL)
         return f"closest: candidate {i} {self.space.candidates[i].label()} — {misses}"
-
-
-def _share_cache(run_dir: Path, shared: Path) -> None:
-    """run_dir/cache is the search's one cache folder (teacher outputs, transfer texts): computed once."""
-    run_dir.mkdir(parents=True, exist_ok=True)
-    shared.mkdir(parents=True, exist_ok=True)
-    link = run_dir / CACHE
-    if link.is_symlink() or not link.exists():
-        if link.is_symlink():
-            link.unlink()
-        link.symlink_to(os.path.relpath(shared, run_dir), target_is_directory=True)
-
-
-def _link_copy(src: Path, dst: Path) -> None:
-    """A finished step's folder copied by hard links (no bytes copied; files are replaced, never edited)."""
-    def link(a, b):
-        try:
-            os.link(a, b)
-        except OSError:
-            shutil.copy2(a, b)
-
-    with scratch(dst) as tmp:
-        shutil.copytree(src, tmp, dirs_exist_ok=True, copy_function=link)
 
 
 def run_search(space: Space, out: Path, quiet: bool = False) -> tuple[dict, int, str]:
@@ -328,7 +342,11 @@ def run_search(space: Space, out: Path, quiet: bool = False) -> tuple[dict, int,
     if w is None:
         return summary, EXIT_BUDGET, f"no candidate meets the budget — {s.closest()}"
     row = s.rows[w]
+    val = row["validation_accuracy"]
+    others = sum(r["tied_with_winner"] for r in s.rows) - 1
     return summary, EXIT_OK, (f"winner: candidate {w} {space.candidates[w].label()} — accuracy {row['accuracy']:.4f} "
-                              f"(drop {row['accuracy_drop']:.2f} points), p95 {row['latency_ms']['p95']:.2f} ms, "
-                              f"{row['speedup']:.2f}× the teacher, {row['size_bytes'] / 1e6:.2f} MB; artifact: "
-                              f"{s.out / ARTIFACT_DIR}")
+                              f"(drop {row['accuracy_drop']:.2f} points)"
+                              + (f", validation {val:.4f}" if val is not None else "")
+                              + (f", the fastest of {others + 1} tied on validation" if others else "")
+                              + f", p95 {row['latency_ms']['p95']:.2f} ms, {row['speedup']:.2f}× the teacher, "
+                              f"{row['size_bytes'] / 1e6:.2f} MB; artifact: {s.out / ARTIFACT_DIR}")

@@ -34,17 +34,18 @@ def file_kind(path: Path) -> str:
 
 
 def _records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: str,
-             copy: Optional[BinaryIO] = None) -> Iterator[tuple[str, str, Optional[str]]]:
-    """(place, text, text pair or None) of every input in the stream; `place` names it in errors."""
+             copy: Optional[BinaryIO] = None, id_col: Optional[str] = None) -> Iterator[tuple]:
+    """(place, text, text pair or None, id or None) of every input in the stream; `place` names it in errors;
+    the id is the value of `id_col`, passed through to the output."""
     if kind in ("csv", "tsv"):
-        yield from _table_records(stream, kind, where, text_col, pair_col)
+        yield from _table_records(stream, kind, where, text_col, pair_col, id_col)
         return
     raw = (line.encode("utf-8") if isinstance(line, str) else line for line in stream)
     for number, line in utf8_lines(raw, where, copy):
         if not line.strip():
             raise UserError(f"{where}: line {number} is empty — one text per line, none empty")
         if kind == "lines":
-            yield f"line {number}", line.rstrip("\r\n"), None
+            yield f"line {number}", line.rstrip("\r\n"), None, None
             continue
         obj = json_line(line, number, where) if line.lstrip().startswith("{") else None
         if not isinstance(obj, dict):
@@ -56,10 +57,12 @@ def _records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: s
                 raise UserError(f"{where}: line {number}: {key!r} is {type(value).__name__} — expected a string")
         if text is None:
             raise UserError(f"{where}: line {number} has no {text_col!r} — keys: {', '.join(map(repr, obj)) or 'none'}")
-        yield f"line {number}", text, pair
+        if id_col is not None and id_col not in obj:
+            raise UserError(f"{where}: line {number} has no {id_col!r} (--id) — keys: {', '.join(map(repr, obj))}")
+        yield f"line {number}", text, pair, (obj[id_col] if id_col is not None else None)
 
 
-def _table_records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: str):
+def _table_records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_col: str, id_col: Optional[str]):
     import csv
     import io
 
@@ -72,13 +75,16 @@ def _table_records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_
         if text_col not in header:
             raise UserError(f"{where}: --text {text_col!r} is not a column — columns: {', '.join(header)}")
         t, p = header.index(text_col), header.index(pair_col) if pair_col in header else None
+        if id_col is not None and id_col not in header:
+            raise UserError(f"{where}: --id {id_col!r} is not a column — columns: {', '.join(header)}")
+        k = header.index(id_col) if id_col is not None else None
         for row in reader:
             if not row:
                 continue
             place = f"row {reader.line_num - 1} (line {reader.line_num})"
             if len(row) != len(header):
                 raise UserError(f"{where}: {place} has {len(row)} fields where the header has {len(header)}")
-            yield place, row[t], (row[p] if p is not None else None)
+            yield place, row[t], (row[p] if p is not None else None), (row[k] if k is not None else None)
     except UnicodeDecodeError as e:
         raise UserError(f"{where}: not UTF-8 text — after row {reader.line_num - 1} (byte {e.start} of a "
                         f"read block); save the file as UTF-8") from None
@@ -86,10 +92,10 @@ def _table_records(stream: BinaryIO, kind: str, where: str, text_col: str, pair_
         raise UserError(f"{where}: cannot parse line {reader.line_num} — {e}") from None
 
 
-def _checked(records, where: str, pairs: bool) -> Iterator[tuple[str, Optional[str]]]:
-    """The records' (text, pair), each checked: a text and, for a pair model, a second text; none for a
+def _checked(records, where: str, pairs: bool) -> Iterator[tuple]:
+    """The records' (text, pair, id), each checked: a text and, for a pair model, a second text; none for a
     single-text model. One line naming the place otherwise."""
-    for place, text, pair in records:
+    for place, text, pair, ident in records:
         if not text.strip():
             raise UserError(f"{where + ': ' if where else ''}{place} is empty — every text needs at least one character")
         if pairs and (pair is None or not pair.strip()):
@@ -97,10 +103,10 @@ def _checked(records, where: str, pairs: bool) -> Iterator[tuple[str, Optional[s
                             f"of texts — {PAIR_HELP}")
         if not pairs and pair is not None and pair.strip():
             raise UserError(f"{where}: {place} gives a text_pair, but this model classifies single texts")
-        yield text, (pair if pairs else None)
+        yield text, (pair if pairs else None), ident
 
 
-def _chunked(items: Iterator[tuple[str, Optional[str]]]) -> Iterator[list[tuple[str, Optional[str]]]]:
+def _chunked(items: Iterator[tuple]) -> Iterator[list[tuple]]:
     chunk: list = []
     for item in items:
         chunk.append(item)
@@ -111,18 +117,27 @@ def _chunked(items: Iterator[tuple[str, Optional[str]]]) -> Iterator[list[tuple[
         yield chunk
 
 
+# Fields predict prints for a text: an id column passed through with --id may not take one of their names.
+OUTPUT_FIELDS = ("text", "text_pair", "label", "scores", "truncated")
+
+
 def read_inputs(texts: list[str], file: Optional[str], stdin, pairs: bool = False, text_col: str = "text",
-                pair_col: str = "text_pair") -> Iterator[list[tuple[str, Optional[str]]]]:
+                pair_col: str = "text_pair", id_col: Optional[str] = None) -> Iterator[list[tuple]]:
     """Checks every input first (so that a bad line never leaves half an output), then returns an iterator
-    over (text, pair) in chunks of CHUNK (pair None for a single-text model). A file is read twice; stdin
-    is copied to a temporary file as it is checked. Neither is held in memory whole. Stdin holds one text
-    per line, or JSON lines for a pair model."""
+    over (text, pair, id) in chunks of CHUNK (pair None for a single-text model; id the value of `id_col`, else
+    None). A file is read twice; stdin is copied to a temporary file as it is checked. Neither is held in memory
+    whole. Stdin holds one text per line, or JSON lines for a pair model."""
     if texts and file:
         raise UserError("give texts as arguments or with --file, not both")
+    if id_col is not None and (not file or file_kind(Path(file)) == "lines"):
+        raise UserError(f"--id {id_col}: ids come from a column of --file, a .csv/.tsv table or JSON lines (.jsonl)")
+    if id_col in OUTPUT_FIELDS:
+        raise UserError(f"--id {id_col}: a field predict prints has that name ({', '.join(OUTPUT_FIELDS)}) — "
+                        f"rename the column")
     if texts:
         if pairs:
             raise UserError(f"TEXT argument 1 is a single text, but this model classifies pairs of texts — {PAIR_HELP}")
-        records = [(f"TEXT argument {i + 1}", t, None) for i, t in enumerate(texts)]
+        records = [(f"TEXT argument {i + 1}", t, None, None) for i, t in enumerate(texts)]
         checked = list(_checked(iter(records), "", False))
         return iter([checked[i:i + CHUNK] for i in range(0, len(checked), CHUNK)])
     if file:
@@ -131,7 +146,7 @@ def read_inputs(texts: list[str], file: Optional[str], stdin, pairs: bool = Fals
 
         def passes():
             with open(path, "rb") as f:
-                yield from _checked(_records(f, kind, where, text_col, pair_col), where, pairs)
+                yield from _checked(_records(f, kind, where, text_col, pair_col, id_col=id_col), where, pairs)
         try:
             count = sum(1 for _ in passes())
         except FileNotFoundError:
@@ -164,7 +179,8 @@ def read_inputs(texts: list[str], file: Optional[str], stdin, pairs: bool = Fals
 
 def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
                 stdin: Optional[TextIO] = None, stdout: Optional[TextIO] = None, trusted_key: Optional[Path] = None,
-                min_confidence: float = 0.0, text_col: str = "text", pair_col: Optional[str] = None) -> int:
+                min_confidence: float = 0.0, text_col: str = "text", pair_col: Optional[str] = None,
+                id_col: Optional[str] = None) -> int:
     stdin, stdout = stdin or sys.stdin, stdout or sys.stdout  # looked up per call: a caller may have swapped them
     if trusted_key is not None:  # the signature vouches for the manifest, whose hashes vouch for the rest
         from shrinkwrap.serve.signing import check_signature
@@ -174,12 +190,13 @@ def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size
     pairs = bool((manifest.get("tokenizer") or {}).get("text_pair"))
     if pair_col is not None and not pairs:
         raise UserError(f"--text-pair {pair_col}: this model classifies single texts, not pairs")
-    chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair")
+    chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair", id_col)
     model = load(artifact, threads, verified=manifest)
     for chunk in chunks:
-        batch_texts = [t for t, _ in chunk]
-        batch_pairs = [p for _, p in chunk] if pairs else None
-        for row in model.predict(batch_texts, batch_size, min_confidence, pairs=batch_pairs):
+        batch_texts = [t for t, _, _ in chunk]
+        batch_pairs = [p for _, p, _ in chunk] if pairs else None
+        for (_, _, ident), row in zip(chunk, model.predict(batch_texts, batch_size, min_confidence, pairs=batch_pairs)):
+            row = {id_col: ident, **row} if id_col is not None else row  # the id first: what a join reads
             stdout.write(json.dumps(row, ensure_ascii=False) + "\n")
     stdout.flush()
     return EXIT_OK

@@ -40,6 +40,7 @@ MODEL_FILE = "model.onnx"        # the ONNX graph of an ONNX step and of an arti
 MANIFEST_FILE = "manifest.json"
 LABELS_FILE = "labels.json"
 TOKENIZER_FILE = "tokenizer.json"
+TOKENIZER_CONFIG = "tokenizer_config.json"   # its model_max_length: the tokens a step's model was trained to read
 CONFIG_FILE = "config.json"
 INT8_WEIGHTS = "model_int8.pt"   # a PyTorch int8 step's quantised state dict (loaded weights-only)
 CARD_FILE = "README.md"           # an artifact's model card
@@ -153,6 +154,27 @@ def check_out_dir(out: Path, flag: str = "--out", replaced: bool = False) -> Non
         raise UserError(f"{flag} {out}: {probe} is a file, not a folder")
     if not os.access(probe, os.W_OK | os.X_OK):
         raise UserError(f"{flag} {out}: {probe} is not writable")
+
+
+def record_trained_length(folder: Path, length: int) -> None:
+    """Records in the folder's tokenizer_config.json (model_max_length, where the transformers libraries keep the
+    longest input a model reads) the tokens the step's model was trained to read, so that whoever reads the folder
+    later (bench --data, package) cuts texts where training did."""
+    path = Path(folder) / TOKENIZER_CONFIG
+    config = read_json_or_none(path)
+    if isinstance(config, dict) and config.get("model_max_length") != length:
+        write_json_atomic(path, {**config, "model_max_length": int(length)})
+
+
+def trained_length(folder: Path, positions: int | None = None) -> int | None:
+    """The tokens the model in `folder` was trained to read (record_trained_length), or None where the folder
+    says nothing sane: no tokenizer_config.json, or the libraries' 'no limit' (a huge number), or more than the
+    model's `positions`."""
+    config = read_json_or_none(Path(folder) / TOKENIZER_CONFIG)
+    n = config.get("model_max_length") if isinstance(config, dict) else None
+    if isinstance(n, bool) or not isinstance(n, int) or n < 1 or n > (positions or 1_000_000):
+        return None
+    return n
 
 
 def make_run_dir(out: Path) -> None:

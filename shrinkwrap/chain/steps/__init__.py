@@ -11,16 +11,8 @@ from dataclasses import dataclass
 from typing import Callable, Optional
 
 from shrinkwrap.recipe.schema import Recipe
-from shrinkwrap.serve.rundir import (
-    STUDENT,
-    STUDENT_INT8,
-    STUDENT_ONNX,
-    STUDENT_ONNX_INT8,
-    STUDENT_ONNX_INT8_STATIC,
-    STUDENT_PRUNED,
-    STUDENT_TRIMMED,
-    TEACHER,
-)
+from shrinkwrap.serve.rundir import (STUDENT, STUDENT_INT8, STUDENT_ONNX, STUDENT_ONNX_INT8, STUDENT_ONNX_INT8_STATIC,
+                                     STUDENT_PRUNED, STUDENT_TRIMMED, TEACHER)
 
 
 @dataclass
@@ -51,16 +43,8 @@ class Step:
 def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     """The steps in order. The PyTorch steps that follow the student read the last PyTorch student the
     recipe makes."""
-    from shrinkwrap.chain.steps import (
-        student,
-        student_int8,
-        student_onnx,
-        student_onnx_int8,
-        student_onnx_int8_static,
-        student_pruned,
-        student_trimmed,
-        teacher,
-    )
+    from shrinkwrap.chain.steps import (student, student_int8, student_onnx, student_onnx_int8,
+                                        student_onnx_int8_static, student_pruned, student_trimmed, teacher)
 
     pruned = recipe is not None and recipe.prune.enabled
     trimmed = recipe is not None and recipe.trim_vocab.enabled

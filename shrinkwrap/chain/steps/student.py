@@ -6,14 +6,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from shrinkwrap.ml.distillation import (
-    build_student,
-    fit_to_teacher,
-    scaled_epochs,
-    soft_targets,
-    student_settings,
-    teacher_validation_outputs,
-)
+from shrinkwrap.ml.distillation import (build_student, fit_to_teacher, scaled_epochs, soft_targets, student_settings,
+                                        teacher_validation_outputs)
 from shrinkwrap.ml.models import save_model
 from shrinkwrap.serve.rundir import STUDENT
 

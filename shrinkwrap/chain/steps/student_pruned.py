@@ -12,14 +12,8 @@ from pathlib import Path
 
 from shrinkwrap.ml.distillation import fit_to_teacher, soft_targets, student_settings, teacher_validation_outputs
 from shrinkwrap.ml.models import save_model
-from shrinkwrap.ml.pruning import (
-    ffn_width,
-    importance,
-    least_important,
-    neurons_to_remove,
-    remove_heads,
-    remove_neurons,
-)
+from shrinkwrap.ml.pruning import (ffn_width, importance, least_important, neurons_to_remove, remove_heads,
+                                   remove_neurons)
 from shrinkwrap.serve.rundir import STUDENT_PRUNED
 
 
