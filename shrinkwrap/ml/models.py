@@ -66,7 +66,8 @@ def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = F
 
     what = what or f"{where}: teacher.base = {base!r}"
     try:
-        tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
+        with library_notices_silenced(MISTRAL_REGEX_NOTICE):
+            tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
     except (OSError, ValueError) as e:
         raise UserError(f"{what} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
     if not getattr(tok, "is_fast", False):
@@ -136,6 +137,10 @@ def library_notices_silenced(*phrases: str):
         for t in targets:
             t.removeFilter(notice)
 
+
+# transformers 4.57.3 and later warn of "an incorrect regex pattern" (a Mistral tokenizer's) when loading the
+# tokenizer of any local folder whose config.json they wrote themselves, whatever the model: every step's output.
+MISTRAL_REGEX_NOTICE = "with an incorrect regex pattern"
 
 # BERT-like models' sdpa attention says it falls back to the manual implementation whenever attention
 # maps are asked for: expected while distilling attention maps, and said on the console of every such run.

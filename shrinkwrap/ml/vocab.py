@@ -184,20 +184,12 @@ def trimmed_tokenizer(tokenizer, kept: list[int], where: str = STUDENT_TRIMMED):
     return small
 
 
-def changed_share(full, trimmed, kept: list[int], split) -> tuple[float, int]:
-    """(share of the split's examples, a text or a pair, that the trimmed tokenizer splits otherwise than the full
-    one after the id remap; how many examples): whole texts, special tokens included. `full` and `trimmed` are
-    plain backends (no truncation, no padding)."""
+def changed_share(before: list[dict], after: list[dict], kept: list[int]) -> float:
+    """Share of the examples (a text or a pair) whose token ids under the trimmed tokenizer (`after`) are not the
+    full tokenizer's (`before`) renumbered: both encoded alike (batches.encode), as the model reads them."""
     new_id = {old: new for new, old in enumerate(kept)}
-    sides = [list(split.texts)] + ([list(split.pairs)] if split.pairs is not None else [])
-    changed = [False] * len(sides[0])
-    for side in sides:
-        for start in range(0, len(side), 1024):
-            batch = side[start:start + 1024]
-            for k, (b, a) in enumerate(zip(full.encode_batch(batch), trimmed.encode_batch(batch))):
-                if a.ids != [new_id.get(t, -1) for t in b.ids]:
-                    changed[start + k] = True
-    return (sum(changed) / len(changed) if changed else 0.0), len(changed)
+    changed = sum(a["input_ids"] != [new_id.get(t, -1) for t in b["input_ids"]] for b, a in zip(before, after))
+    return changed / len(before) if before else 0.0
 
 
 def trim_embeddings(model: nn.Module, kept: list[int], pad_id: int | None) -> None:
