@@ -19,7 +19,6 @@ and fails otherwise). Prints Markdown tables and writes benchmarks/out/multiling
 from __future__ import annotations
 
 import argparse
-import csv
 import importlib.util
 import json
 import random
@@ -72,20 +71,11 @@ def teacher_folder(folder: Path, labels: list[str], hidden: int) -> Path:
     return folder
 
 
-def write_csv(path: Path, rows) -> Path:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with open(path, "w", newline="", encoding="utf-8") as f:
-        w = csv.writer(f)
-        w.writerow(["text", "topic"])
-        w.writerows(rows)
-    return path
-
-
 def run_task(name: str, rows, out: Path, hidden: int) -> dict:
     from shrinkwrap.chain.pipeline import run_recipe
     from shrinkwrap.recipe.schema import load_recipe
 
-    data = write_csv(out / "data.csv", rows)
+    data = bbc_news.write(out / "data.csv", rows)  # columns text, topic, as recipes/bbc-news.yaml reads
     labels = sorted({y for _, y in rows})
     base = teacher_folder(out / "own", labels, hidden)
     common = [f"data.path={data}", f"teacher.base={base}", "teacher.trained=true", "teacher.max_length=128",
