@@ -76,7 +76,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     element = model.get_input_embeddings().weight.element_size()
     train, n = ctx.data.train, min(LOGIT_CHECK_TEXTS, len(ctx.data.train))
     sample = Split(train.texts[:n], train.labels[:n], train.pairs[:n] if train.pairs is not None else None)
-    before_logits = predict_outputs(model, tokens.encoded["train"][:len(sample)], tokens.pad_id, task=ctx.task)
+    before_logits = predict_outputs(model, tokens.encoded["train"][:n], tokens.pad_id, task=ctx.task)
     trim_embeddings(model, kept, small.pad_token_id)
     # Position ids, pooling and heads that read special ids must see the renumbered ones as they saw the old.
     after_logits = predict_outputs(model, encode(small, sample, ctx.student_length,
