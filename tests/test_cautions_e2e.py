@@ -4,6 +4,8 @@ from __future__ import annotations
 import json
 import shutil
 
+import pytest
+
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
 
 
@@ -59,6 +61,17 @@ def test_trimming_that_loses_test_pieces_is_cautioned(tiny_base, tmp_path):
     results = json.loads((tmp_path / "run" / "results.json").read_text())
     info = next(s for s in results["steps"] if s["name"] == "student-trimmed")["info"]
     assert info["test_oov_rate"] > 0.05   # four lost words per test text
+    # Reference: each test text's pieces under the full and the trimmed tokenizer (their own id tables), compared.
+    from transformers import AutoTokenizer
+
+    full, small = (AutoTokenizer.from_pretrained(tmp_path / "run" / s) for s in ("student", "student-trimmed"))
+    test = _test_texts(recipe, tmp_path)
+    differ = [full.convert_ids_to_tokens(full(t)["input_ids"]) != small.convert_ids_to_tokens(small(t)["input_ids"])
+              for t in test]
+    assert info["test_changed_share"] == pytest.approx(sum(differ) / len(test), abs=1e-6) == 1.0
+    # validation texts were not edited: their words are the training texts' words, so none changes
+    assert info["test_texts"] == len(test) and info["validation_changed_share"] == 0.0
     found = [c for c in results["cautions"] if c.startswith("student-trimmed:")]
     assert len(found) == 1 and "no longer in the trimmed vocabulary" in found[0]
     assert f"of {info['test_tokens']})" in found[0]
+    assert f"splits 100.00 % of the test texts ({len(test)} of {len(test)}) otherwise" in found[0]

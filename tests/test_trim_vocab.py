@@ -184,7 +184,7 @@ def test_chain_with_both_levers(student_done, tiny_base, keyword_csv):
     assert [s["metrics"] for s in again["steps"]] == [s["metrics"] for s in results["steps"]]
 
 
-def test_trimming_a_tokenizer_that_is_not_wordpiece_is_refused_before_anything_runs(tmp_path, tiny_base, keyword_csv):
+def test_trimming_a_word_level_tokenizer_is_refused_before_anything_runs(tmp_path, tiny_base, keyword_csv):
     from tokenizers import Tokenizer, models, pre_tokenizers
     from transformers import PreTrainedTokenizerFast
 

@@ -42,16 +42,21 @@ def check_student(recipe: Recipe, config, where: str) -> None:
                         f"({recipe.teacher.max_length}): the teacher's outputs the student learns from are computed "
                         f"on texts cut there")
     if recipe.student.init == "teacher_layers":
-        check_layers(config, where)
+        from shrinkwrap.ml.models import evenly_spaced
+
+        kept = layers or (evenly_spaced(n_layers, recipe.student.num_layers) if n_layers else None)
+        check_layers(config, where, kept, "student.layers" if layers else "student.num_layers")
     from shrinkwrap.ml.pruning import check_prune
 
     check_prune(recipe, config, where)
 
 
-def check_layers(config, where: str) -> None:
+def check_layers(config, where: str, kept: list[int] | None = None, key: str = "student.layers") -> None:
     """Refuses, before anything runs, student.init: teacher_layers for a family whose layers cannot be
-    kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT)."""
-    from shrinkwrap.ml.models import encoder_layers
+    kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT); and `kept`
+    layers (the recipe's `key` chose them) that a student could not hold with their own attention kinds
+    (ModernBERT's global and sliding-window layers)."""
+    from shrinkwrap.ml.models import encoder_layers, evenly_spaced, global_attention_period
     from shrinkwrap.ml.tasks import of_config
 
     family = getattr(config, "model_type", "?")
@@ -67,3 +72,17 @@ def check_layers(config, where: str) -> None:
     except UserError:
         raise UserError(f"{where}: student.init = teacher_layers — step student finds no list of layers in a "
                         f"{family!r} model to keep some of; use init: pretrained or config") from None
+    if not kept:
+        return
+    try:
+        global_attention_period(config, kept)
+    except ValueError as e:
+        every, n = config.global_attn_every_n_layers, config.num_hidden_layers
+        globals_ = list(range(0, n, every))
+        # Layers that attend globally, spread over the depth; else the teacher's first layers, its own pattern.
+        hint = ([globals_[i] for i in evenly_spaced(len(globals_), len(kept))] if 1 < len(kept) <= len(globals_)
+                else list(range(len(kept))))
+        value = kept if key == "student.layers" else len(kept)
+        raise UserError(f"{where}: {key} = {value} — a {family!r} student of teacher layers {kept} cannot keep each "
+                        f"layer's own attention (global every {every} layers, else a {config.local_attention}-token "
+                        f"window): {e}; e.g. student.layers: {hint}") from None

@@ -21,6 +21,7 @@ import numpy as np
 import onnx
 
 from shrinkwrap.ml import classification
+from shrinkwrap.ml.models import MISTRAL_REGEX_NOTICE, library_notices_silenced
 from shrinkwrap.ml.train import predict_outputs
 from shrinkwrap.serve.batches import all_outputs, collate
 from shrinkwrap.serve.errors import StepFailed
@@ -43,7 +44,8 @@ def export_onnx(model, folder: Path, opset: int, task: ModuleType = classificati
     logits), checked by onnx.checker."""
     from optimum.exporters.onnx import onnx_export_from_model
 
-    with warnings.catch_warnings():
+    # The exporter loads the tokenizer beside the model's weights too, hence transformers' notice there.
+    with warnings.catch_warnings(), library_notices_silenced(MISTRAL_REGEX_NOTICE):
         warnings.simplefilter("ignore")
         onnx_export_from_model(model, str(folder), task=task.EXPORT_TASK, opset=opset, do_validation=False)
     path = folder / MODEL_FILE

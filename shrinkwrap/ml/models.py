@@ -66,7 +66,8 @@ def load_tokenizer(base: str, where: str = "recipe", trust_remote_code: bool = F
 
     what = what or f"{where}: teacher.base = {base!r}"
     try:
-        tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
+        with library_notices_silenced(MISTRAL_REGEX_NOTICE):
+            tok = AutoTokenizer.from_pretrained(base, use_fast=True, trust_remote_code=trust_remote_code)
     except (OSError, ValueError) as e:
         raise UserError(f"{what} — cannot load a tokenizer ({str(e).splitlines()[0]})") from None
     if not getattr(tok, "is_fast", False):
@@ -137,6 +138,10 @@ def library_notices_silenced(*phrases: str):
             t.removeFilter(notice)
 
 
+# transformers 4.57.3 and later warn of "an incorrect regex pattern" (a Mistral tokenizer's) when loading the
+# tokenizer of any local folder whose config.json they wrote themselves, whatever the model: every step's output.
+MISTRAL_REGEX_NOTICE = "with an incorrect regex pattern"
+
 # BERT-like models' sdpa attention says it falls back to the manual implementation whenever attention
 # maps are asked for: expected while distilling attention maps, and said on the console of every such run.
 ATTENTION_FALLBACK = "Falling back to the manual attention implementation"
@@ -153,10 +158,11 @@ def save_model(model: nn.Module, tokenizer, folder: Path) -> None:
 
 
 def encoder_layers(model: nn.Module) -> tuple[nn.Module, str]:
-    """The module holding the transformer layers and the name of its ModuleList attribute."""
+    """The module holding the transformer layers and the name of its ModuleList attribute: encoder.layer
+    (BERT-like), transformer.layer (DistilBERT), or the base model's own `layers` (ModernBERT)."""
     base = model.base_model
-    for owner_name, list_name in (("encoder", "layer"), ("transformer", "layer")):
-        owner = getattr(base, owner_name, None)
+    for owner, list_name in ((getattr(base, "encoder", None), "layer"), (getattr(base, "transformer", None), "layer"),
+                             (base, "layers")):
         if owner is not None and isinstance(getattr(owner, list_name, None), nn.ModuleList):
             return owner, list_name
     raise UserError(f"{type(model).__name__}: cannot find the encoder layers to select from")
@@ -177,7 +183,9 @@ def evenly_spaced(total: int, keep: int) -> list[int]:
 
 
 def keep_layers(teacher: nn.Module, layers: list[int]) -> nn.Module:
-    """A student that is the teacher with only `layers` kept: embeddings, those layers, pooler and head copied."""
+    """A student that is the teacher with only `layers` kept: embeddings, those layers, pooler and head copied.
+    Its config describes the kept layers as they are, so that the saved student loads as the same model."""
+    period = global_attention_period(teacher.config, layers)
     student = copy.deepcopy(teacher)
     owner, name = encoder_layers(student)
     kept = getattr(owner, name)
@@ -185,6 +193,29 @@ def keep_layers(teacher: nn.Module, layers: list[int]) -> nn.Module:
     for attr in ("num_hidden_layers", "n_layers"):
         if hasattr(student.config, attr):
             setattr(student.config, attr, len(layers))
+    if period is not None:
+        student.config.global_attn_every_n_layers = period
     return student
+
+
+def global_attention_period(config, layers: list[int]) -> int | None:
+    """For a family whose layers alternate global and sliding-window attention by index (ModernBERT: layer i
+    attends globally when i % global_attn_every_n_layers == 0, else to a window of local_attention tokens, with
+    its own rotary base), the student's global_attn_every_n_layers that gives each kept layer its own kind; None
+    for other families. transformers builds a saved model's layers from that rule alone, and its first layer
+    without the attention norm the others have, so the kept layers must start with layer 0 and their kinds
+    must repeat with one period. ValueError saying why when they do not."""
+    every = getattr(config, "global_attn_every_n_layers", None)
+    if every is None:
+        return None
+    kinds = ["global" if i % every == 0 else "sliding" for i in layers]
+    if layers[0] != 0:
+        raise ValueError(f"the first kept layer must be layer 0, the one without an attention norm (not {layers[0]})")
+    starts = [k for k, kind in enumerate(kinds) if kind == "global"]
+    period = starts[1] if len(starts) > 1 else len(kinds)
+    if any((k % period == 0) != (kind == "global") for k, kind in enumerate(kinds)):
+        raise ValueError(f"their attention kinds ({', '.join(kinds)}) do not repeat with one period, and a loaded "
+                         f"model's layers attend globally every global_attn_every_n_layers")
+    return period
 
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 import math
 import warnings
 from types import ModuleType
+from typing import NamedTuple
 
 import numpy as np
 import torch
@@ -39,26 +40,45 @@ def _layers(model: nn.Module) -> nn.ModuleList:
 
 
 # Families whose heads transformers can remove (prune_heads) and whose forward takes a head mask; and those
-# whose feed-forward neurons we can remove (every layer's up and down projections found by feed_forward). MPNet's
-# relative position bias is one per head of the unpruned model (tried: a pruned layer no longer adds up);
-# DeBERTa-v2 has neither prune_heads nor a head mask.
-HEAD_FAMILIES = ("bert", "roberta", "xlm-roberta", "electra", "distilbert")
-NEURON_FAMILIES = HEAD_FAMILIES + ("mpnet", "deberta-v2")
+# whose feed-forward neurons we can remove (every layer's up and down projections found by feed_forward).
+HEAD_FAMILIES = ("bert", "roberta", "xlm-roberta", "camembert", "electra", "distilbert")
+NEURON_FAMILIES = HEAD_FAMILIES + ("mpnet", "deberta-v2", "modernbert")
+# Why the others' heads stay. MPNet: tried, a pruned layer no longer adds up.
+HEADS_KEPT_BECAUSE = {
+    "mpnet": "its relative position bias is one per head of the whole model",
+    "deberta-v2": "transformers cannot prune its heads",
+    "modernbert": "transformers builds each of its layers with hidden_size / num_attention_heads-wide heads filling "
+                  "the whole width, so a layer with fewer heads would not load, and its forward takes no head mask",
+}
 
 
-def feed_forward(layer: nn.Module) -> tuple[nn.Module, str, nn.Module, str]:
-    """(owner of the up projection, its name, owner of the down projection, its name) of one layer's
-    feed-forward block: intermediate.dense / output.dense (BERT-like, DeBERTa), ffn.lin1 / ffn.lin2 (DistilBERT)."""
-    if hasattr(layer, "intermediate") and hasattr(layer, "output"):
-        return layer.intermediate, "dense", layer.output, "dense"
+class FeedForward(NamedTuple):
+    """One layer's feed-forward block: the up projection (owner, attribute name), the down projection, the module
+    whose output is the activations a_j the down projection reads, and whether the up projection is gated: its
+    output is two halves, values and gates, multiplied, so neuron j is its rows j and width + j (ModernBERT's GLU)."""
+    up_owner: nn.Module
+    up: str
+    down_owner: nn.Module
+    down: str
+    activation: nn.Module
+    gated: bool = False
+
+
+def feed_forward(layer: nn.Module) -> FeedForward:
+    """One layer's feed-forward block: intermediate.dense / output.dense (BERT-like, DeBERTa), ffn.lin1 / ffn.lin2
+    (DistilBERT), mlp.Wi / mlp.Wo (ModernBERT, gated)."""
+    if hasattr(layer, "intermediate") and hasattr(layer, "output"):  # the intermediate applies its activation inside
+        return FeedForward(layer.intermediate, "dense", layer.output, "dense", layer.intermediate)
     if hasattr(layer, "ffn"):
-        return layer.ffn, "lin1", layer.ffn, "lin2"
+        return FeedForward(layer.ffn, "lin1", layer.ffn, "lin2", layer.ffn.activation)
+    if hasattr(layer, "mlp") and hasattr(layer.mlp, "Wi"):  # Wo(drop(act(values) * gates)): drop's output is a_j
+        return FeedForward(layer.mlp, "Wi", layer.mlp, "Wo", layer.mlp.drop, gated=True)
     raise ValueError(f"{type(layer).__name__}: no feed-forward block found")
 
 
 def ffn_width(model: nn.Module) -> int:
-    owner, name, _, _ = feed_forward(_layers(model)[0])
-    return getattr(owner, name).out_features
+    block = feed_forward(_layers(model)[0])
+    return getattr(block.down_owner, block.down).in_features
 
 
 def check_prune(recipe, teacher_config, where: str) -> None:
@@ -71,9 +91,10 @@ def check_prune(recipe, teacher_config, where: str) -> None:
         raise UserError(f"{where}: prune.enabled — step student-pruned supports {', '.join(NEURON_FAMILIES)}; "
                         f"the teacher is {family!r}")
     if cfg.heads_removed and family not in HEAD_FAMILIES + (None,):
+        why = HEADS_KEPT_BECAUSE.get(family, "transformers cannot prune its heads")
         raise UserError(f"{where}: prune.heads_removed = {cfg.heads_removed} — step student-pruned cannot remove "
-                        f"attention heads of a {family!r} model (transformers cannot prune its heads); "
-                        f"remove neurons only (prune.neurons_removed_share)")
+                        f"attention heads of a {family!r} model ({why}); remove neurons only "
+                        f"(prune.neurons_removed_share)")
     heads = teacher_config.num_attention_heads
     if st.init == "config":
         heads = st.num_attention_heads or heads
@@ -107,13 +128,7 @@ def importance(model: nn.Module, examples: list[dict], labels: np.ndarray, pad_i
     def scale(i):
         return lambda module, inputs, output: output * neuron_mask[i]
 
-    def hook_target(layer):
-        # The module whose output is the activation a_j: BERT's intermediate applies its GELU inside;
-        # DistilBERT's ffn applies `activation` (a module) between lin1 and lin2.
-        owner, name, _, _ = feed_forward(layer)
-        return owner if name == "dense" else getattr(owner, "activation")
-
-    hooks = [hook_target(layer).register_forward_hook(scale(i)) for i, layer in enumerate(layers)]
+    hooks = [feed_forward(layer).activation.register_forward_hook(scale(i)) for i, layer in enumerate(layers)]
     trainable = [p for p in model.parameters() if p.requires_grad]
     for p in trainable:  # only the masks' gradients are wanted
         p.requires_grad_(False)
@@ -159,8 +174,8 @@ def remove_heads(model: nn.Module, heads: dict[int, list[int]]) -> None:
 
 
 def remove_neurons(model: nn.Module, neurons: dict[int, list[int]]) -> None:
-    """Drops those neurons: their rows of intermediate.dense and columns of output.dense. Every layer
-    must lose the same number, so that config.intermediate_size describes them all."""
+    """Drops those neurons: their rows of the up projection (both halves of a gated one) and columns of the down
+    projection. Every layer must lose the same number, so that config.intermediate_size describes them all."""
     from transformers.pytorch_utils import prune_linear_layer
 
     if not neurons:
@@ -170,11 +185,12 @@ def remove_neurons(model: nn.Module, neurons: dict[int, list[int]]) -> None:
     if len(counts) != 1 or len(neurons) != len(layers):
         raise ValueError("remove_neurons: every layer must lose the same number of neurons")
     for i, layer in enumerate(layers):
-        up_owner, up, down_owner, down = feed_forward(layer)
-        width = getattr(up_owner, up).out_features
+        block = feed_forward(layer)
+        width = getattr(block.down_owner, block.down).in_features
         keep = torch.as_tensor(sorted(set(range(width)) - set(neurons[i])))
-        setattr(up_owner, up, prune_linear_layer(getattr(up_owner, up), keep, dim=0))
-        setattr(down_owner, down, prune_linear_layer(getattr(down_owner, down), keep, dim=1))
+        rows = torch.cat([keep, keep + width]) if block.gated else keep
+        setattr(block.up_owner, block.up, prune_linear_layer(getattr(block.up_owner, block.up), rows, dim=0))
+        setattr(block.down_owner, block.down, prune_linear_layer(getattr(block.down_owner, block.down), keep, dim=1))
     # DistilBERT calls the feed-forward width hidden_dim; the others intermediate_size.
     key = "hidden_dim" if model.config.model_type == "distilbert" else "intermediate_size"
     setattr(model.config, key, ffn_width(model))

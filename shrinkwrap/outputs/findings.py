@@ -9,8 +9,10 @@ from typing import Optional
 from shrinkwrap.outputs.results import data_info, lineage, steps_of
 from shrinkwrap.outputs.tasks import of_results
 
-# Share of test tokens a trimmed vocabulary no longer holds above which the trimming is called out.
+# Share of test tokens a trimmed vocabulary no longer holds, and share of test texts it splits otherwise, above
+# which the trimming is called out.
 OOV_CAUTION = 0.005
+CHANGED_CAUTION = 0.01
 
 
 def cautions_by_step(results: dict, budget=None) -> list[tuple[Optional[str], str]]:
@@ -28,11 +30,16 @@ def cautions_by_step(results: dict, budget=None) -> list[tuple[Optional[str], st
         out.append((None, f"{overlap} augmented copies of training texts are also test texts: the student saw the "
                           f"teacher's answers on them, so its test accuracy is optimistic"))
     for s in steps_of(results):
-        rate = s["info"].get("test_oov_rate") if isinstance(s.get("info"), dict) else None
-        if rate is not None and rate > OOV_CAUTION:
-            out.append((s["name"], f"{s['name']}: {rate * 100:.2f} % of the test tokens "
-                                   f"({round(rate * s['info']['test_tokens'])} of {s['info']['test_tokens']}) are no "
-                                   f"longer in the trimmed vocabulary and fall back to unknown or shorter pieces"))
+        info = s["info"] if isinstance(s.get("info"), dict) else {}
+        rate, changed = info.get("test_oov_rate"), info.get("test_changed_share")
+        if (rate or 0) > OOV_CAUTION or (changed or 0) > CHANGED_CAUTION:
+            line = f"{s['name']}: "
+            if changed is not None:  # recorded since trimming handles BPE and Unigram; older results lack it
+                line += (f"the trimmed tokenizer splits {changed * 100:.2f} % of the test texts "
+                         f"({round(changed * info['test_texts'])} of {info['test_texts']}) otherwise than the full one; ")
+            out.append((s["name"], line + f"{rate * 100:.2f} % of the test tokens ({round(rate * info['test_tokens'])} "
+                                          f"of {info['test_tokens']}) are no longer in the trimmed vocabulary and fall "
+                                          f"back to unknown or shorter pieces"))
     return out
 
 

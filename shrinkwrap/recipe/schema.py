@@ -160,8 +160,10 @@ class PruneConfig(Section):
 class TrimVocabConfig(Section):
     """Step student-trimmed (off by default): the vocabulary cut to the pieces the training texts use."""
     enabled: bool = Field(False, description="run step student-trimmed: keep only the vocabulary pieces (and special "
-                          "tokens) that the training and transfer texts are split into, with their embedding rows; "
-                          "the tokenizer becomes a smaller one that splits those texts exactly as before")
+                          "tokens) that the training and transfer texts are split into, with their embedding rows "
+                          "(WordPiece; BPE also keeps the merges that build them and its base alphabet, Unigram every "
+                          "character the texts hold); the tokenizer becomes a smaller one that splits those texts "
+                          "exactly as before")
 
 
 class AugmentConfig(Section):
