@@ -113,7 +113,9 @@ def test_vocabulary_read_from_the_graph(bare_encoder, tiny_base, tiny_run):
     assert onnx_embedding_rows(bare_encoder) == (vocab, None)                  # plain Gather
     fused = onnx_embedding_rows(tiny_run / "student-onnx" / "model.onnx")     # EmbedLayerNormalization
     assert fused == (vocab, 128)
-    assert onnx_embedding_rows(tiny_run / "student-onnx-int8" / "model.onnx") == fused   # quantised tables
+    # the shipped int8 graph is fused without attention, so its lookups stay Gathers (no positions read), of
+    # int8 tables reached through their dequantisation
+    assert onnx_embedding_rows(tiny_run / "student-onnx-int8" / "model.onnx") == (vocab, None)
 
 
 @pytest.mark.parametrize("step", STEPS)

@@ -96,7 +96,7 @@ def test_per_channel_gives_one_scale_per_output_column(tiny_graphs, tmp_path):
             assert all(s == [] for s in scales), scales
 
 
-def test_static_step_is_its_own_row_and_keeps_the_dynamic_step_final(tiny_run_copy, tiny_base, keyword_csv, tmp_path):
+def test_static_step_is_its_own_row_and_keeps_the_shipped_step_final(tiny_run_copy, tiny_base, keyword_csv, tmp_path):
     from shrinkwrap.chain.pipeline import run_recipe
     from shrinkwrap.recipe.schema import load_recipe
 

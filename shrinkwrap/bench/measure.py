@@ -81,11 +81,17 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
                   "input_names": target.input_names}
         if inputs.about is not None:
             result["data"] = inputs.about
+        if target.batch_dependent:
+            result["batch_dependent"] = list(target.batch_dependent)
         if inputs.test is not None:
+            # A batch-dependent graph answers a text differently in different batches: its accuracy is measured
+            # as a user who sends one text at a time gets it; any other graph answers alike in any batch.
+            size = 1 if target.batch_dependent else cfg.eval_batch_size
             log(f"accuracy over {len(inputs.test)} texts")
-            outputs = all_outputs(target.outputs, inputs.test, inputs.pad_id, inputs.n_labels, cfg.eval_batch_size)
+            outputs = all_outputs(target.outputs, inputs.test, inputs.pad_id, inputs.n_labels, size)
             result["metrics"], result["predictions"] = of_target(target).quality(
                 outputs, inputs.labels, inputs.n_labels, target.temperature)
+            result["accuracy_batch_size"] = size
         rows = []
         for point, batches in plan:
             log(f"timing batch {point.batch_size} × {point.sequence_length} tokens")

@@ -29,6 +29,9 @@ class Target:
     label_names: Optional[list[str]] = None     # class names by id; None for an encoder without a head
     max_length: Optional[int] = None            # longest input in tokens the model takes, when known
     temperature: float = 1.0                    # an artifact's calibration temperature (scores = softmax(logits / T))
+    # Operators that scale activations over the whole batch (shrinkwrap.serve.quantization): with any, a text's
+    # outputs depend on its batch companions, so the accuracy pass feeds such a graph one text at a time.
+    batch_dependent: tuple[str, ...] = ()
 
     @property
     def size_bytes(self) -> int:
@@ -151,9 +154,11 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
     import onnx  # noqa: F401  (imported before `ready`, see load_target; vocab_size reads the graph)
     import onnxruntime  # noqa: F401
 
+    from shrinkwrap.serve.quantization import batch_dependent_ops
     from shrinkwrap.serve.sessions import check_external_data, run_outputs, session
 
     external = check_external_data(path)  # before ONNX Runtime opens anything the graph points to
+    dependent = tuple(batch_dependent_ops(path))
     ready()
     try:
         sess = session(path, threads, spin=spin)
@@ -169,7 +174,7 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
     return Target("onnx", path, files, lambda b: run_outputs(sess, b), [i.name for i in sess.get_inputs()],
                   tokenizer_dir=tok, extra={"session": sess},
                   label_names=labels_of_config(config) if has_head else None,
-                  max_length=config.get("max_position_embeddings"))
+                  max_length=config.get("max_position_embeddings"), batch_dependent=dependent)
 
 
 def _artifact(folder: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:

@@ -9,7 +9,14 @@ from typing import Optional
 
 from shrinkwrap.recipe.schema import Recipe
 from shrinkwrap.serve.fingerprint import tokenizer_fingerprint_of_file
-from shrinkwrap.serve.rundir import TEACHER, TOKENIZER_FILE
+from shrinkwrap.serve.rundir import STUDENT, STUDENT_PRUNED, STUDENT_TRIMMED, TEACHER, TOKENIZER_FILE
+
+
+def last_student(recipe: Optional[Recipe]) -> str:
+    """The last fp32 PyTorch student step the recipe makes: the one the ONNX steps export."""
+    if recipe is not None and recipe.trim_vocab.enabled:
+        return STUDENT_TRIMMED
+    return STUDENT_PRUNED if recipe is not None and recipe.prune.enabled else STUDENT
 
 
 @dataclass
@@ -54,6 +61,11 @@ class Context:
     def student_length(self) -> int:
         """Tokens per input the student (and every step after it, and the artifact) reads."""
         return self.recipe.student_length
+
+    @property
+    def last_student_dir(self) -> Path:
+        """The output folder of the last fp32 PyTorch student (chain.context.last_student)."""
+        return self.outputs[last_student(self.recipe)]
 
     def length_of(self, step: str) -> int:
         return self.recipe.teacher.max_length if step == TEACHER else self.student_length

@@ -86,6 +86,12 @@ def main(args) -> int:
                           inputs_for(table, args.max_length), logger("bench", args.json))
     result.pop("predictions", None)
     result["machine"] = describe()
+    if result.get("batch_dependent"):
+        import sys
+
+        from shrinkwrap.serve.quantization import batch_note
+
+        print(batch_note(args.target, result["batch_dependent"]), file=sys.stderr, flush=True)
     if args.out:
         write_json_atomic(Path(args.out), result)
     print(json.dumps(result, indent=2) if args.json else bench_text(result))

@@ -31,8 +31,9 @@ def add(sub) -> None:
     p.add_argument("--max-length", type=positive_int, metavar="N",
                    help="tokens per text after truncation (default: the model's position count, at most 512)")
     p.add_argument("--int8", action=argparse.BooleanOptionalAction, default=True,
-                   help="quantise the exported graph to int8 with ONNX Runtime, embeddings included "
-                        "(default: on; a folder with model.onnx is packaged as it is)")
+                   help="quantise the exported graph to int8, embeddings included, each row's activations "
+                        "scaled on their own so that a text's scores do not depend on its batch (default: on; a "
+                        "folder with model.onnx is packaged as it is)")
     p.add_argument("--per-channel", action=argparse.BooleanOptionalAction, default=True,
                    help="int8 weights with one scale per output column rather than per tensor (default: on; "
                         "--no-per-channel for one scale per tensor)")

@@ -23,8 +23,8 @@ def add(sub) -> None:
                    help="key or column holding the second text, for a model that classifies pairs "
                         "(default: text_pair)")
     p.add_argument("--batch-size", type=positive_int, metavar="N",
-                   help="texts per model call; texts are grouped by length (default: 32, as in the chain's "
-                        "accuracy pass, which gives exactly its predictions)")
+                   help="texts per model call; texts are grouped by length (default: 32; an artifact made by "
+                        "this version gives every text the same answer at any batch size)")
     p.add_argument("--threads", type=count, default=0, metavar="N",
                    help="ONNX Runtime intra-op threads (default: 0 = its own choice)")
     p.add_argument("--id", metavar="NAME",

@@ -15,7 +15,7 @@ import warnings
 from collections import Counter
 from pathlib import Path
 from types import ModuleType
-from typing import Callable
+from typing import Callable, Optional
 
 import numpy as np
 import onnx
@@ -53,15 +53,19 @@ def export_onnx(model, folder: Path, opset: int, task: ModuleType = classificati
     return path
 
 
-def fuse(path: Path, config, out_path: Path) -> Path:
-    """ONNX Runtime's transformer optimizer: fuses attention, LayerNorm, GELU and the embedding layer."""
+def fuse(path: Path, config, out_path: Path, attention: bool = True) -> Path:
+    """ONNX Runtime's transformer optimizer: fuses attention (unless attention=False), LayerNorm, GELU and the
+    embedding layer."""
+    from onnxruntime.transformers.fusion_options import FusionOptions
     from onnxruntime.transformers.optimizer import optimize_model
 
+    options = FusionOptions("bert")
+    options.enable_attention = attention
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         # Its BERT fusions serve every encoder family we export (BERT, RoBERTa, DistilBERT, ELECTRA alike).
         opt = optimize_model(str(path), model_type="bert", num_heads=config.num_attention_heads,
-                             hidden_size=config.hidden_size, opt_level=1)
+                             hidden_size=config.hidden_size, opt_level=1, optimization_options=options)
     opt.save_model_to_file(str(out_path))
     onnx.checker.check_model(str(out_path), full_check=True)
     return out_path
@@ -76,11 +80,13 @@ def parity(path: Path, torch_outputs: np.ndarray, examples: list[dict], pad_id: 
     return {**task.parity(got, torch_outputs), "texts": len(examples)}
 
 
-def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callable[[Path], float], cfg, threads: int,
-                   out: Path, task: ModuleType = classification, what: str = STUDENT_ONNX) -> dict:
-    """Writes out/model.onnx: the fp32 export, fused unless `cfg.optimize` is `never`, proven to give
+def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callable[[Path], Optional[float]], cfg,
+                   threads: int, out: Path, task: ModuleType = classification, what: str = STUDENT_ONNX,
+                   attention: bool = True) -> dict:
+    """Writes out/model.onnx: the fp32 export, fused (attention too unless attention=False) unless `cfg.optimize`
+    is `never`, proven to give
     PyTorch's logits on `examples`. Raises StepFailed naming `what` when no graph passes (with `always`:
-    when the fused one does not). `time_graph(path) -> ms` times each graph for the record (the benchmark's
+    when the fused one does not). `time_graph(path) -> ms or None` times each graph for the record (the benchmark's
     protocol, shrinkwrap.bench.latency.graph_p50_ms, given by the caller).
 
     The choice never depends on the timings, which are recorded for both graphs: on a busy 2-core machine
@@ -92,7 +98,7 @@ def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callabl
         plain = export_onnx(model, tmp, cfg.opset, task)
         candidates = {"plain": plain}
         if cfg.optimize != "never":
-            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx")
+            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx", attention)
         report = {}
         for name, path in candidates.items():
             report[name] = parity(path, torch_logits, examples, pad_id, threads, task)
@@ -208,9 +214,10 @@ def quantize_dynamic(src: Path, dst: Path, per_channel: bool, op_types: list[str
 
 
 def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: int, per_channel: bool,
-                        op_types: list[str]) -> None:
+                        op_types: list[str], keep_fp32: tuple[str, ...] = ()) -> None:
     """QDQ int8 of `src`: int8 weights, uint8 activations (the pairing ONNX Runtime's CPU kernels are
-    fastest with), ranges from the min/max seen on `calibration` (one unpadded text per run)."""
+    fastest with), ranges from the min/max seen on `calibration` (one unpadded text per run). The nodes
+    named in `keep_fp32` stay fp32."""
     from onnxruntime.quantization import (CalibrationDataReader, CalibrationMethod, QuantFormat, QuantType,
                                           quantize_static)
 
@@ -230,6 +237,7 @@ def quantize_static_qdq(src: Path, dst: Path, calibration: list[dict], pad_id: i
     quantize_static(str(src), str(dst), Texts(), quant_format=QuantFormat.QDQ, per_channel=per_channel,
                     weight_type=QuantType.QInt8, activation_type=QuantType.QUInt8,
                     op_types_to_quantize=list(op_types), calibrate_method=CalibrationMethod.MinMax,
+                    nodes_to_exclude=list(keep_fp32),
                     extra_options={"DefaultTensorType": onnx.TensorProto.FLOAT})
     sort_topologically(dst)
     onnx.checker.check_model(str(dst), full_check=True)

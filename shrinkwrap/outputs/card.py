@@ -143,9 +143,7 @@ def run_card(manifest: dict, results: dict) -> str:
         f"- The figures come from {sizes['test']} test texts: differences of a point or two between steps may be "
         f"noise (see the interval in the table where given).",
         "- Latency was measured on the machine named in the run's report; it differs on other hardware.",
-        *(["- Activations are quantised per batch at run time (dynamic int8), so a text's scores can differ "
-           "in the last digits with the texts batched alongside it."]
-          if "dynamic" in manifest["model"].get("quantization", {}).get("method", "") else []),
+        *_batching_lines(manifest["model"].get("quantization") or {}),
         ("- Scores are softmax outputs of the logits divided by the temperature above, fitted on the validation "
          "split: calibrated on average over that data, not per text nor on texts of another kind."
          if final_row(results).get("calibration") else "- Scores are softmax outputs, not calibrated probabilities."),
@@ -155,6 +153,18 @@ def run_card(manifest: dict, results: dict) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+def _batching_lines(quantization: dict) -> list[str]:
+    """Whether a text's scores depend on the texts batched with it (an artifact made before per-row int8 records
+    no `batch_independent`; its dynamic method says it)."""
+    if not quantization:
+        return []
+    if quantization.get("batch_independent", "dynamic" not in quantization.get("method", "")):
+        return ["- int8 activations are scaled one row (one token of one text) at a time, so a text gets the same "
+                "scores whatever else is in its batch (predict, serve, and the accuracy recorded here alike)."]
+    return ["- Activations are quantised per batch at run time (dynamic int8): batch-dependent, a text's scores "
+            "can differ with the texts batched alongside it."]
 
 
 def folder_card(manifest: dict, labels: list[str]) -> str:
@@ -199,6 +209,7 @@ def folder_card(manifest: dict, labels: list[str]) -> str:
         "- The training data and its test results are not known to this card; only the figures above were measured.",
         f"- Texts are cut at {manifest['tokenizer']['max_length']} tokens.",
         "- Scores are softmax outputs, not calibrated probabilities.",
+        *_batching_lines(model.get("quantization") or {}),
         "",
         *_usage(manifest),
         f"Built {manifest['created_utc']}.",

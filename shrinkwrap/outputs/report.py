@@ -49,10 +49,21 @@ def setup_lines(results: dict) -> list[str]:
     ]
 
 
+def batch_dependent(step: dict) -> bool:
+    """Whether the step's int8 scales activations over the whole batch (a run made before per-row int8 records no
+    `batch_independent`: its dynamic method says it)."""
+    info = step.get("info") or {}
+    return not info.get("batch_independent", "dynamic" not in info.get("method", ""))
+
+
 def int8_agreement_lines(results: dict) -> list[str]:
-    """One line per int8 ONNX step: how often it predicts what the fp32 graph it came from predicts."""
+    """One line per int8 ONNX step: how often it predicts what the fp32 graph it came from predicts, and whether
+    its answers depend on the batch."""
     return [f"- `{s['name']}` predicts the same label as the fp32 ONNX graph it was quantised from on "
             f"{s['agreement_with_fp32'] * 100:.1f} % of the test texts."
+            + (" **Batch-dependent**: it scales activations over the whole batch, so a text's scores change with "
+               "the texts batched with it; its accuracy is each test text classified alone." if batch_dependent(s)
+               else "")
             for s in steps_of(results) if "agreement_with_fp32" in s]
 
 

@@ -20,7 +20,8 @@ from pathlib import Path
 from typing import Optional
 
 from shrinkwrap.serve.errors import UserError
-from shrinkwrap.serve.rundir import STUDENT, STUDENT_INT8, STUDENT_ONNX_INT8_STATIC, STUDENT_PRUNED, read_json
+from shrinkwrap.serve.rundir import (STUDENT, STUDENT_INT8, STUDENT_ONNX_INT8_DYNAMIC, STUDENT_ONNX_INT8_STATIC,
+                                     STUDENT_PRUNED, read_json)
 
 SPLITS = ("train", "validation", "test")
 
@@ -216,7 +217,8 @@ def lineage(results: dict, row: Optional[dict] = None) -> list[str]:
     side branches."""
     row = row or final_row(results)
     if "source" not in row:
-        return [s["name"] for s in steps_of(results) if s["name"] not in (STUDENT_INT8, STUDENT_ONNX_INT8_STATIC)]
+        side = (STUDENT_INT8, STUDENT_ONNX_INT8_STATIC, STUDENT_ONNX_INT8_DYNAMIC)
+        return [s["name"] for s in steps_of(results) if s["name"] not in side]
     names = []
     while row is not None:
         names.append(row["name"])

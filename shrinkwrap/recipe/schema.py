@@ -214,12 +214,17 @@ class OnnxQuantizeConfig(Section):
                               "scale per tensor, which lost up to 2.5 more points on the small pair tasks measured)")
     int8_operators: list[Literal["MatMul", "Gather", "Attention", "EmbedLayerNormalization", "Gemm"]] = Field(
         default_factory=lambda: ["MatMul", "Attention", "Gather", "EmbedLayerNormalization"],
-        min_length=1, description="operator types quantised. The embedding lookup (about half of a small model's "
-                                  "bytes) is Gather in an unfused graph and EmbedLayerNormalization in a fused one; "
-                                  "Attention holds a fused graph's query/key/value weights")
+        min_length=1, description="operator types quantised. MatMul (and Gemm) covers every product with a stored "
+                                  "weight, the attention projections of the shipped step included; the embedding "
+                                  "lookup (about half of a small model's bytes) is Gather in an unfused graph and "
+                                  "EmbedLayerNormalization in a fused one; Attention holds a fused graph's "
+                                  "query/key/value weights (the dynamic step's)")
     static: bool = Field(False, description="also run step student-onnx-int8-static: weights and activations int8 "
                                             "(QDQ), activation ranges calibrated on training texts")
     static_calibration_texts: int = Field(100, ge=1, description="training texts the static step calibrates on")
+    dynamic: bool = Field(False, description="also run step student-onnx-int8-dynamic: ONNX Runtime's dynamic int8, "
+                                             "activations scaled over the whole batch, so a text's scores depend on "
+                                             "the texts batched with it (batch-dependent); measured only")
 
     @model_validator(mode="after")
     def _static_ops(self) -> "OnnxQuantizeConfig":
@@ -342,7 +347,7 @@ class Recipe(Section):
 
 
 # Keys added after runs were made, with their defaults: see Recipe.sections.
-ADDED_KEYS = {"train.length_grouped": False}
+ADDED_KEYS = {"train.length_grouped": False, "onnx_quantize.dynamic": False}
 
 
 def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:

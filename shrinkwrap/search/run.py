@@ -72,6 +72,7 @@ def untrained(recipe):
     r.prune.importance_texts = SCREEN_IMPORTANCE_TEXTS
     r.quantize.enabled = False
     r.onnx_quantize.static = False
+    r.onnx_quantize.dynamic = False
     return r
 
 

@@ -114,6 +114,9 @@ class Artifact:
     info: dict            # what the task read beside the graph (a classifier's labels and temperature)
     session: object
     tokenizer: object
+    # Operators in the graph that scale activations over the whole batch (shrinkwrap.serve.quantization): with
+    # any, a text's scores depend on its batch companions (an older or foreign int8 artifact).
+    batch_dependent: tuple[str, ...] = ()
 
     @property
     def max_length(self) -> int:
@@ -199,6 +202,7 @@ def open_folder(folder: Path, manifest: dict, threads: int = 0) -> Artifact:
     the artifact it is building through this very code path."""
     from tokenizers import Tokenizer
 
+    from shrinkwrap.serve.quantization import batch_dependent_ops
     from shrinkwrap.serve.sessions import check_external_data, session
 
     check_external_data(folder / MODEL_FILE)  # before ONNX Runtime opens anything the graph points to
@@ -227,4 +231,5 @@ def open_folder(folder: Path, manifest: dict, threads: int = 0) -> Artifact:
     n_out = sess.get_outputs()[0].shape[-1]
     if isinstance(n_out, int) and n_out != task.width(info):
         raise task.width_error(folder, info, n_out)
-    return Artifact(folder=folder, manifest=manifest, task=task, info=info, session=sess, tokenizer=tokenizer)
+    return Artifact(folder=folder, manifest=manifest, task=task, info=info, session=sess, tokenizer=tokenizer,
+                    batch_dependent=tuple(batch_dependent_ops(folder / MODEL_FILE)))

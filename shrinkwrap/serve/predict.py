@@ -20,6 +20,7 @@ from typing import BinaryIO, Iterator, Optional, TextIO
 
 from shrinkwrap.serve.artifact import load, verify
 from shrinkwrap.serve.errors import EXIT_OK, UserError
+from shrinkwrap.serve.quantization import batch_note
 from shrinkwrap.serve.textfiles import json_line, utf8_lines
 
 CHUNK = 4096  # texts classified and written at a time: memory stays flat on a file of millions of lines
@@ -192,6 +193,8 @@ def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size
         raise UserError(f"--text-pair {pair_col}: this model classifies single texts, not pairs")
     chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair", id_col)
     model = load(artifact, threads, verified=manifest)
+    if model.batch_dependent:
+        print(batch_note(artifact, list(model.batch_dependent)), file=sys.stderr, flush=True)
     for chunk in chunks:
         batch_texts = [t for t, _, _ in chunk]
         batch_pairs = [p for _, p, _ in chunk] if pairs else None

@@ -27,6 +27,7 @@ STUDENT_TRIMMED = "student-trimmed"
 STUDENT_INT8 = "student-int8"
 STUDENT_ONNX = "student-onnx"
 STUDENT_ONNX_INT8_STATIC = "student-onnx-int8-static"
+STUDENT_ONNX_INT8_DYNAMIC = "student-onnx-int8-dynamic"
 STUDENT_ONNX_INT8 = "student-onnx-int8"
 
 STEP_FILE = "step.json"          # a step's record: fingerprint, tokenizer fingerprint, what it did

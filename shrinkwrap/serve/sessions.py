@@ -37,12 +37,11 @@ def run_outputs(sess, batch: dict[str, np.ndarray]) -> np.ndarray:
     return sess.run(None, feed(sess, batch))[0]
 
 
-# --- external data: where a graph's tensors say their bytes are --------------------------------------------
-# Read from the protobuf wire format directly, so that this stays in the torch- and onnx-free predict path.
-# Field numbers from onnx.proto: ModelProto.graph 7, .functions 25; GraphProto.node 1, .initializer 5,
-# .sparse_initializer 15; NodeProto.attribute 5; AttributeProto.t 5, .g 6, .tensors 10, .graphs 11,
-# .sparse_tensor 22, .sparse_tensors 23; FunctionProto.node 7; SparseTensorProto.values 1, .indices 2;
-# TensorProto.external_data 13; StringStringEntryProto.key 1, .value 2.
+# --- what a graph holds, read from the protobuf wire format directly -----------------------------------------
+# So that this stays in the torch- and onnx-free predict path. Field numbers from onnx.proto: ModelProto.graph 7,
+# .functions 25; GraphProto.node 1, .initializer 5, .sparse_initializer 15; NodeProto.op_type 4, .attribute 5;
+# AttributeProto.t 5, .g 6, .tensors 10, .graphs 11, .sparse_tensor 22, .sparse_tensors 23; FunctionProto.node 7;
+# SparseTensorProto.values 1, .indices 2; TensorProto.external_data 13; StringStringEntryProto.key 1, .value 2.
 
 def _fields(buf: memoryview):
     """(field number, wire type, value) of one message; length-delimited values as memoryviews."""
@@ -90,13 +89,15 @@ _CHILDREN = {  # message kind -> {field: child kind}
 }
 
 
-def external_locations(path: str | Path) -> list[str]:
-    """The external-data file names the graph's tensors point to (onnx.proto's TensorProto.external_data
-    `location`), read without loading any tensor. ValueError for a file that is not a parseable graph."""
+def graph_contents(path: str | Path) -> tuple[list[str], set[str]]:
+    """(the external-data file names its tensors point to (TensorProto.external_data `location`), the operator
+    types of its nodes, subgraphs' and functions' included), read without loading any tensor. ValueError for a
+    file that is not a parseable graph."""
     data = Path(path).read_bytes()  # the session reads it whole next anyway
     if not data:
         raise ValueError("empty file")
     found: list[str] = []
+    op_types: set[str] = set()
     stack = [("model", memoryview(data), 0)]
     while stack:
         kind, buf, depth = stack.pop()
@@ -109,9 +110,16 @@ def external_locations(path: str | Path) -> list[str]:
                 entry = {k: bytes(v) for k, w, v in _fields(value) if w == 2}
                 if entry.get(1) == b"location":
                     found.append(entry.get(2, b"").decode("utf-8", "replace"))
+            elif kind == "node" and field == 4:
+                op_types.add(bytes(value).decode("utf-8", "replace"))
             elif field in _CHILDREN.get(kind, {}):
                 stack.append((_CHILDREN[kind][field], value, depth + 1))
-    return found
+    return found, op_types
+
+
+def external_locations(path: str | Path) -> list[str]:
+    """The external-data file names the graph's tensors point to; ValueError for an unparseable file."""
+    return graph_contents(path)[0]
 
 
 def check_external_data(path: str | Path) -> list[Path]:

@@ -10,9 +10,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Callable, Optional
 
+from shrinkwrap.chain.context import last_student
 from shrinkwrap.recipe.schema import Recipe
-from shrinkwrap.serve.rundir import (STUDENT, STUDENT_INT8, STUDENT_ONNX, STUDENT_ONNX_INT8, STUDENT_ONNX_INT8_STATIC,
-                                     STUDENT_PRUNED, STUDENT_TRIMMED, TEACHER)
+from shrinkwrap.serve.rundir import (STUDENT, STUDENT_INT8, STUDENT_ONNX, STUDENT_ONNX_INT8, STUDENT_ONNX_INT8_DYNAMIC,
+                                     STUDENT_ONNX_INT8_STATIC, STUDENT_PRUNED, STUDENT_TRIMMED, TEACHER)
 
 
 @dataclass
@@ -44,11 +45,11 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     """The steps in order. The PyTorch steps that follow the student read the last PyTorch student the
     recipe makes."""
     from shrinkwrap.chain.steps import (student, student_int8, student_onnx, student_onnx_int8,
-                                        student_onnx_int8_static, student_pruned, student_trimmed, teacher)
+                                        student_onnx_int8_dynamic, student_onnx_int8_static, student_pruned,
+                                        student_trimmed, teacher)
 
     pruned = recipe is not None and recipe.prune.enabled
-    trimmed = recipe is not None and recipe.trim_vocab.enabled
-    last = STUDENT_TRIMMED if trimmed else STUDENT_PRUNED if pruned else STUDENT
+    last = last_student(recipe)
     return [
         # A teacher used as is (teacher.trained) is those very weights: they are part of its fingerprint.
         Step(TEACHER, "pytorch", ("data", "teacher", "train"), (), teacher.run, trains=True,
@@ -62,8 +63,13 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
              student_trimmed.run, lambda r: r.trim_vocab.enabled, changes_tokenizer=True),
         Step(STUDENT_INT8, "pytorch", ("quantize",), (last,), student_int8.run, lambda r: r.quantize.enabled),
         Step(STUDENT_ONNX, "onnx", ("export",), (last,), student_onnx.run, extra=lambda ctx: student_onnx.GRAPH_RULE),
-        # Before the dynamic int8 step, so that the final step (budgets, the artifact) stays the dynamic one.
+        # The measured-only int8 steps come before the one that ships, so that the final step (budgets, the
+        # artifact) stays the shipped one.
         Step(STUDENT_ONNX_INT8_STATIC, "onnx", ("export", "onnx_quantize"), (last,), student_onnx_int8_static.run,
              lambda r: r.onnx_quantize.static),
-        Step(STUDENT_ONNX_INT8, "onnx", ("onnx_quantize",), (STUDENT_ONNX,), student_onnx_int8.run),
+        Step(STUDENT_ONNX_INT8_DYNAMIC, "onnx", ("onnx_quantize",), (STUDENT_ONNX,), student_onnx_int8_dynamic.run,
+             lambda r: r.onnx_quantize.dynamic),
+        # Exports the last fp32 student again, its attention left unfused (per-row int8 reaches its projections).
+        Step(STUDENT_ONNX_INT8, "onnx", ("onnx_quantize",), (STUDENT_ONNX, last), student_onnx_int8.run,
+             extra=lambda ctx: student_onnx_int8.METHOD),
     ]

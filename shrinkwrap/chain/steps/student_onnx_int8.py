@@ -1,29 +1,41 @@
-"""Student ONNX int8 (dynamic): the weights of the chosen operator types of student-onnx become int8 (per tensor
-or per channel); activations are quantised on the fly at run time. Quantising the embedding lookup matters:
-the embedding matrix is about half of a small encoder's bytes. Which operator holds it depends on the graph:
-Gather in an unfused graph, EmbedLayerNormalization in one fused by the transformer optimizer.
+"""Student ONNX int8 (ships, and is gated): int8 weights, and activations scaled one row (one token of one text)
+at a time, so that every text gets the same scores whatever else is in its batch (shrinkwrap.ml.int8_rows).
+The embedding tables are int8 too (weight-only lookups).
 
-The conversion is shrinkwrap.ml.convert's (shared with `shrinkwrap package`).
+A fused Attention node would quantise its input over the whole batch, so the last fp32 student is exported again
+and fused without attention: its query, key and value projections stay MatMuls, which per-row int8 reaches. That
+graph is proven against PyTorch as student-onnx's is (export.parity_tolerance; export.optimize applies).
+The conversions are shrinkwrap.ml.convert's and shrinkwrap.ml.int8_rows'.
 """
 from __future__ import annotations
 
 import shutil
+import tempfile
 from pathlib import Path
 
-from shrinkwrap.ml.convert import agreement, int8_summary, quantize_dynamic, vocab_size_of
-from shrinkwrap.serve.rundir import BENCH_FILE, MODEL_FILE, STEP_FILE
+from shrinkwrap.ml.convert import agreement, export_checked, int8_summary, vocab_size_of
+from shrinkwrap.ml.int8_rows import METHOD, quantize_rows
+from shrinkwrap.serve.rundir import BENCH_FILE, MODEL_FILE, STEP_FILE, STUDENT_ONNX_INT8
+
+__all__ = ["METHOD", "run"]  # METHOD: part of this step's fingerprint (the chain reads it here)
 
 
 def run(ctx, src: Path, out: Path) -> dict:
-    cfg = ctx.recipe.onnx_quantize
+    cfg, threads = ctx.recipe.onnx_quantize, ctx.recipe.bench.threads
     tokens = ctx.student_tokens(src)
+    model = ctx.task.load(str(ctx.last_student_dir))
 
-    quantize_dynamic(src / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.int8_operators)
+    with tempfile.TemporaryDirectory(dir=out) as tmp:
+        export = export_checked(model, tokens.encoded["test"], tokens.pad_id, lambda path: None, ctx.recipe.export,
+                                threads, Path(tmp), ctx.task, what=STUDENT_ONNX_INT8, attention=False)
+        rows = quantize_rows(Path(tmp) / MODEL_FILE, out / MODEL_FILE, cfg.per_channel, cfg.int8_operators)
 
     for f in src.iterdir():  # tokenizer and config travel with the model
         if f.is_file() and f.name not in (MODEL_FILE, STEP_FILE, BENCH_FILE):
             shutil.copyfile(f, out / f.name)
-    return {"method": "ONNX Runtime dynamic int8", "per_channel": cfg.per_channel,
-            "int8_operators": list(cfg.int8_operators), **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
-            **agreement(src / MODEL_FILE, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id,
-                        ctx.recipe.bench.threads, ctx.recipe.bench.eval_batch_size, ctx.task)}
+    return {"method": METHOD, "activation_scales": "one per row (token), at run time", "batch_independent": True,
+            "graph": "fused without attention" if export["graph"] == "fused" else "plain",
+            "parity": export["parity"], "per_channel": cfg.per_channel, "int8_operators": list(cfg.int8_operators),
+            **rows, **int8_summary(out / MODEL_FILE, vocab_size_of(out)),
+            **agreement(src / MODEL_FILE, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id, threads,
+                        ctx.recipe.bench.eval_batch_size, ctx.task)}

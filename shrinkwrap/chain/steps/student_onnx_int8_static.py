@@ -29,7 +29,8 @@ def run(ctx, src: Path, out: Path) -> dict:
 
     model.config.save_pretrained(out)
     tokens.tokenizer.save_pretrained(out)
-    return {"method": "ONNX Runtime static int8 (QDQ)", "graph": "plain",
+    return {"method": "ONNX Runtime static int8 (QDQ)", "activation_scales": "calibrated once, fixed",
+            "batch_independent": True, "graph": "plain",
             "per_channel": cfg.per_channel,
             "int8_operators": op_types, "calibration_texts": len(calibration), "calibration": "MinMax",
             "activations": "uint8", "weights": "int8",

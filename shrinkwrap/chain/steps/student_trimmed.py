@@ -17,16 +17,8 @@ import numpy as np
 from shrinkwrap.ml.data import Split
 from shrinkwrap.ml.models import save_model
 from shrinkwrap.ml.train import predict_outputs
-from shrinkwrap.ml.vocab import (
-    changed_share,
-    kind_of,
-    oov_rate,
-    pieces_kept,
-    plain_backend,
-    special_ids,
-    trim_embeddings,
-    trimmed_tokenizer,
-)
+from shrinkwrap.ml.vocab import (changed_share, kind_of, oov_rate, pieces_kept, plain_backend, special_ids,
+                                 trim_embeddings, trimmed_tokenizer)
 from shrinkwrap.serve.batches import encode
 from shrinkwrap.serve.errors import StepFailed
 from shrinkwrap.serve.rundir import STUDENT_TRIMMED
