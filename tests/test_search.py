@@ -215,6 +215,8 @@ def test_teacher_relative_budget_keys_in_gate(tiny_run, tmp_path):
 
     results = load(tiny_run / "results.json")
     teacher, final = results["steps"][0], results["steps"][-1]
+    for row in (teacher, final):  # steady figures: the gate's re-timing of unstable ones is tested on its own
+        row["latency_ms"]["unstable"] = False
     speedup = teacher["latency_ms"]["p95"] / final["latency_ms"]["p95"]
     shrink = teacher["size_bytes"] / final["size_bytes"]
     ok = evaluate(results, BudgetConfig(min_speedup=speedup * 0.99, min_shrink=shrink * 0.99))

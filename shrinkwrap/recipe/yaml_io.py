@@ -69,7 +69,7 @@ def _explain_raw(err: dict, raw: dict, where: str, root: Any, renamed: dict[str,
         return f"{where}: {place}{line} is missing — it is required"
     value = _dig(raw, loc)
     if not loc or isinstance(value, dict):  # a rule across several keys: its message names them
-        return f"{where}: {place + line + ' — ' if loc else ''}{msg}"
+        return f"{where}: {place + ' — ' if loc else ''}{msg}{line}"
     return f"{where}: {place} = {json.dumps(value) if value is not None else 'null'}{line} — {msg}"
 
 
