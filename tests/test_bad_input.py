@@ -142,7 +142,7 @@ def case_unknown_key(tmp, base, data):
 
 def case_unknown_section(tmp, base, data):
     return (_recipe(tmp, base, data, edit=lambda r: r.update(teachr={})), [],
-            ["unknown key teachr", "allowed keys in the top level: name, data, teacher"])
+            ["unknown key teachr", "allowed keys in the top level: name, task, data, teacher"])
 
 
 def case_wrong_type(tmp, base, data):
@@ -391,6 +391,64 @@ def case_set_into_a_value(tmp, base, data):
 def case_set_bad_value(tmp, base, data):
     return (_recipe(tmp, base, data), ["--set", "student.alpha=2"],
             ["(--set student.alpha=2): student.alpha = 2", "less than or equal to 1"])
+
+
+# ---- task: embedding ----
+
+def _embedding(tmp, base, data_path, data: dict | None = None, budget: dict | None = None, pooling: bool = True):
+    """An embedding recipe on the tiny encoder: the teacher used as is (no fine-tuning keys), pooled as said."""
+    def edit(r):
+        r["task"] = "embedding"
+        r["teacher"] = {"base": str(base), "max_length": 32, **({"pooling": "mean", "normalize": True} if pooling else {})}
+        r["data"].pop("label")   # optional for an encoder: read when the default column is there
+        r["data"].update(data or {})
+        if budget:
+            r["budget"] = budget
+    return _recipe(tmp, base, data_path, edit=edit)
+
+
+def _pair_rows(score=lambda i: str(i % 5)) -> bytes:
+    import csv
+    import io
+
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(["text", "text_pair", "score"])
+    w.writerows([(t, ROWS[(i + 1) % len(ROWS)][0], score(i)) for i, (t, _) in enumerate(ROWS)])
+    return buf.getvalue().encode()
+
+
+def case_embedding_knn_limit_without_labels(tmp, base, data):
+    path = _data_file(tmp, "t.csv", b"text\n" + b"\n".join(t.encode() for t, _ in ROWS) + b"\n")
+    return (_embedding(tmp, base, path, budget={"max_knn_accuracy_drop_points": 1}), [],
+            ["budget.max_knn_accuracy_drop_points needs labels", "no 'label' column"])
+
+
+def case_embedding_score_not_numeric(tmp, base, data):
+    path = _data_file(tmp, "t.csv", _pair_rows(lambda i: "high" if i == 3 else str(i % 5)))
+    return (_embedding(tmp, base, path, {"label": None, "text_pair": "text_pair", "score": "score"}), [],
+            [str(path), "1 row has a score that is not a number in column 'score' (data rows 4", "'high'"])
+
+
+def case_embedding_pairs_without_scores(tmp, base, data):
+    path = _data_file(tmp, "t.csv", _pair_rows())
+    return (_embedding(tmp, base, path, {"label": None, "text_pair": "text_pair"}), [],
+            ["data.text_pair = 'text_pair' without data.score with task: embedding"])
+
+
+def case_embedding_with_a_classification_limit(tmp, base, data):
+    return (_embedding(tmp, base, data, budget={"accuracy_drop_points": 1}), [],
+            ["budget.accuracy_drop_points is not a limit of task: embedding", "min_neighbour_recall"])
+
+
+def case_embedding_teacher_that_does_not_pool(tmp, base, data):
+    return (_embedding(tmp, base, data, pooling=False), [],
+            ["does not say how it pools", "set teacher.pooling"])
+
+
+def case_classification_with_an_embedding_key(tmp, base, data):
+    return (_with(tmp, base, data, "teacher", "pooling", "mean"), [],
+            ["teacher.pooling = mean but task is classification", "task: embedding"])
 
 
 CASES = {name.removeprefix("case_"): fn for name, fn in sorted(globals().items()) if name.startswith("case_")}

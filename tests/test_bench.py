@@ -7,8 +7,6 @@ import sys
 import warnings
 from pathlib import Path
 
-import numpy as np
-import onnx
 import pytest
 from conftest import ROOT
 

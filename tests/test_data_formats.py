@@ -1,7 +1,5 @@
 """Data: the stratified split's proportions, and the same rows read from CSV, JSONL, Parquet and a
 `datasets` folder; the shipped recipes load and validate."""
-import math
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

@@ -1,6 +1,5 @@
 """Distillation against the published formulas, and the student construction options."""
 import json
-import math
 import shutil
 
 import numpy as np

@@ -5,7 +5,6 @@ import socket
 import subprocess
 import sys
 
-import pytest
 from conftest import tiny_recipe, write_recipe
 
 

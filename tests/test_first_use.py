@@ -10,7 +10,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-import pytest
 
 from conftest import keyword_rows, tiny_recipe, write_csv, write_recipe
 

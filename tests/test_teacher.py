@@ -1,6 +1,5 @@
 """Teacher fine-tuning: degenerate seeds are caught and skipped, tokenizers never mix, pairs encode right."""
 import json
-import shutil
 
 import numpy as np
 import pytest

@@ -2,7 +2,7 @@
 accuracy, macro-F1 and per-class figures (scikit-learn), calibration (ECE, Brier, NLL, the reliability bins) of
 its scores as it gives them, and its predicted class per text, which the results compare with the teacher's.
 
-Every task answers the same name (shrinkwrap.bench.tasks): quality."""
+Every task answers the same name (shrinkwrap.bench.tasks): measure."""
 from __future__ import annotations
 
 import numpy as np
@@ -11,6 +11,11 @@ from shrinkwrap.ml.metrics import classification_metrics
 from shrinkwrap.serve import calibration
 
 NAME = "classification"
+
+
+def measure(outputs: np.ndarray, inputs, outputs_of, temperature: float = 1.0) -> tuple[dict, list]:
+    """quality() of the test texts' logits against inputs.labels."""
+    return quality(outputs, inputs.labels, inputs.n_labels, temperature)
 
 
 def quality(outputs: np.ndarray, labels: np.ndarray, n_labels: int, temperature: float = 1.0) -> tuple[dict, list]:

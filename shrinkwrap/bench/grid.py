@@ -135,10 +135,17 @@ def bench_text(result: dict) -> str:
              f"memory:    peak RSS {mem['peak_rss_bytes'] / mb:.1f} MB, {mem['peak_over_start_bytes'] / mb:.1f} MB "
              f"above the {mem['rss_before_load_bytes'] / mb:.1f} MB before loading ({mem['method']})",
              f"reference: {ref['ms']:.3f} ms median over the run ({ref['workload']})"]
-    if "metrics" in result:
+    if "metrics" in result and "accuracy" in result["metrics"]:
         m, d = result["metrics"], result["data"]
         lines.append(f"accuracy:  {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on {d['rows']} texts of "
                      f"{d['path']} (cut at {d['max_length']} tokens)")
+    elif "metrics" in result:  # a sentence encoder: against --reference's vectors, and the kNN vote with labels
+        m, d = result["metrics"], result["data"]
+        figures = [f"{label} {m[key]:.4f}" for key, label in (
+            ("cosine_to_teacher", "cosine to the reference"), ("neighbour_recall_at_10", "neighbour recall at 10"),
+            ("cross_recall_at_10", "cross recall at 10"), ("knn_accuracy", "kNN accuracy")) if key in m]
+        lines.append(f"vectors:   {', '.join(figures) or 'no figure (give --reference or a label column)'} on "
+                     f"{d['rows']} texts of {d['path']} (cut at {d['max_length']} tokens)")
     p = result["protocol"]
     machine = result["machine"]
     versions = ", ".join(f"{k} {v}" for k, v in machine["versions"].items())

@@ -8,7 +8,7 @@ from __future__ import annotations
 import gc
 import itertools
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Callable, Optional
 
 import numpy as np
@@ -27,13 +27,20 @@ from shrinkwrap.serve.errors import UserError
 @dataclass
 class Inputs:
     """What a loaded target is fed: token ids of texts to time (None: synthetic ids), and the
-    labelled test set the accuracy pass runs over (None: latency and size only)."""
+    test set the quality pass runs over (None: latency and size only)."""
     timing: Optional[list[dict]] = None
     pad_id: int = 0
     test: Optional[list[dict]] = None
     labels: Optional[np.ndarray] = None
     n_labels: int = 0
     about: Optional[dict] = None       # what the test set was, recorded with the result
+    # task: embedding — the teacher's vectors of the test texts; the training texts with their labels (the probe);
+    # each test text's pair partner with the pair's score (Spearman)
+    reference: Optional[np.ndarray] = None
+    self_reference: bool = True        # no `reference`: the outputs are their own (the teacher's row of a run)
+    train: Optional[tuple[list[dict], np.ndarray]] = None
+    pairs: Optional[tuple[list[dict], np.ndarray]] = None
+    keep_outputs: bool = False         # the result keeps the test outputs (under "test_outputs": not JSON)
 
 
 def _time_point(target: Target, point: Point, batches: list[dict], cfg, reference: Reference) -> dict:
@@ -87,11 +94,18 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
             # A batch-dependent graph answers a text differently in different batches: its accuracy is measured
             # as a user who sends one text at a time gets it; any other graph answers alike in any batch.
             size = 1 if target.batch_dependent else cfg.eval_batch_size
-            log(f"accuracy over {len(inputs.test)} texts")
-            outputs = all_outputs(target.outputs, inputs.test, inputs.pad_id, inputs.n_labels, size)
-            result["metrics"], result["predictions"] = of_target(target).quality(
-                outputs, inputs.labels, inputs.n_labels, target.temperature)
+            log(f"quality over {len(inputs.test)} texts")
+            run = target.outputs
+
+            def outputs_of(examples):  # the target's outputs on other texts (an encoder's training split)
+                return all_outputs(run, examples, inputs.pad_id, None, size)
+
+            outputs = outputs_of(inputs.test)
+            result["metrics"], result["predictions"] = of_target(target).measure(outputs, inputs, outputs_of,
+                                                                                 target.temperature)
             result["accuracy_batch_size"] = size
+            if inputs.keep_outputs:
+                result["test_outputs"] = outputs
         rows = []
         for point, batches in plan:
             log(f"timing batch {point.batch_size} × {point.sequence_length} tokens")
@@ -111,10 +125,12 @@ def bench_target(path, cfg, points: list[Point], inputs_for: Callable[[Target], 
     return result
 
 
-def measure(path, test: list[dict], labels: np.ndarray, n_labels: int, timing: list[dict], pad_id: int, cfg) -> dict:
-    """The per-step benchmark of the runner: the test split's accuracy and one latency point."""
-    inputs = Inputs(timing=timing, pad_id=pad_id, test=test, labels=labels, n_labels=n_labels)
-    r = bench_target(path, cfg, [Point(cfg.batch_size, cfg.sequence_length)], lambda target: inputs)
+def measure(path, inputs: Inputs, cfg) -> dict:
+    """The per-step benchmark of the runner: the test split's quality and one latency point. Its `test_outputs`
+    (the target's outputs on the test texts) are for the runner to keep beside it."""
+    r = bench_target(path, cfg, [Point(cfg.batch_size, cfg.sequence_length)],
+                     lambda target: replace(inputs, keep_outputs=True))
     return {"format": r["format"], "metrics": r["metrics"], "latency_ms": r["latency"][0],
             "size_bytes": r["size_bytes"], "load_seconds": round(r["load_seconds"], 3),
-            "memory": r["memory"], "reference": r["reference"], "predictions": r["predictions"]}
+            "memory": r["memory"], "reference": r["reference"], "predictions": r["predictions"],
+            "test_outputs": r["test_outputs"]}

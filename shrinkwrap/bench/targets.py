@@ -13,6 +13,7 @@ import numpy as np
 
 from shrinkwrap.serve.artifact import is_artifact
 from shrinkwrap.serve.classification import labels_of_config
+from shrinkwrap.serve.embedding import POOLING_FILE, SENTENCE_OUTPUT
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import CONFIG_FILE, INT8_WEIGHTS, MODEL_FILE, TOKENIZER_FILE, read_json_or_none
 
@@ -32,6 +33,7 @@ class Target:
     # Operators that scale activations over the whole batch (shrinkwrap.serve.quantization): with any, a text's
     # outputs depend on its batch companions, so the accuracy pass feeds such a graph one text at a time.
     batch_dependent: tuple[str, ...] = ()
+    task: str = "classification"                # what its outputs are (shrinkwrap.bench.tasks): or "embedding"
 
     @property
     def size_bytes(self) -> int:
@@ -124,15 +126,14 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
     require_train(f"{folder}: a PyTorch model folder")
     import torch
     import transformers.models.auto.modeling_auto  # noqa: F401  (imported before `ready`, see load_target)
-    from transformers import AutoConfig
 
     from shrinkwrap.ml.int8 import load_int8
     from shrinkwrap.ml.models import model_inputs, to_torch
-    from shrinkwrap.ml.tasks import of_config
+    from shrinkwrap.ml.tasks import of_folder
 
     torch.set_num_threads(threads)
     ready()
-    task = of_config(AutoConfig.from_pretrained(folder))
+    task = of_folder(folder)
     if (folder / INT8_WEIGHTS).exists():
         model, files = load_int8(folder), [folder / INT8_WEIGHTS]
     else:
@@ -146,8 +147,8 @@ def _pytorch(folder: Path, threads: int, ready: Callable[[], None]) -> Target:
 
     return Target("pytorch", folder, files, outputs, names, tokenizer_dir=folder,
                   extra={"vocab_size": getattr(model.config, "vocab_size", None)},
-                  label_names=labels_of_config(model.config.to_dict()),
-                  max_length=getattr(model.config, "max_position_embeddings", None))
+                  label_names=labels_of_config(model.config.to_dict()) if task.NAME == "classification" else None,
+                  max_length=getattr(model.config, "max_position_embeddings", None), task=task.NAME)
 
 
 def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:
@@ -170,11 +171,14 @@ def _onnx(path: Path, threads: int, ready: Callable[[], None], spin: bool = True
     config = read_json_or_none(path.parent / CONFIG_FILE)
     config = config if isinstance(config, dict) else {}
     outputs = sess.get_outputs()
-    has_head = len(outputs[0].shape) == 2   # [batch, classes]; an encoder gives [batch, tokens, hidden]
+    # a sentence encoder's graph ends in its pooled vector (shrinkwrap.ml.embedding.finish_graph)
+    encoder = outputs[0].name == SENTENCE_OUTPUT or (path.parent / POOLING_FILE).is_file()
+    has_head = len(outputs[0].shape) == 2 and not encoder   # [batch, classes]; token vectors are [batch, tokens, hidden]
     return Target("onnx", path, files, lambda b: run_outputs(sess, b), [i.name for i in sess.get_inputs()],
                   tokenizer_dir=tok, extra={"session": sess},
                   label_names=labels_of_config(config) if has_head else None,
-                  max_length=config.get("max_position_embeddings"), batch_dependent=dependent)
+                  max_length=config.get("max_position_embeddings"), batch_dependent=dependent,
+                  task="embedding" if encoder else "classification")
 
 
 def _artifact(folder: Path, threads: int, ready: Callable[[], None], spin: bool = True) -> Target:
@@ -188,6 +192,7 @@ def _artifact(folder: Path, threads: int, ready: Callable[[], None], spin: bool 
     target.label_names = info.get("labels")
     target.max_length = manifest["tokenizer"]["max_length"]
     target.extra["manifest"] = manifest
+    target.task = tasks.of_manifest(manifest).NAME
     target.temperature = info.get("temperature", 1.0)
     return target
 

@@ -44,7 +44,8 @@ class Context:
     quiet: bool = False
     teacher_hidden_size: int = 0
     transfer: Optional["TransferTexts"] = None   # checked at start; its table is built on first use
-    teacher_weights: Optional[str] = None        # with teacher.trained: the fingerprint of the weights used as is
+    teacher_weights: Optional[str] = None        # a teacher used as is: the fingerprint of its weights
+    pooling: Optional[dict] = None               # task: embedding — how the teacher pools {"pooling", "normalize"}
     tokenizer_fps: dict[str, str] = field(default_factory=dict)   # step -> fingerprint of its output's tokenizer
     _tokens: dict[tuple, Tokens] = field(default_factory=dict)
     _augmented: Optional[tuple] = None

@@ -8,6 +8,7 @@ that looks finished. The artifact and the reports are built from the results aft
 from __future__ import annotations
 
 import time
+from dataclasses import replace
 from pathlib import Path
 from typing import Optional
 
@@ -19,12 +20,13 @@ from shrinkwrap.chain.steps import Step, chain
 from shrinkwrap.ml import distributed
 from shrinkwrap.ml.checkpoint import close_scratch, open_scratch
 from shrinkwrap.outputs import results as results_file
+from shrinkwrap.outputs.tasks import TASKS as OUTPUT_TASKS
 from shrinkwrap.recipe.schema import Recipe
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.fingerprint import sha256_json, tokenizer_fingerprint_of_file
-from shrinkwrap.serve.rundir import (BENCH_FILE, RESULTS_FILE, STEP_FILE, TEACHER, TOKENIZER_FILE, is_disk_full,
-                                     make_run_dir, read_json_or_none, record_trained_length, scratch, scratch_path,
-                                     write_error, write_json_atomic)
+from shrinkwrap.serve.rundir import (BENCH_FILE, RESULTS_FILE, STEP_FILE, TEACHER, TEST_OUTPUTS_FILE, TOKENIZER_FILE,
+                                     is_disk_full, make_run_dir, read_json_or_none, record_trained_length, scratch,
+                                     scratch_path, write_error, write_json_atomic, write_npy_atomic)
 
 # Bumped when a step's code changes what it produces, so old outputs are not reused by mistake.
 CODE_VERSION = 1
@@ -132,17 +134,44 @@ def bench_step(ctx: Context, step: Step) -> dict:
     read = min(length, b.sequence_length)
     key = sha256_json({"bench": b.model_dump(mode="json"), "step": ctx.fingerprints[step.name], "tokens_read": read})
     cached = read_json_or_none(folder / BENCH_FILE)
-    if cached and cached.get("key") == key:
+    if cached and cached.get("key") == key and (folder / TEST_OUTPUTS_FILE).is_file():
         return cached["result"]
-    tokens = ctx.tokens_of(folder, length)
-    timing, _ = ctx.timing_examples(folder, length)
     ctx.log(f"[{step.name}] benchmarking (batch {b.batch_size} × {b.sequence_length} tokens"
             + (f", the first {read} read" if read < b.sequence_length else "") + f", {b.threads} threads)")
-    result = measure(folder, tokens.encoded["test"], ctx.data.test.labels, len(ctx.data.label_names), timing,
-                     tokens.pad_id, b.model_copy(update={"sequence_length": read}))
+    result = measure(folder, bench_inputs(ctx, step, folder, length), b.model_copy(update={"sequence_length": read}))
     result["latency_ms"].update(sequence_length=b.sequence_length, tokens_read=read)
+    write_npy_atomic(folder / TEST_OUTPUTS_FILE, result.pop("test_outputs"))
     write_json_atomic(folder / BENCH_FILE, {"key": key, "result": result})
     return result
+
+
+def bench_inputs(ctx: Context, step: Step, folder: Path, length: int):
+    """What a step's output is measured on: the test texts read with its tokenizer, cut where it stops reading,
+    their labels, and the timing batch; for an embedding run also the teacher's test vectors (its benchmark's,
+    kept beside it), the training texts (the probe) and each test text's pair partner with the pair's score."""
+    from shrinkwrap.bench.measure import Inputs
+
+    tokens = ctx.tokens_of(folder, length)
+    timing, _ = ctx.timing_examples(folder, length)
+    inputs = Inputs(timing=timing, pad_id=tokens.pad_id, test=tokens.encoded["test"], labels=ctx.data.test.labels,
+                    n_labels=len(ctx.data.label_names))
+    if ctx.recipe.task != "embedding":
+        return inputs
+    import numpy as np
+
+    from shrinkwrap.ml.data import Split
+    from shrinkwrap.serve.batches import encode
+
+    test = ctx.data.test
+    reference = None if step.name == TEACHER else np.load(ctx.teacher_dir / TEST_OUTPUTS_FILE)
+    train = (tokens.encoded["train"], ctx.data.train.labels) if ctx.data.has_labels else None
+    pairs = None
+    if test.second is not None and test.scores is not None:
+        partners = encode(tokens.tokenizer, Split(texts=test.second, labels=test.labels), length,
+                          truncation=ctx.recipe.data.truncation)
+        pairs = (partners, test.scores)
+    return replace(inputs, labels=test.labels if ctx.data.has_labels else None, reference=reference, train=train,
+                   pairs=pairs)
 
 
 def calibrate_step(ctx: Context, step: Step, results: dict) -> dict:
@@ -177,6 +206,27 @@ def calibrate_step(ctx: Context, step: Step, results: dict) -> dict:
             "ece": scaled["ece"], "ece_raw": raw["ece"], "brier": scaled["brier"], "nll": scaled["nll"],
             "reliability": scaled["reliability"],
             "coverage": calibration.coverage_curve(calibration.softmax(test, t), y_test)}
+
+
+def validate_vectors(ctx: Context, step: Step) -> tuple[dict, list]:
+    """The shipped step's quality on the validation split for an embedding run (what a search ranks candidates by):
+    its validation vectors against the teacher's, with the labels where there are some."""
+    from shrinkwrap.bench.embedding import quality
+    from shrinkwrap.bench.targets import load_target
+    from shrinkwrap.serve.batches import all_outputs
+
+    def vectors(name: str):
+        folder = ctx.outputs[name]
+        tokens = ctx.tokens_of(folder, ctx.length_of(name))
+        target = load_target(folder, ctx.recipe.bench.threads)
+        try:
+            size = 1 if target.batch_dependent else ctx.recipe.bench.eval_batch_size
+            return all_outputs(target.outputs, tokens.encoded["validation"], tokens.pad_id, None, size)
+        finally:
+            target.release()
+
+    labels = ctx.data.validation.labels if ctx.data.has_labels else None
+    return quality(vectors(step.name), labels, vectors(TEACHER))
 
 
 def time_together(ctx: Context, results: dict) -> None:
@@ -230,15 +280,15 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
     results = results_file.header(recipe, describe(), ctx.data, ctx.data_fingerprint, ctx.tokenizer_fp)
     if distributed.is_main():
         _record_overlaps(ctx, results)
-    teacher = None
+    teacher, outputs_task = None, OUTPUT_TASKS[recipe.task]
     for step in steps:
         record = run_step(ctx, step, finished_only=retime)
         if distributed.is_main():  # benchmarks and results are the main process's
             folder = ctx.outputs[step.name]
             write_timing_batch(folder, ctx.timing_batch(folder, ctx.length_of(step.name)))
             if measure:
-                row = results_file.step_row(step.name, folder, record, bench_step(ctx, step), teacher,
-                                            ctx.data.test.labels)
+                row = results_file.step_row(step.name, folder, record, bench_step(ctx, step))
+                row.update(outputs_task.compare(row, teacher, ctx.data.test.labels))  # against the teacher's row
                 teacher = teacher or row
             else:
                 row = results_file.unmeasured_row(step.name, step.format, folder, record, size_of(folder))
@@ -250,7 +300,11 @@ def run_chain(recipe: Recipe, out: Path, quiet: bool = False, until: Optional[st
         time_together(ctx, results)
         write_json_atomic(out / RESULTS_FILE, results)
         last = next(s for s in steps if s.name == results_file.final_row(results)["name"])
-        if last.format == "onnx":
+        if last.format == "onnx" and ctx.recipe.task == "embedding":
+            if len(ctx.data.validation) > 1:
+                results_file.set_validation(results, *validate_vectors(ctx, last))
+                write_json_atomic(out / RESULTS_FILE, results)
+        elif last.format == "onnx":
             results_file.set_calibration(results, calibrate_step(ctx, last, results))
             write_json_atomic(out / RESULTS_FILE, results)
     return results if distributed.is_main() else {}

@@ -28,7 +28,10 @@ def add(sub) -> None:
     p.add_argument("--text", default="text", help="text column of --data (default: text)")
     p.add_argument("--text-pair", metavar="COLUMN", help="second text column of --data, for pair inputs")
     p.add_argument("--label", default="label", help="label column of --data, holding the model's label names "
-                   "(default: label)")
+                   "(default: label; optional for a sentence encoder, whose kNN accuracy it enables)")
+    p.add_argument("--reference", metavar="MODEL",
+                   help="a sentence encoder (e.g. the teacher) whose vectors of the --data texts the target's are "
+                        "compared with: cosine, neighbour and cross recall at 10")
     p.add_argument("--max-length", type=positive_int, metavar="N",
                    help="cut --data texts at N tokens (default: the most the model takes, else 512)")
     p.add_argument("--batch-size", type=positive_int, nargs="+", default=[default["batch_size"]], metavar="N",
@@ -79,11 +82,18 @@ def main(args) -> int:
         require_train("bench --data")
     if "real" in args.sequence_length and not args.data:
         raise UserError("--sequence-length real needs --data: real lengths come from real texts")
-    table = read_table(Path(args.data), args.text, args.label, args.text_pair) if args.data else None
+    if args.reference and not args.data:
+        raise UserError("--reference needs --data: the two encoders are compared on its texts")
+    table = read_table(Path(args.data), args.text, args.label, args.text_pair, label_optional=True) if args.data else None
+    reference = None
+    if args.reference:
+        from shrinkwrap.bench.testset import reference_vectors
+
+        reference = reference_vectors(Path(args.reference), table, args.max_length, args.threads)
     cfg = BenchConfig(threads=args.threads, warmup=args.warmup, warm_seconds=args.warm_seconds, repeats=args.repeats,
                       timed_seconds=args.timed_seconds, eval_batch_size=args.eval_batch_size)
     result = bench_target(args.target, cfg, grid(args.batch_size, args.sequence_length),
-                          inputs_for(table, args.max_length), logger("bench", args.json))
+                          inputs_for(table, args.max_length, reference), logger("bench", args.json))
     result.pop("predictions", None)
     result["machine"] = describe()
     if result.get("batch_dependent"):

@@ -71,8 +71,12 @@ def main(args) -> int:
                   f"source, {m['speedup_p95']:.2f}× faster, timed together"
                   + (" — unstable: the machine was busy" if m["latency_ms"]["unstable"]
                      or m["source_latency_ms"]["unstable"] else "") if m and "speedup_p95" in m else "")
-        print(f"artifact: {out}" + (f"  (accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f} on "
-                                    f"{m['texts']} texts{timing})" if m else ""))
+        if m and "accuracy" in m:
+            figures = f"accuracy {m['accuracy']:.4f}, macro-F1 {m['macro_f1']:.4f}"
+        elif m:  # a sentence encoder: its vectors against the model it was made from
+            figures = f"cosine {m['cosine_to_teacher']:.4f} to {m['reference']}'s vectors, neighbour recall at 10 " \
+                      f"{m['neighbour_recall_at_10']:.3f}"
+        print(f"artifact: {out}" + (f"  ({figures} on {m['texts']} texts{timing})" if m else ""))
     if caution:
         print_cautions([caution])
     return EXIT_OK

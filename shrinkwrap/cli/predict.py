@@ -7,10 +7,12 @@ from shrinkwrap.cli.options import add_trusted_key, count, positive_int, probabi
 
 
 def add(sub) -> None:
-    p = sub.add_parser("predict", help="classify texts with an artifact (needs only onnxruntime, tokenizers, numpy)",
-                       description="Print one JSON line {\"text\", \"label\", \"scores\"} per text. Every "
-                                   "file of ARTIFACT is checked against its manifest.json first; a modified or "
-                                   "incomplete artifact is refused (exit 2).")
+    p = sub.add_parser("predict", help="classify or embed texts with an artifact (needs only onnxruntime, tokenizers, "
+                                       "numpy)",
+                       description="Print one JSON line per text: {\"text\", \"label\", \"scores\"} from a "
+                                   "classifier, {\"text\", \"embedding\"} from a sentence encoder. Every file of "
+                                   "ARTIFACT is checked against its manifest.json first; a modified or incomplete "
+                                   "artifact is refused (exit 2).")
     p.add_argument("artifact", metavar="ARTIFACT",
                    help="artifact folder (run_dir/artifact, or one written by `shrinkwrap package`)")
     p.add_argument("texts", nargs="*", metavar="TEXT",
@@ -30,6 +32,9 @@ def add(sub) -> None:
     p.add_argument("--id", metavar="NAME",
                    help="key (JSON lines) or column (CSV/TSV) of --file holding each row's id: printed first in its "
                         "output line, under that name, so that results join back to the rows")
+    p.add_argument("--npy", metavar="FILE",
+                   help="a sentence encoder's artifact: write its vectors to FILE (.npy) as one float32 matrix, row k "
+                        "for input k, instead of JSON lines")
     add_trusted_key(p)
     p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
                    help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
@@ -45,4 +50,4 @@ def main(args) -> int:
     return run_predict(args.artifact, args.texts, args.file, args.batch_size or DEFAULT_BATCH_SIZE, args.threads,
                        trusted_key=args.trusted_key and Path(args.trusted_key),
                        min_confidence=args.min_confidence, text_col=args.text, pair_col=args.text_pair,
-                       id_col=args.id)
+                       id_col=args.id, npy=args.npy)

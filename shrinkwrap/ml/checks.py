@@ -43,28 +43,31 @@ def check_student(recipe: Recipe, config, where: str) -> None:
                         f"on texts cut there")
     if recipe.student.init == "teacher_layers":
         from shrinkwrap.ml.models import evenly_spaced
+        from shrinkwrap.ml.tasks import of_recipe
 
         kept = layers or (evenly_spaced(n_layers, recipe.student.num_layers) if n_layers else None)
-        check_layers(config, where, kept, "student.layers" if layers else "student.num_layers")
+        check_layers(config, where, kept, "student.layers" if layers else "student.num_layers", of_recipe(recipe))
     from shrinkwrap.ml.pruning import check_prune
 
     check_prune(recipe, config, where)
 
 
-def check_layers(config, where: str, kept: list[int] | None = None, key: str = "student.layers") -> None:
+def check_layers(config, where: str, kept: list[int] | None = None, key: str = "student.layers",
+                 task=None) -> None:
     """Refuses, before anything runs, student.init: teacher_layers for a family whose layers cannot be
     kept one by one: no list of layers found, or one layer's weights shared across depth (ALBERT); and `kept`
     layers (the recipe's `key` chose them) that a student could not hold with their own attention kinds
-    (ModernBERT's global and sliding-window layers)."""
+    (ModernBERT's global and sliding-window layers). `task`: the recipe's (shrinkwrap.ml.tasks; default
+    classification)."""
+    from shrinkwrap.ml import classification
     from shrinkwrap.ml.models import encoder_layers, evenly_spaced, global_attention_period
-    from shrinkwrap.ml.tasks import of_config
 
     family = getattr(config, "model_type", "?")
     if getattr(config, "num_hidden_groups", None) is not None:  # ALBERT: every layer runs the same weights
         raise UserError(f"{where}: student.init = teacher_layers — a {family!r} model shares one layer's weights "
                         f"across its depth, so step student cannot keep some of its layers; use init: pretrained or config")
     try:
-        model = of_config(config).empty(config)
+        model = (task or classification).empty(config)
     except (ValueError, KeyError):
         return  # not a classifier family transformers knows: loading the teacher reports it
     try:

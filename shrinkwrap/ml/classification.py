@@ -20,6 +20,9 @@ from shrinkwrap.ml.metrics import classification_metrics
 NAME = "classification"
 EXPORT_TASK = "text-classification"   # the exporter's name for the graph: inputs -> logits [batch, classes]
 OUTPUTS = "logits"                    # what the outputs are called (the teacher-outputs cache's file name)
+FINE_TUNES = True                     # the teacher is fine-tuned (unless teacher.trained gives one)
+PARITY_KEY = "max_abs_logit_diff"     # an export's largest gap to PyTorch, which export.parity_tolerance bounds
+IMPORTANCE_LOSS = "cross-entropy"     # what pruning's importance is the gradient of
 
 
 def _auto():
@@ -28,7 +31,8 @@ def _auto():
     return AutoModelForSequenceClassification
 
 
-def load(path: str, label_names: Optional[list[str]] = None, trust_remote_code: bool = False) -> nn.Module:
+def load(path: str, label_names: Optional[list[str]] = None, trust_remote_code: bool = False,
+         pooling: Optional[dict] = None) -> nn.Module:
     """A sequence classifier from a transformers folder (safetensors weights only). With `label_names`, the head
     is made for those classes: a fresh head on an encoder (the library's notice that it is newly initialised is
     expected, so it is not shown)."""
@@ -48,9 +52,38 @@ def load(path: str, label_names: Optional[list[str]] = None, trust_remote_code: 
     return model.eval()
 
 
-def from_config(config) -> nn.Module:
+def from_config(config, like: Optional[nn.Module] = None) -> nn.Module:
     """A classifier of `config` with random weights."""
     return _auto().from_config(config)
+
+
+def skeleton(folder: Path, config) -> nn.Module:
+    """A model shaped as the one saved in `folder` (random weights, for a state dict to fill)."""
+    return from_config(config)
+
+
+def save_config(model: nn.Module, folder: Path) -> None:
+    """What a folder needs beside its weights or graph for the model to be read back: its config."""
+    model.config.save_pretrained(folder)
+
+
+def exportable(model: nn.Module) -> nn.Module:
+    """What the ONNX exporter is given: the classifier itself (its graph ends in the logits)."""
+    return model
+
+
+def finish_graph(path: Path, model: nn.Module) -> None:
+    """Nothing to add: the exported graph ends in the logits."""
+
+
+def default_metric(recipe) -> str:
+    """The validation figure a student stops on when the recipe leaves it out: the teacher's."""
+    return recipe.teacher.metric
+
+
+def importance_targets(ctx, n: int) -> np.ndarray:
+    """What pruning ranks heads and neurons against on the first `n` training texts: their true classes."""
+    return ctx.data.train.labels[:n]
 
 
 def empty(config) -> nn.Module:

@@ -39,16 +39,20 @@ _INT8_OPS = ("MatMulInteger", "QAttention", "QEmbedLayerNormalization", "Quantiz
 # ---- fp32 export -----------------------------------------------------------------------------------------
 
 
-def export_onnx(model, folder: Path, opset: int, task: ModuleType = classification) -> Path:
-    """folder/model.onnx: the model's fp32 graph (the exporter's graph for the task: a classifier's ends in its
-    logits), checked by onnx.checker."""
+def export_onnx(model, folder: Path, opset: int, task: ModuleType = classification, finish: bool = True) -> Path:
+    """folder/model.onnx: the model's fp32 graph (the exporter's graph for the task, finished as the task says: a
+    classifier's ends in its logits, a sentence encoder's in its pooled vector), checked by onnx.checker.
+    finish=False: the exporter's graph alone (export_checked finishes it after fusion)."""
     from optimum.exporters.onnx import onnx_export_from_model
 
     # The exporter loads the tokenizer beside the model's weights too, hence transformers' notice there.
     with warnings.catch_warnings(), library_notices_silenced(MISTRAL_REGEX_NOTICE):
         warnings.simplefilter("ignore")
-        onnx_export_from_model(model, str(folder), task=task.EXPORT_TASK, opset=opset, do_validation=False)
+        onnx_export_from_model(task.exportable(model), str(folder), task=task.EXPORT_TASK, opset=opset,
+                               do_validation=False)
     path = folder / MODEL_FILE
+    if finish:
+        task.finish_graph(path, model)
     onnx.checker.check_model(str(path), full_check=True)
     return path
 
@@ -95,22 +99,24 @@ def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callabl
     torch_logits = predict_outputs(model, examples, pad_id, task=task)
     with tempfile.TemporaryDirectory(dir=out) as tmp:
         tmp = Path(tmp)
-        plain = export_onnx(model, tmp, cfg.opset, task)
+        plain = export_onnx(model, tmp, cfg.opset, task, finish=False)
         candidates = {"plain": plain}
-        if cfg.optimize != "never":
+        if cfg.optimize != "never":  # the exporter's graph is fused, then finished (the optimizer knows its nodes)
             candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx", attention)
+        for path in candidates.values():
+            task.finish_graph(path, model)
         report = {}
         for name, path in candidates.items():
             report[name] = parity(path, torch_logits, examples, pad_id, threads, task)
             report[name]["p50_ms"] = time_graph(path)
-            report[name]["passes"] = (report[name]["max_abs_logit_diff"] <= cfg.parity_tolerance
+            report[name]["passes"] = (report[name][task.PARITY_KEY] <= cfg.parity_tolerance
                                       and report[name].get("label_mismatches", 0) == 0)
         shippable = ["fused"] if cfg.optimize == "always" else list(candidates)
         passing = [n for n in shippable if report[n]["passes"]]
         if not passing:
-            worst = min((report[n] for n in shippable), key=lambda r: r["max_abs_logit_diff"])
-            raise StepFailed(f"{what}: ONNX logits differ from PyTorch by {worst['max_abs_logit_diff']:.2e} "
-                             f"(allowed {cfg.parity_tolerance:g}) with {worst['label_mismatches']} different labels"
+            worst = min((report[n] for n in shippable), key=lambda r: r[task.PARITY_KEY])
+            raise StepFailed(f"{what}: ONNX {task.OUTPUTS} differ from PyTorch's by {_gap(worst, task)}"
+                             + f" (allowed {cfg.parity_tolerance:g})"
                              + (" (export.optimize = always: the fused graph)" if cfg.optimize == "always" else ""))
         chosen = "fused" if "fused" in passing else "plain"
         fusion = fusion_summary(candidates["fused"], model.config) if "fused" in candidates else None
@@ -121,9 +127,17 @@ def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callabl
         info["fusion"] = fusion
     if chosen == "plain":
         info["why_plain"] = ("export.optimize = never" if cfg.optimize == "never" else
-                             f"the fused graph's logits differ from PyTorch by {report['fused']['max_abs_logit_diff']:.2e} "
-                             f"(allowed {cfg.parity_tolerance:g}) with {report['fused']['label_mismatches']} different labels")
+                             f"the fused graph's {task.OUTPUTS} differ from PyTorch's by "
+                             f"{_gap(report['fused'], task)} (allowed {cfg.parity_tolerance:g})")
     return info
+
+
+def _gap(report: dict, task: ModuleType) -> str:
+    """A parity report in words: the largest gap, and how many texts got another label (a classifier)."""
+    words = f"{report[task.PARITY_KEY]:.2e}"
+    if "label_mismatches" in report:
+        words += f" with {report['label_mismatches']} different labels"
+    return words
 
 
 _FUSED_OPS = ("Attention", "MultiHeadAttention", "EmbedLayerNormalization", "SkipLayerNormalization",

@@ -26,8 +26,11 @@ MAX_CHARS = 100_000
 @dataclass
 class Split:
     texts: list[str]
-    labels: np.ndarray                     # int64 class ids
+    labels: np.ndarray                     # int64 class ids; -1 where the data has no labels (task: embedding)
     pairs: Optional[list[str]] = None      # second text of each pair, with data.text_pair
+    scores: Optional[np.ndarray] = None    # how alike each pair's texts are, with data.score (task: embedding)
+    # task: embedding — each pair's second text, embedded on its own (Dataset.pairs_apart): `texts` alone are encoded
+    second: Optional[list[str]] = None
 
     def __len__(self) -> int:
         return len(self.texts)
@@ -41,11 +44,28 @@ class Dataset:
     label_names: list[str]
     notes: list[str] = field(default_factory=list)   # warnings the user should see in the report
 
+    @property
+    def has_labels(self) -> bool:
+        return bool(self.label_names)
+
+    def pairs_apart(self) -> "Dataset":
+        """The same data with each pair's second text set apart (Split.second), so that every text is encoded, and
+        embedded, on its own (task: embedding)."""
+        def apart(s: Split) -> Split:
+            return Split(texts=s.texts, labels=s.labels, scores=s.scores, second=s.pairs)
+
+        return Dataset(**{s: apart(getattr(self, s)) for s in SPLITS}, label_names=self.label_names, notes=self.notes)
+
     def fingerprint(self) -> str:
-        return sha256_json({
-            s: {"texts": getattr(self, s).texts, "pairs": getattr(self, s).pairs,
-                "labels": getattr(self, s).labels.tolist()} for s in SPLITS
-        } | {"label_names": self.label_names})
+        def split(s: Split) -> dict:
+            out = {"texts": s.texts, "pairs": s.pairs if s.second is None else s.second, "labels": s.labels.tolist()}
+            return out | ({"scores": s.scores.tolist()} if s.scores is not None else {})
+        return sha256_json({s: split(getattr(self, s)) for s in SPLITS} | {"label_names": self.label_names})
+
+
+def table_columns(path: Path, where: str) -> list[str]:
+    """The column names of a data file, read as a recipe's data is (a one-line UserError otherwise)."""
+    return [str(c) for c in _read_table(path, where).columns]
 
 
 def _read_table(path: Path, where: str):
@@ -99,19 +119,32 @@ def _read_splits(path: Path, where: str) -> dict:
 
 
 def _clean(df, cfg: DataConfig, where: str, notes: list[str], keys: Optional[dict[str, str]] = None):
-    """`keys` names the text, label and pair settings in errors (default: the recipe's data.* keys)."""
-    keys = keys or {"text": "data.text = ", "label": "data.label = ", "text_pair": "data.text_pair = "}
-    for key, col in (("text", cfg.text), ("label", cfg.label), ("text_pair", cfg.text_pair)):
+    """`keys` names the text, label, pair and score settings in errors (default: the recipe's data.* keys). A
+    config whose label is None reads no labels."""
+    keys = keys or {"text": "data.text = ", "label": "data.label = ", "text_pair": "data.text_pair = ",
+                    "score": "data.score = "}
+    for key, col in (("text", cfg.text), ("label", cfg.label), ("text_pair", cfg.text_pair), ("score", cfg.score)):
         if col is not None and col not in df.columns:
             raise UserError(f"{where}: {keys[key]}{col!r} is not a column — columns: {', '.join(map(str, df.columns))}")
     if len(df) == 0:
         raise UserError(f"{where}: the dataset is empty")
-    labels = df[cfg.label]
-    missing = labels.isna() | labels.astype(str).str.strip().eq("")
-    if missing.any():
-        rows = np.flatnonzero(missing.to_numpy())
-        raise UserError(f"{where}: {_count(rows)} no label (empty, null or NaN) in column {cfg.label!r} "
-                        f"(data rows {_rows(rows)}; row 1 is the first after the header)")
+    if cfg.label is not None:
+        labels = df[cfg.label]
+        missing = labels.isna() | labels.astype(str).str.strip().eq("")
+        if missing.any():
+            rows = np.flatnonzero(missing.to_numpy())
+            raise UserError(f"{where}: {_count(rows)} no label (empty, null or NaN) in column {cfg.label!r} "
+                            f"(data rows {_rows(rows)}; row 1 is the first after the header)")
+    if cfg.score is not None:
+        import pandas as pd
+
+        scores = pd.to_numeric(df[cfg.score], errors="coerce")
+        bad = scores.isna() | ~np.isfinite(scores.to_numpy(dtype=np.float64, na_value=np.nan))
+        if bad.any():
+            rows = np.flatnonzero(bad.to_numpy())
+            raise UserError(f"{where}: {_count(rows)} a score that is not a number in column {cfg.score!r} "
+                            f"(data rows {_rows(rows)}, e.g. {df[cfg.score].iloc[rows[0]]!r})")
+        df = df.assign(**{cfg.score: scores.astype(np.float64)})
     text_cols = [cfg.text] + ([cfg.text_pair] if cfg.text_pair else [])
     empty_any = np.zeros(len(df), dtype=bool)
     for col in text_cols:  # positions in the file as read, before anything is dropped
@@ -136,7 +169,8 @@ def _clean(df, cfg: DataConfig, where: str, notes: list[str], keys: Optional[dic
             notes.append(note)
             warnings.warn(f"{where}: {note}")
             df.loc[long, col] = df.loc[long, col].str.slice(0, MAX_CHARS)
-    df[cfg.label] = df[cfg.label].astype(str).str.strip()
+    if cfg.label is not None:
+        df[cfg.label] = df[cfg.label].astype(str).str.strip()
     return df
 
 
@@ -162,18 +196,28 @@ def read_labelled_table(cfg: DataConfig, path: Path, where: str, keys: Optional[
 def _to_split(df, cfg: DataConfig, index: dict[str, int]) -> Split:
     return Split(
         texts=df[cfg.text].tolist(),
-        labels=np.array([index[v] for v in df[cfg.label]], dtype=np.int64),
+        labels=(np.array([index[v] for v in df[cfg.label]], dtype=np.int64) if cfg.label is not None
+                else np.full(len(df), -1, dtype=np.int64)),
         pairs=df[cfg.text_pair].tolist() if cfg.text_pair else None,
+        scores=df[cfg.score].to_numpy(dtype=np.float64) if cfg.score else None,
     )
 
 
-def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
-    """Reads, checks and splits the data named by the recipe. Raises UserError with one line on bad data."""
+def load_dataset(cfg: DataConfig, path: Path, where: str, labels_optional: bool = False) -> Dataset:
+    """Reads, checks and splits the data named by the recipe. Raises UserError with one line on bad data. With
+    `labels_optional` (task: embedding), a table without the default label column is read without labels (split
+    at random rather than stratified); a label column named in the recipe must still be there."""
     from sklearn.model_selection import train_test_split
 
     notes: list[str] = []
-    frames = {k: _clean(v, cfg, f"{where} [{k}]" if k != "all" else where, notes)
-              for k, v in _read_splits(path, where).items()}
+    read = _read_splits(path, where)
+    if labels_optional and "label" not in cfg.model_fields_set and all(cfg.label not in f.columns for f in read.values()):
+        cfg = cfg.model_copy(update={"label": None})
+        notes.append(f"no {DataConfig.model_fields['label'].default!r} column: the data is read without labels, so "
+                     f"kNN and probe accuracy are not measured (set data.label to a label column to have them)")
+    frames = {k: _clean(v, cfg, f"{where} [{k}]" if k != "all" else where, notes) for k, v in read.items()}
+    if cfg.label is None:
+        return _unlabelled(frames, cfg, where, notes)
 
     if "all" in frames:
         df = frames.pop("all")
@@ -213,6 +257,34 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
     label_names = sorted(train_labels)
     index = {name: i for i, name in enumerate(label_names)}
 
+    _note_duplicates(frames, cfg, where, notes)
+    return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
+
+
+def _unlabelled(frames: dict, cfg: DataConfig, where: str, notes: list[str]) -> Dataset:
+    """Splits without labels: at random (nothing to stratify by), with the same shares and seed."""
+    from sklearn.model_selection import train_test_split
+
+    if "all" in frames:
+        df = frames.pop("all")
+        n_test, n_val = math.ceil(cfg.test_size * len(df)), math.ceil(cfg.validation_size * len(df))
+        if len(df) - n_test - n_val < 2 or n_test < 2 or n_val < 1:
+            raise UserError(f"{where}: {len(df)} rows are too few to split into train, validation and test")
+        rest, test = train_test_split(df, test_size=n_test, random_state=cfg.seed)
+        train, val = train_test_split(rest, test_size=n_val, random_state=cfg.seed)
+        frames = {"train": train, "validation": val, "test": test}
+    else:
+        train = frames["train"]
+        for name, share in (("test", cfg.test_size), ("validation", cfg.validation_size)):
+            if name not in frames:
+                train, frames[name] = train_test_split(train, test_size=share, random_state=cfg.seed)
+        frames["train"] = train
+    _note_duplicates(frames, cfg, where, notes)
+    return Dataset(**{s: _to_split(frames[s], cfg, {}) for s in SPLITS}, label_names=[], notes=notes)
+
+
+def _note_duplicates(frames: dict, cfg: DataConfig, where: str, notes: list[str]) -> None:
+    """A note (and a warning) when test rows also appear in train: the test figures are optimistic."""
     key = [cfg.text] + ([cfg.text_pair] if cfg.text_pair else [])
     seen = set(map(tuple, frames["train"][key].to_numpy().tolist()))
     dup = sum(tuple(r) in seen for r in frames["test"][key].to_numpy().tolist())
@@ -220,9 +292,6 @@ def load_dataset(cfg: DataConfig, path: Path, where: str) -> Dataset:
         note = f"{dup} test rows also appear in train (same text): test accuracy is optimistic"
         notes.append(note)
         warnings.warn(f"{where}: {note}")
-
-    return Dataset(**{s: _to_split(frames[s], cfg, index) for s in SPLITS}, label_names=label_names, notes=notes)
-
 
 
 def in_label_order(data: Dataset, names: list[str]) -> Dataset:
@@ -233,6 +302,6 @@ def in_label_order(data: Dataset, names: list[str]) -> Dataset:
     new_id = np.array([names.index(n) for n in data.label_names], dtype=np.int64)
 
     def renumber(split: Split) -> Split:
-        return Split(texts=split.texts, labels=new_id[split.labels], pairs=split.pairs)
+        return Split(texts=split.texts, labels=new_id[split.labels], pairs=split.pairs, scores=split.scores)
 
     return Dataset(**{s: renumber(getattr(data, s)) for s in SPLITS}, label_names=list(names), notes=data.notes)

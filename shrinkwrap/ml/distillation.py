@@ -43,7 +43,8 @@ def build_student(ctx, teacher) -> tuple[nn.Module, list[int]]:
         layers = cfg.layers or evenly_spaced(n_teacher, cfg.num_layers)
         return keep_layers(teacher, layers), layers
     if cfg.init == "pretrained":
-        student = ctx.task.load(str(ctx.recipe.resolve(cfg.base)), label_names=ctx.data.label_names)
+        student = ctx.task.load(str(ctx.recipe.resolve(cfg.base)), label_names=ctx.data.label_names,
+                                pooling=ctx.pooling)
     else:
         warnings.warn("student.init: config starts from random weights: it needs far more data than a student "
                       "made of the teacher's layers (consider student.transfer_path)")
@@ -53,7 +54,7 @@ def build_student(ctx, teacher) -> tuple[nn.Module, list[int]]:
         config.num_attention_heads = cfg.num_attention_heads or config.num_attention_heads
         config.intermediate_size = cfg.intermediate_size or 4 * config.hidden_size
         torch.manual_seed(cfg.seed)
-        student = ctx.task.from_config(config)
+        student = ctx.task.from_config(config, like=teacher)
     return student, evenly_spaced(n_teacher, num_layers(student))
 
 
@@ -219,4 +220,4 @@ def student_settings(ctx, epochs: int, learning_rate: float) -> TrainSettings:
     """Training settings of a distillation run: the student section's, with its own epochs and rate."""
     # collapse_share 1 = off: a student that mimics a teacher is not judged against the majority class
     return settings_from(ctx.recipe.student, ctx.recipe.train, epochs=epochs, learning_rate=learning_rate,
-                         metric=ctx.recipe.student.metric or ctx.recipe.teacher.metric, collapse_share=1.0)
+                         metric=ctx.recipe.student.metric or ctx.task.default_metric(ctx.recipe), collapse_share=1.0)

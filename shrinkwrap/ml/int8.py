@@ -11,7 +11,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from shrinkwrap.ml.tasks import of_config
+from shrinkwrap.ml.tasks import of_folder, of_model
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import INT8_WEIGHTS
 
@@ -29,7 +29,7 @@ def quantize_dynamic_int8(model: nn.Module) -> nn.Module:
 def save_int8(model_fp32: nn.Module, tokenizer, folder: Path) -> None:
     """An int8 folder: the config, the tokenizer and the quantised state dict (loaded weights-only)."""
     qmodel = quantize_dynamic_int8(copy.deepcopy(model_fp32).eval())
-    model_fp32.config.save_pretrained(folder)
+    of_model(model_fp32).save_config(model_fp32, folder)
     tokenizer.save_pretrained(folder)
     torch.save(qmodel.state_dict(), folder / INT8_WEIGHTS)
     (folder / INT8_INFO).write_text(json.dumps({"method": "torch dynamic int8", "modules": ["Linear"],
@@ -41,7 +41,7 @@ def load_int8(folder: str | Path) -> nn.Module:
 
     folder = Path(folder)
     config = AutoConfig.from_pretrained(folder)
-    model = of_config(config).from_config(config).eval()
+    model = of_folder(folder).skeleton(folder, config).eval()
     qmodel = quantize_dynamic_int8(model)
     # weights_only: a state dict holds tensors and nothing that could run code when unpickled.
     try:

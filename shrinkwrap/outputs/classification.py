@@ -5,14 +5,17 @@ Every task answers the same names (shrinkwrap.outputs.tasks): NAME, BUDGET_KEYS,
 CAUTION_RULE, NO_CAUTION, per_class_cautions, step_rows, per_class_rows, class_changes."""
 from __future__ import annotations
 
+from typing import Optional
+
 from shrinkwrap.outputs.checks import Check, check, field, num, number
 from shrinkwrap.outputs.results import final_row, label_names, recipe_dump, rows_after_teacher, steps_of, teacher_row
+from shrinkwrap.recipe.budget import TASK_QUALITY_KEYS
 from shrinkwrap.serve.errors import UserError
 
 NAME = "classification"
+ARTICLE = "a"
 # The budget keys that judge a classifier's quality (the latency, size and regression ones judge every task).
-BUDGET_KEYS = ("accuracy_drop_points", "accuracy_drop_upper_bound", "min_accuracy", "max_class_recall_drop_points",
-               "min_agreement", "max_ece")
+BUDGET_KEYS = TASK_QUALITY_KEYS[NAME]
 
 # A class is called out when it lost more of its texts than the average loss explains: a one-sided
 # binomial test of its lost texts among its test texts, at the rate the accuracy fell overall (at least
@@ -24,6 +27,34 @@ CLASS_MIN_LOST = 2
 CLASS_RULE = (f"a class is named when it lost at least {CLASS_MIN_LOST} texts and more than the average drop explains "
               f"(one-sided binomial test at the overall loss rate, at least {CLASS_FLOOR_RATE:.0%}, p < {CLASS_P})")
 NO_CAUTION = f"No class lost more recall than the average accuracy drop explains ({CLASS_RULE})."
+
+
+def compare(row: dict, teacher: Optional[dict], test_labels) -> dict:
+    """What results.json stores for a step against the `teacher` row (None: this is the teacher's): its accuracy
+    drop in points, the share of test texts given the teacher's label, and the paired interval and test of the
+    drop (shrinkwrap.bench.stats)."""
+    import numpy as np
+
+    ref = teacher or row
+    out = {"accuracy_drop": round((ref["metrics"]["accuracy"] - row["metrics"]["accuracy"]) * 100, 4),
+           "agreement_with_teacher": float(np.mean(np.array(ref["predictions"]) == np.array(row["predictions"])))}
+    if teacher is not None:
+        from shrinkwrap.bench.stats import compare_to_reference
+
+        out.update(compare_to_reference(test_labels, ref["predictions"], row["predictions"]))
+    return out
+
+
+def artifact_metrics(step: dict) -> dict:
+    """The shipped step's quality as an artifact's manifest records it."""
+    m = {"accuracy": step["metrics"]["accuracy"], "macro_f1": step["metrics"]["macro_f1"],
+         "per_class": step["metrics"]["per_class"], "accuracy_drop_vs_teacher_points": step["accuracy_drop"],
+         "agreement_with_teacher": step["agreement_with_teacher"]}
+    if "accuracy_drop_ci95" in step:
+        m["accuracy_drop_ci95"] = step["accuracy_drop_ci95"]
+    if "agreement_with_fp32" in step["info"]:
+        m["agreement_with_fp32"] = step["info"]["agreement_with_fp32"]
+    return m
 
 
 def class_changes(results: dict, step: dict) -> list[dict]:
@@ -72,6 +103,13 @@ def per_class_cautions(results: dict) -> list[str]:
 
 
 CAUTION_RULE = CLASS_RULE
+CAUTION_RULE_TITLE = "Rule for classes"
+QUALITY, QUALITY_LABEL = "accuracy", "accuracy"   # the figure a step's quality is plotted and ranked by
+
+
+def headline(row: dict) -> str:
+    """A step's quality in a few words (the report's "What shipped")."""
+    return f"accuracy {row['metrics']['accuracy']:.4f}"
 
 
 def cautions(results: dict, budget=None) -> list[tuple[str, str]]:
@@ -181,6 +219,34 @@ def step_rows(results: dict) -> tuple[list[str], list[list[str]], str]:
                     f"the test texts, seed {boot['seed']}); McNemar p is the exact two-sided test on the texts where "
                     f"exactly one of the step and `{ref['name']}` is right.")
     return header, rows, caption
+
+
+def detail_sections(results: dict) -> list[tuple]:
+    """The report's sections of a classifier beside its step table (shrinkwrap.outputs.report: (title, parts)): recall
+    per class and step, the per-class precision / recall change of the shipped step, calibration per step, and the
+    shipped step's accuracy against coverage when abstaining below each threshold."""
+    final = final_row(results)
+    out: list[tuple] = [("Per-class recall (test split)", [("table", *per_class_rows(results), 1)])]
+    if len(steps_of(results)) > 1:
+        rows = [[c["class"], str(c["support"]), f"{c['precision']:.3f} ({c['precision_change_points']:+.1f})",
+                 f"{c['recall']:.3f} ({c['recall_change_points']:+.1f})",
+                 f"lost {c['lost']} of {c['support']}" if c["lost"] >= 0 else f"gained {-c['lost']} of {c['support']}"]
+                for c in class_changes(results, final)]
+        out.append((f"Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)",
+                    [("table", ["class", "support", "precision", "recall", "texts"], rows, 1)]))
+    rows = [[s["name"], *(f"{s['metrics'][k]:.4f}" if k in s["metrics"] else "—" for k in ("ece", "brier", "nll"))]
+            for s in steps_of(results)]
+    parts: list[tuple] = [("table", ["step", "ECE", "Brier", "NLL"], rows, 1)]
+    cal = final.get("calibration")
+    if cal:
+        parts += [("p", f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: "
+                        f"test ECE {cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top "
+                        f"score (`predict --min-confidence`):"),
+                  ("table", ["threshold", "coverage", "accuracy"],
+                   [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
+                     "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0)]
+    out.append(("Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", parts))
+    return out
 
 
 def per_class_rows(results: dict) -> tuple[list[str], list[list[str]]]:

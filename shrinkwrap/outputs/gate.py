@@ -115,8 +115,12 @@ def speed_size_checks(budget: BudgetConfig, p95_ms: float, size_bytes: float, te
     return out
 
 
-def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str, base_where: str) -> list[Check]:
+def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str, base_where: str,
+                       task=None) -> list[Check]:
+    """Limits against the baseline's same step; accuracy_points judges the task's quality figure (a classifier's
+    accuracy, an encoder's neighbour recall at 10)."""
     out, tol = [], budget.regression
+    quality, label = (task.QUALITY, task.QUALITY_LABEL) if task is not None else ("accuracy", "accuracy")
     if tol.p95_percent is not None:
         shape = _latency_shape(step, budget, where)
         base_lat, lat = field(base, "latency_ms", base_where), step["latency_ms"]
@@ -134,9 +138,9 @@ def _regression_checks(step: dict, base: dict, budget: BudgetConfig, where: str,
         out.append(check("regression.p95_percent", f"{what} {num(now)} vs baseline {num(then)}, {shape}",
                           tol.p95_percent, rise, "<=", " %"))
     if tol.accuracy_points is not None:
-        now = number(step, "metrics.accuracy", where)
-        then = number(base, "metrics.accuracy", base_where)
-        out.append(check("regression.accuracy_points", f"accuracy {num(now)} vs baseline {num(then)}",
+        now = number(step, f"metrics.{quality}", where)
+        then = number(base, f"metrics.{quality}", base_where)
+        out.append(check("regression.accuracy_points", f"{label} {num(now)} vs baseline {num(then)}",
                           tol.accuracy_points, (then - now) * 100, "<=", " points"))
     if tol.size_percent is not None:
         now = number(step, "size_bytes", where)
@@ -226,8 +230,8 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
     task = of_results(results)
     foreign = [k for k in budget.quality_keys() if k not in task.BUDGET_KEYS]
     if foreign:
-        raise UserError(f"{budget_source}: {', '.join(foreign)} — not a limit of a {task.NAME} run; its quality limits "
-                        f"are {', '.join(task.BUDGET_KEYS)}")
+        raise UserError(f"{budget_source}: {', '.join(foreign)} — not a limit of {task.ARTICLE} {task.NAME} run; its "
+                        f"quality limits are {', '.join(task.BUDGET_KEYS)}")
     checks += task.quality_checks(results, step, budget, where)
     tol = budget.regression
     tolerances = {k: v for k, v in tol.model_dump().items() if v is not None}
@@ -235,8 +239,11 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
         if not tolerances:
             raise UserError(f"--baseline {baseline_where}: the budget sets no regression tolerance — add e.g. "
                             f"--tolerance p95_percent=10 --tolerance accuracy_points=1")
+        if of_results(baseline).NAME != task.NAME:
+            raise UserError(f"--baseline {baseline_where}: a {of_results(baseline).NAME} run, this one is a {task.NAME} "
+                            f"run — they cannot be compared")
         checks += _regression_checks(step, pick_step(baseline, step["name"], baseline_where), budget, where,
-                                     baseline_where)
+                                     baseline_where, task)
     else:
         checks += [Check(f"regression.{k}", "no --baseline to compare with", v, None, "<=",
                          " points" if k.endswith("points") else " %", SKIP) for k, v in tolerances.items()]

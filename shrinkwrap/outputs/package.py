@@ -76,10 +76,11 @@ def _graph_facts(path: Path, vocab_size: Optional[int]) -> dict:
             "embeddings_int8": summary["embeddings_int8"]}
 
 
-def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, describe: dict,
+def write_artifact(out: Path, src: Path, labels: Optional[list[str]], tokenizer: dict, describe: dict,
                    card: Callable[[dict], str], measure: Optional[Callable[[object], dict]] = None,
                    threads: int = 2) -> Path:
-    """Builds the artifact at `out` from `src` (a folder with model.onnx and the tokenizer files).
+    """Builds the artifact at `out` from `src` (a folder with model.onnx and the tokenizer files); `labels`: a
+    classifier's class names (None: a sentence encoder, whose `describe` holds its `vector`).
     `tokenizer` holds max_length, pad_id and text_pair; `describe` the rest of the manifest (source,
     metrics, recipe fingerprint, model facts); `measure(artifact) -> metrics` runs on the loaded
     artifact before it is sealed; `card(manifest)` renders README.md."""
@@ -94,14 +95,15 @@ def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, des
         for name in (MODEL_FILE, CONFIG_FILE, *TOKENIZER_FILES):
             if (src / name).is_file():
                 shutil.copyfile(src / name, tmp / name)
-        (tmp / LABELS_FILE).write_text(json.dumps(labels, ensure_ascii=False, indent=1), encoding="utf-8")
+        if labels is not None:
+            (tmp / LABELS_FILE).write_text(json.dumps(labels, ensure_ascii=False, indent=1), encoding="utf-8")
         manifest = {
             "format": FORMAT, "format_version": FORMAT_VERSION, "task": describe.get("task", tasks.DEFAULT),
             "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             "model": describe.get("model", {}) | _graph_facts(tmp / MODEL_FILE, vocab_size_of(tmp)),
             "tokenizer": {"file": TOKENIZER_FILE, "fingerprint": tokenizer_fingerprint_of_file(tmp / TOKENIZER_FILE),
                           **tokenizer},
-            "labels": {"file": LABELS_FILE, "count": len(labels)},
+            **({"labels": {"file": LABELS_FILE, "count": len(labels)}} if labels is not None else {}),
             **{k: v for k, v in describe.items() if k != "model"},
             "versions": library_versions(),
         }
@@ -116,21 +118,14 @@ def write_artifact(out: Path, src: Path, labels: list[str], tokenizer: dict, des
 # ---- from a finished run ---------------------------------------------------------------------------------
 
 
-def _step_metrics(step: dict, test_texts: int) -> dict:
+def _step_metrics(results: dict, step: dict) -> dict:
+    """The manifest's metrics: the shipped step's quality as its task gives it (outputs.tasks: artifact_metrics),
+    latency and size."""
     lat = step["latency_ms"]
-    m = {"step": step["name"], "split": "test", "texts": test_texts,
-         "accuracy": step["metrics"]["accuracy"], "macro_f1": step["metrics"]["macro_f1"],
-         "per_class": step["metrics"]["per_class"],
-         "accuracy_drop_vs_teacher_points": step["accuracy_drop"],
-         "agreement_with_teacher": step["agreement_with_teacher"],
-         "latency_ms": {k: lat[k] for k in ("p50", "p95", "batch_size", "sequence_length", "threads") if k in lat},
-         "size_bytes": step["size_bytes"]}
-    for key in ("accuracy_drop_ci95",):
-        if key in step:
-            m[key] = step[key]
-    if "agreement_with_fp32" in step["info"]:
-        m["agreement_with_fp32"] = step["info"]["agreement_with_fp32"]
-    return m
+    return {"step": step["name"], "split": "test", "texts": len(test_labels(results)),
+            **of_results(results).artifact_metrics(step),
+            "latency_ms": {k: lat[k] for k in ("p50", "p95", "batch_size", "sequence_length", "threads") if k in lat},
+            "size_bytes": step["size_bytes"]}
 
 
 def _sources(results: dict, row: dict) -> list[tuple[dict, dict]]:
@@ -158,23 +153,40 @@ def from_run(results: dict, run_dir: Path) -> Path:
     model = {"graph": graph, "layers": config.get("num_hidden_layers"), "hidden_size": config.get("hidden_size")}
     if "method" in final["info"]:
         model["quantization"] = {k: v for k, v in final["info"].items() if not k.startswith("agreement")}
+    task = of_results(results)
     describe = {
-        "task": of_results(results).NAME,
+        "task": task.NAME,
         # Names and fingerprints only: an artifact ships, and the build machine's paths are nobody's business.
         "source": {"kind": "run", "run": Path(run_dir).resolve().name, "step": final["name"],
                    "step_fingerprint": record.get("fingerprint")},
         "model": model,
-        "metrics": _step_metrics(final, len(test_labels(results))),
+        "metrics": _step_metrics(results, final),
         "recipe_fingerprint": recipe_fingerprint(results),
         **({"calibration": {k: final["calibration"][k] for k in ("temperature", "fitted_on", "ece", "ece_raw")}}
            if "calibration" in final else {}),
         "data": {"path": Path(data["path"]).name, "sizes": data["sizes"], "fingerprint": data["fingerprint"]},
     }
-    # The artifact is a student: it reads what the student was trained to read.
+    labels = label_names(results)
+    if task.NAME == "embedding":  # a sentence encoder: its vector, and no classes (labels only measured it)
+        describe["vector"] = vector_of(src, config)
+        labels = None
+    # The artifact is a student: it reads what the student was trained to read (an encoder: one text at a time).
     tokenizer = {"max_length": recipe.student_length, "pad_id": _pad_id(src),
-                 "text_pair": recipe.data.text_pair is not None, "truncation": recipe.data.truncation}
-    return write_artifact(run_dir / ARTIFACT_DIR, src, label_names(results), tokenizer, describe,
+                 "text_pair": recipe.data.text_pair is not None and labels is not None,
+                 "truncation": recipe.data.truncation}
+    return write_artifact(run_dir / ARTIFACT_DIR, src, labels, tokenizer, describe,
                           lambda manifest: run_card(manifest, results))
+
+
+def vector_of(folder: Path, config: dict) -> dict:
+    """The manifest's `vector` of a sentence encoder's graph: its size, pooling and normalisation."""
+    from shrinkwrap.serve.embedding import SENTENCE_OUTPUT, read_pooling
+
+    how = read_pooling(folder)
+    if how is None:
+        raise UserError(f"{folder}: no pooling.json — the step does not say how its encoder pools")
+    return {"size": config.get("hidden_size"), "pooling": how["pooling"], "normalize": how["normalize"],
+            "output": SENTENCE_OUTPUT}
 
 
 def _pad_id(folder: Path) -> int:
@@ -225,7 +237,11 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
         raise UserError(f"{model_dir}: no config.json — expected a transformers classification folder or a "
                         f"shrinkwrap step folder with {MODEL_FILE}")
     config = read_json(model_dir / CONFIG_FILE, "model config")
-    labels = _labels_of(config, model_dir)
+    from shrinkwrap.serve.embedding import is_encoder_folder
+
+    encoder = is_encoder_folder(model_dir)   # a sentence encoder: its pooling config (or a step's pooling.json)
+    labels = None if encoder else _labels_of(config, model_dir)
+    vector = vector_of(model_dir, config) if encoder else None
     if not (model_dir / TOKENIZER_FILE).is_file():
         raise UserError(f"{model_dir}: no {TOKENIZER_FILE} — the artifact needs the (fast) tokenizer the model "
                         f"was trained with")
@@ -242,12 +258,15 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
     if data is not None:
         from shrinkwrap.bench.testset import label_ids, read_table
 
-        table = read_table(Path(data), text, label)
-        label_ids(table, labels)  # every label one of the model's, before anything is converted
+        table = read_table(Path(data), text, label, label_optional=encoder)
+        if not encoder:
+            label_ids(table, labels)  # every label one of the model's, before anything is converted
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         describe: dict = {"source": {"kind": "folder", "path": model_dir.resolve().name}, "recipe_fingerprint": None}
+        if encoder:
+            describe.update(task="embedding", vector=vector)
         if (model_dir / MODEL_FILE).is_file():
             src = model_dir
             describe["model"] = {"converted": False}
@@ -257,37 +276,61 @@ def from_folder(model_dir: Path, out: Path, data: Optional[Path] = None, text: s
         if table is not None:
             describe["data"] = {"path": Path(data).name, "rows": len(table.texts),
                                 "fingerprint": sha256_file(Path(data)) if Path(data).is_file() else None,
-                                "caution": data_caution(len(table.texts))}
+                                "caution": data_caution(len(table.texts), encoder)}
         source = None if (model_dir / MODEL_FILE).is_file() else model_dir  # a PyTorch folder: timed beside it
-        measure = None if table is None else (lambda art: _table_metrics(art, table, labels, source, threads, log))
+        if table is None:
+            measure = None
+        elif encoder:
+            measure = lambda art: _vector_metrics(art, table, model_dir, max_length, source, threads, log)  # noqa: E731
+        else:
+            measure = lambda art: _table_metrics(art, table, labels, source, threads, log)  # noqa: E731
         log(f"writing {out}")
         return write_artifact(out, src, labels, {"max_length": max_length, "pad_id": _pad_id(src), "text_pair": False,
                                                    "truncation": "head"},
                               describe, lambda manifest: folder_card(manifest, labels), measure, threads)
 
 
-def data_caution(rows: int) -> str:
-    """`package --data`: what its accuracy is and is not (manifest `data.caution`, the card, stderr)."""
-    return (f"the accuracy is measured on the {rows} rows given with --data; it is not a held-out figure unless "
-            f"those rows were held out from the model's training")
+def _vector_metrics(art, table, model_dir: Path, max_length: int, source: Optional[Path], threads: int, log) -> dict:
+    """`package --data` of a sentence encoder: the artifact's vectors of the table's texts against those of the
+    model it was made from (`model_dir`, read with its own tokenizer), and the kNN vote where the table has labels."""
+    import numpy as np
+
+    from shrinkwrap.bench.embedding import quality
+    from shrinkwrap.bench.testset import reference_vectors
+
+    log(f"the vectors of {len(table.texts)} --data texts against {model_dir}'s")
+    vectors = art.outputs(table.texts)
+    names = sorted(set(table.labels)) if table.labels is not None else []
+    labels = np.array([names.index(v) for v in table.labels]) if names else None
+    m, _ = quality(vectors, labels, reference_vectors(model_dir, table, max_length, threads))
+    m.pop("cosine_deciles")
+    return {"split": "all rows of --data", "reference": model_dir.resolve().name, **m,
+            **_timed_together(art, table, source, threads, log)}
+
+
+def data_caution(rows: int, encoder: bool = False) -> str:
+    """`package --data`: what its figures are and are not (manifest `data.caution`, the card, stderr)."""
+    what = "the figures are measured" if encoder else "the accuracy is measured"
+    held = "they are not held-out figures" if encoder else "it is not a held-out figure"
+    return (f"{what} on the {rows} rows given with --data; {held} unless those rows were held out from the "
+            f"model's training")
 
 
 def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per_channel: bool, export_cfg,
              threads: int, log) -> dict:
     """tmp/model.onnx (+ config and tokenizer) from a transformers folder; returns the manifest's model facts."""
-    from transformers import AutoConfig
 
     from shrinkwrap.bench.latency import graph_p50_ms
     from shrinkwrap.ml.convert import agreement, export_checked
     from shrinkwrap.ml.int8_rows import METHOD, quantize_rows
     from shrinkwrap.ml.data import Split
     from shrinkwrap.ml.models import load_tokenizer
-    from shrinkwrap.ml.tasks import of_config
+    from shrinkwrap.ml.tasks import of_folder
     from shrinkwrap.recipe.schema import BenchConfig, OnnxQuantizeConfig
     from shrinkwrap.serve.batches import collate, encode
 
     log(f"loading {model_dir}")
-    task = of_config(AutoConfig.from_pretrained(model_dir))
+    task = of_folder(model_dir)
     model = task.load(str(model_dir))
     tokenizer = load_tokenizer(str(model_dir), what=str(model_dir))
     texts = table.texts[:PARITY_TEXTS] if table is not None else PROBE_TEXTS
@@ -316,7 +359,7 @@ def _convert(model_dir: Path, tmp: Path, table, max_length: int, int8: bool, per
                                  DEFAULT_BATCH_SIZE, task))
     else:
         shutil.move(str(export_dir / MODEL_FILE), tmp / MODEL_FILE)
-    model.config.save_pretrained(tmp)
+    task.save_config(model, tmp)
     tokenizer.save_pretrained(tmp)
     return facts
 

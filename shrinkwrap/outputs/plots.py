@@ -1,5 +1,6 @@
-"""The report's plots, as PNG data URIs for report.html: accuracy against latency, size, per-class recall drop,
-reliability diagrams and accuracy against coverage. matplotlib is imported only here, and only when called (the
+"""The report's plots, as PNG data URIs for report.html: quality (a classifier's accuracy, an encoder's neighbour
+recall) against latency, size, per-class recall drop, reliability diagrams and accuracy against coverage, an
+encoder's cosine to the teacher per step. matplotlib is imported only here, and only when called (the
 plain serving install has none; report.py then writes the tables alone)."""
 from __future__ import annotations
 
@@ -22,7 +23,9 @@ def plots(results: dict) -> list[tuple[str, str]]:
     from matplotlib.figure import Figure
 
     from shrinkwrap.outputs.results import label_names, steps_of
+    from shrinkwrap.outputs.tasks import of_results
 
+    task = of_results(results)
     steps = steps_of(results)
     names = [s["name"] for s in steps]
     lat = steps[0]["latency_ms"]
@@ -31,18 +34,19 @@ def plots(results: dict) -> list[tuple[str, str]]:
     fig = Figure(figsize=(7.5, 4.2))
     ax = fig.add_subplot()
     x = [s["latency_ms"]["p95"] for s in steps]
-    y = [s["metrics"]["accuracy"] for s in steps]
+    y = [s["metrics"][task.QUALITY] for s in steps]
     # A legend rather than labels beside the points: steps of similar speed would print over each other.
     for i, (xi, yi, n) in enumerate(zip(x, y, names)):
         ax.plot([xi], [yi], "osD^vP*X"[i % 8], markersize=8, label=n, alpha=0.85)
     ax.set_xscale("log")  # steps differ by factors, not by milliseconds
     ax.set_xlabel(f"p95 latency, ms, log scale (batch {lat['batch_size']} × {lat['sequence_length']} tokens, "
                   f"{lat['threads']} threads)")
-    ax.set_ylabel("accuracy (test split)")
+    ax.set_ylabel(f"{task.QUALITY_LABEL} (test split)")
     ax.set_ylim(max(0.0, min(y) - 0.05), min(1.005, max(y) + 0.03))
     ax.grid(alpha=0.3, which="both")
     ax.legend(fontsize=8, loc="lower right")
-    out.append(("Accuracy against p95 latency, one point per step: up and to the left is better.", png_data_uri(fig)))
+    out.append((f"{task.QUALITY_LABEL[0].upper()}{task.QUALITY_LABEL[1:]} against p95 latency, one point per step: "
+                f"up and to the left is better.", png_data_uri(fig)))
 
     fig = Figure(figsize=(7.5, 0.6 + 0.45 * len(steps)))
     ax = fig.add_subplot()
@@ -55,7 +59,7 @@ def plots(results: dict) -> list[tuple[str, str]]:
     ax.set_xlim(0, max(mb) * 1.15)
     out.append(("Size of each step's output.", png_data_uri(fig)))
 
-    if len(steps) > 1:
+    if len(steps) > 1 and "per_class" in steps[0]["metrics"]:
         import numpy as np
 
         labels = label_names(results)
@@ -75,8 +79,32 @@ def plots(results: dict) -> list[tuple[str, str]]:
         ax.legend(fontsize=8)
         ax.grid(axis="y", alpha=0.3)
         out.append((f"Per-class recall drop against {steps[0]['name']} (above 0 = the class lost recall).", png_data_uri(fig)))
-    out += calibration_plots(results)
+    out += calibration_plots(results) + cosine_plots(results)
     return out
+
+
+def cosine_plots(results: dict) -> list[tuple[str, str]]:
+    """An encoder's cosine to the teacher over the test texts, per step: its percentiles (0, 5, 10, ..., 100)."""
+    from matplotlib.figure import Figure
+
+    from shrinkwrap.outputs.results import rows_after_teacher
+
+    rows = [s for s in rows_after_teacher(results) if s["metrics"].get("cosine_deciles")]
+    if not rows:
+        return []
+    fig = Figure(figsize=(7.5, 4.2))
+    ax = fig.add_subplot()
+    for i, s in enumerate(rows):
+        m = s["metrics"]
+        x = [0, 5, *range(10, 101, 10)]
+        y = [m["cosine_deciles"][0], m["cosine_to_teacher_p5"], *m["cosine_deciles"][1:]]
+        ax.plot(x, y, "-" + "osD^vP*X"[i % 8], markersize=5, label=s["name"])
+    ax.set_xlabel("percentile of the test texts")
+    ax.set_ylabel("cosine to the teacher's vector")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8, loc="lower right")
+    return [("Cosine of each step's vector to the teacher's vector of the same test text, by percentile: the left "
+             "end is the tail the mean hides.", png_data_uri(fig))]
 
 
 def calibration_plots(results: dict) -> list[tuple[str, str]]:

@@ -12,7 +12,7 @@ from pathlib import Path
 from shrinkwrap.outputs.findings import cautions_by_step, concern_release
 from shrinkwrap.outputs.html import inline, page, table
 from shrinkwrap.outputs.results import (artifact_path, data_info, data_notes, final_row, label_names, load, machine_of,
-                                        recipe_dump, run_name, steps_of, teacher_row, verdict_of)
+                                        recipe_dump, run_name, steps_of, verdict_of)
 from shrinkwrap.outputs.tasks import of_results
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import REPORT_FILE, REPORT_HTML_FILE, check_out_dir, write_text_atomic
@@ -40,9 +40,10 @@ def setup_lines(results: dict) -> list[str]:
     machine = machine_of(results)
     data = data_info(results)
     sizes = data["sizes"]
+    n = len(label_names(results))
     return [
         f"data: {data['path']} — train {sizes['train']}, validation {sizes['validation']}, "
-        f"test {sizes['test']}; {len(label_names(results))} classes",
+        f"test {sizes['test']}; " + (f"{n} classes" if n else "no labels"),
         f"machine: {machine['cpu']}, {machine['cores_available']} cores available",
         "versions: " + ", ".join(f"{k} {val}" for k, val in machine["versions"].items()),
         "step wall time (s): " + ", ".join(f"{s['name']} {s['seconds']:.0f}" for s in steps_of(results)),
@@ -57,21 +58,28 @@ def batch_dependent(step: dict) -> bool:
 
 
 def int8_agreement_lines(results: dict) -> list[str]:
-    """One line per int8 ONNX step: how often it predicts what the fp32 graph it came from predicts, and whether
-    its answers depend on the batch."""
-    return [f"- `{s['name']}` predicts the same label as the fp32 ONNX graph it was quantised from on "
-            f"{s['agreement_with_fp32'] * 100:.1f} % of the test texts."
-            + (" **Batch-dependent**: it scales activations over the whole batch, so a text's scores change with "
-               "the texts batched with it; its accuracy is each test text classified alone." if batch_dependent(s)
+    """One line per int8 ONNX step: how close it stays to the fp32 graph it came from (a classifier: how often it
+    predicts the same label; an encoder: the mean cosine of their vectors), and whether its answers depend on the
+    batch."""
+    def close(s: dict) -> str:
+        if "agreement_with_fp32" in s:
+            return f"predicts the same label as the fp32 ONNX graph it was quantised from on " \
+                   f"{s['agreement_with_fp32'] * 100:.1f} % of the test texts."
+        return (f"gives vectors at a mean cosine of {s['cosine_with_fp32']:.4f} to the fp32 ONNX graph's it was "
+                f"quantised from (lowest {s['info'].get('min_cosine_with_fp32', float('nan')):.4f}) on the test texts.")
+
+    return [f"- `{s['name']}` " + close(s)
+            + (" **Batch-dependent**: it scales activations over the whole batch, so a text's outputs change with "
+               "the texts batched with it; its figures are each test text taken alone." if batch_dependent(s)
                else "")
-            for s in steps_of(results) if "agreement_with_fp32" in s]
+            for s in steps_of(results) if "agreement_with_fp32" in s or "cosine_with_fp32" in s]
 
 
 def _what_shipped(results: dict) -> Section:
     final, path = final_row(results), artifact_path(results)
     lat = final["latency_ms"]
     if path:
-        shipped = (f"Step `{final['name']}` ships as `{path}`: accuracy {final['metrics']['accuracy']:.4f}, p95 "
+        shipped = (f"Step `{final['name']}` ships as `{path}`: {of_results(results).headline(final)}, p95 "
                    f"{lat['p95']:.2f} ms (timed with the teacher and every step in interleaved rounds"
                    + (", unstable: the machine was busy" if lat.get("unstable") else "") + f"), "
                    f"{final['size_bytes'] / 1e6:.1f} MB.")
@@ -98,33 +106,6 @@ def _what_shipped(results: dict) -> Section:
     return "What shipped", parts
 
 
-def _calibration(results: dict) -> list[Section]:
-    """Per-class precision / recall change of the shipped step, calibration per step, and the shipped step's
-    accuracy against coverage when abstaining below each threshold."""
-    final = final_row(results)
-    out: list[Section] = []
-    if len(steps_of(results)) > 1:
-        rows = [[c["class"], str(c["support"]), f"{c['precision']:.3f} ({c['precision_change_points']:+.1f})",
-                 f"{c['recall']:.3f} ({c['recall_change_points']:+.1f})",
-                 f"lost {c['lost']} of {c['support']}" if c["lost"] >= 0 else f"gained {-c['lost']} of {c['support']}"]
-                for c in of_results(results).class_changes(results, final)]
-        out.append((f"Per-class change of `{final['name']}` vs `{teacher_row(results)['name']}` (points)",
-                    [("table", ["class", "support", "precision", "recall", "texts"], rows, 1)]))
-    rows = [[s["name"], *(f"{s['metrics'][k]:.4f}" if k in s["metrics"] else "—" for k in ("ece", "brier", "nll"))]
-            for s in steps_of(results)]
-    parts: list[tuple] = [("table", ["step", "ECE", "Brier", "NLL"], rows, 1)]
-    cal = final.get("calibration")
-    if cal:
-        parts += [("p", f"Temperature {cal['temperature']:.3f} fitted on {cal['validation_texts']} validation texts: "
-                        f"test ECE {cal['ece_raw']:.4f} → {cal['ece']:.4f}. Abstaining below each calibrated top "
-                        f"score (`predict --min-confidence`):"),
-                  ("table", ["threshold", "coverage", "accuracy"],
-                   [[f"{c['threshold']:.2f}", f"{c['coverage']:.3f}",
-                     "—" if c["accuracy"] is None else f"{c['accuracy']:.4f}"] for c in cal["coverage"]], 0)]
-    out.append(("Calibration (test split, 15-bin ECE, multi-class Brier, NLL)", parts))
-    return out
-
-
 def _measured_only_cautions(results: dict) -> Section:
     task = of_results(results)
     by_step: dict[str, list[str]] = {}
@@ -136,18 +117,18 @@ def _measured_only_cautions(results: dict) -> Section:
         parts += [("p", f"`{step}` (measured only, it does not ship):"), ("list", lines)]
     if not parts:
         parts.append(("p", "None."))
-    return "Cautions about steps only measured", parts + [("p", f"Rule for classes: {task.CAUTION_RULE}.")]
+    return "Cautions about steps only measured", parts + [("p", f"{task.CAUTION_RULE_TITLE}: {task.CAUTION_RULE}.")]
 
 
 def sections(results: dict) -> list[Section]:
-    header, rows, caption = of_results(results).step_rows(results)
+    task = of_results(results)
+    header, rows, caption = task.step_rows(results)
     agreement = int8_agreement_lines(results)
     out: list[Section] = [
         _what_shipped(results),
         ("Steps", [("table", header, rows, 2), ("p", caption)]
          + ([("list", [line[2:] for line in agreement])] if agreement else [])),
-        ("Per-class recall (test split)", [("table", *of_results(results).per_class_rows(results), 1)]),
-        *_calibration(results),
+        *task.detail_sections(results),   # a classifier's per-class and calibration tables; an encoder's cosines
         _measured_only_cautions(results),
     ]
     if data_notes(results):

@@ -45,25 +45,17 @@ def header(recipe, machine: dict, data, data_fingerprint: str, tokenizer_fp: str
     }
 
 
-def step_row(name: str, path: Path, record: dict, bench: dict, teacher: Optional[dict], test_labels) -> dict:
-    """A step's row: its benchmark, what it did (`record`, its step.json) and how it compares with the
-    `teacher` row (None: this is the teacher's row)."""
-    import numpy as np
-
+def step_row(name: str, path: Path, record: dict, bench: dict) -> dict:
+    """A step's row: its benchmark and what it did (`record`, its step.json). The runner adds how it compares with
+    the teacher's row, as the run's task compares (outputs.tasks: compare)."""
     row = {"name": name, "format": bench["format"], "path": str(path),
            "metrics": bench["metrics"], "latency_ms": bench["latency_ms"], "size_bytes": bench["size_bytes"],
            "load_seconds": bench["load_seconds"], "memory": bench.get("memory"), "seconds": record["seconds"],
            "tokenizer_fingerprint": record["tokenizer_fingerprint"], "info": record["info"],
            "source": record.get("after"), "predictions": bench["predictions"]}
-    if "agreement_with_fp32" in record["info"]:  # an int8 step against the fp32 graph it came from
-        row["agreement_with_fp32"] = record["info"]["agreement_with_fp32"]
-    ref = teacher or row
-    row["accuracy_drop"] = round((ref["metrics"]["accuracy"] - row["metrics"]["accuracy"]) * 100, 4)
-    row["agreement_with_teacher"] = float(np.mean(np.array(ref["predictions"]) == np.array(row["predictions"])))
-    if teacher is not None:
-        from shrinkwrap.bench.stats import compare_to_reference
-
-        row.update(compare_to_reference(test_labels, ref["predictions"], row["predictions"]))
+    for key in ("agreement_with_fp32", "cosine_with_fp32"):  # an int8 step against the fp32 graph it came from
+        if key in record["info"]:
+            row[key] = record["info"][key]
     return row
 
 

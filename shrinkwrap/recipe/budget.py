@@ -12,6 +12,19 @@ from shrinkwrap.recipe.yaml_io import explain, key_lines, read_yaml_mapping
 from shrinkwrap.serve.errors import UserError
 
 
+# The limits that judge each task's quality (the latency, size and regression ones judge every task).
+TASK_QUALITY_KEYS = {
+    "classification": ("accuracy_drop_points", "accuracy_drop_upper_bound", "min_accuracy",
+                       "max_class_recall_drop_points", "min_agreement", "max_ece"),
+    "embedding": ("min_cosine_to_teacher", "min_neighbour_recall", "min_cross_recall", "max_knn_accuracy_drop_points"),
+}
+
+
+def foreign_keys(budget: "BudgetConfig", task: str) -> list[str]:
+    """The quality limits set in `budget` that judge another task than `task`."""
+    return [k for k in budget.quality_keys() if k not in TASK_QUALITY_KEYS[task]]
+
+
 class RegressionTolerance(Section):
     p95_percent: Optional[float] = Field(None, ge=0, description="largest rise of p95 latency over the baseline's same step, percent")
     accuracy_points: Optional[float] = Field(None, ge=0, description="largest fall of accuracy below the baseline's same step, points")
@@ -43,6 +56,18 @@ class BudgetConfig(Section):
     max_ece: Optional[float] = Field(
         None, ge=0, le=1, description="largest expected calibration error (15 bins) of the shipped artifact on the test "
         "split, with its temperature")
+    min_cosine_to_teacher: Optional[float] = Field(
+        None, ge=-1, le=1, description="task: embedding — smallest mean cosine of the gated step's test vectors to the "
+        "teacher's vectors of the same texts")
+    min_neighbour_recall: Optional[float] = Field(
+        None, ge=0, le=1, description="task: embedding — smallest neighbour recall at 10: the share of each test text's "
+        "10 nearest under the teacher's vectors found again under the step's, averaged")
+    min_cross_recall: Optional[float] = Field(
+        None, ge=0, le=1, description="task: embedding — smallest cross recall at 10: the same with queries embedded by "
+        "the step against an index of the teacher's vectors (an index that is not rebuilt)")
+    max_knn_accuracy_drop_points: Optional[float] = Field(
+        None, ge=0, description="task: embedding — largest loss of 5-nearest-neighbour accuracy (leave-one-out on the "
+        "test split) vs the teacher, points (needs data.label)")
     regression: RegressionTolerance = Field(
         default_factory=RegressionTolerance, description="limits against a baseline results.json (shrinkwrap gate --baseline)")
 
@@ -69,9 +94,7 @@ class BudgetConfig(Section):
 
     def limits_set(self) -> bool:
         """Whether a limit is set that needs no baseline (what `shrinkwrap run` can check at its end)."""
-        return any(v is not None for v in (self.latency_p95_ms, self.latency_p95_over_reference, self.size_mb,
-                                           self.min_speedup, self.min_shrink, self.accuracy_drop_points, self.min_accuracy,
-                                           self.max_class_recall_drop_points, self.min_agreement, self.max_ece))
+        return bool(self.speed_size_limits() or self.quality_keys())
 
 
 def load_budget(path: str | Path) -> BudgetConfig:

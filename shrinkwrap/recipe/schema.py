@@ -13,6 +13,7 @@ from pydantic import Field, ValidationError, field_validator, model_validator
 
 from shrinkwrap.recipe.base import RENAMED_KEYS, Section, no_repeats
 from shrinkwrap.recipe.budget import BudgetConfig
+from shrinkwrap.recipe.task_keys import check_task_keys
 from shrinkwrap.recipe.yaml_io import (apply_overrides, error_loc, explain, key_lines, key_path, parse_override,
                                         read_yaml_mapping)
 from shrinkwrap.serve.errors import UserError
@@ -22,8 +23,13 @@ from shrinkwrap.serve.fingerprint import sha256_json
 class DataConfig(Section):
     path: str = Field(description="CSV, JSONL or Parquet file, or a `datasets` folder saved with save_to_disk")
     text: str = Field("text", description="column holding the text")
-    text_pair: Optional[str] = Field(None, description="optional second text column: inputs become [CLS] a [SEP] b [SEP]")
-    label: str = Field("label", description="column holding the class label")
+    text_pair: Optional[str] = Field(None, description="optional second text column: for classification inputs "
+                                     "become [CLS] a [SEP] b [SEP]; for embedding each text is embedded alone and "
+                                     "the pair's cosine is compared with data.score")
+    label: Optional[str] = Field("label", description="column holding the class label (task: embedding — optional: "
+                                 "it enables the kNN and probe accuracies; a table without this column has none)")
+    score: Optional[str] = Field(None, description="task: embedding — numeric column scoring how alike text and "
+                                 "text_pair are (enables Spearman's rho of their cosine against it)")
     test_size: float = Field(0.2, gt=0, lt=1, description="share held out for the test split (when the data has no splits)")
     validation_size: float = Field(0.1, gt=0, lt=1, description="share of the rest held out for validation")
     seed: int = Field(0, description="seed of the stratified split")
@@ -40,6 +46,9 @@ class DataConfig(Section):
         if self.truncation == "head_tail" and self.text_pair:
             raise ValueError(f"truncation = head_tail with text_pair = {self.text_pair!r} — head_tail cuts single "
                              f"texts; pairs take head or tail")
+        if self.score and not self.text_pair:
+            raise ValueError(f"score = {self.score!r} without text_pair — a score says how alike the two texts of a "
+                             f"pair are; set text_pair too")
         return self
 
 
@@ -58,6 +67,12 @@ class TeacherConfig(Section):
     metric: Literal["accuracy", "macro_f1"] = Field("accuracy", description="validation metric for early stopping and seed choice")
     class_weights: bool = Field(False, description="weight the loss by inverse class frequency")
     trust_remote_code: bool = Field(False, description="allow code shipped with a hub model to run (off unless you trust it)")
+    pooling: Optional[Literal["mean", "cls", "max"]] = Field(
+        None, description="task: embedding — how the teacher's token vectors become one vector per text, when its "
+        "folder does not say (a sentence-transformers pooling config does): mean of the tokens, the first token's, or "
+        "the largest of each dimension")
+    normalize: Optional[bool] = Field(None, description="task: embedding — L2-normalise the pooled vector, when the "
+                                      "teacher's folder does not say (a sentence-transformers Normalize module does)")
     stall_steps: int = Field(100, ge=0, description="a run whose loss has not fallen by stall_fraction after this many steps is degenerate (0 = off)")
     stall_fraction: float = Field(0.1, ge=0, lt=1, description="share of the starting loss it must have lost after stall_steps")
     collapse_share: float = Field(0.95, gt=0, le=1, description="validation predictions this concentrated on one class = a degenerate run")
@@ -97,10 +112,13 @@ class StudentConfig(Section):
     epochs: Optional[int] = Field(None, ge=0, description="distillation epochs (default: scaled to the texts "
                                   "distilled on, n: ceil(30,000 / n) kept within 3–10, so a small training set gets "
                                   "more; 0: none, the student is its starting point as it is)")
-    metric: Optional[Literal["accuracy", "macro_f1", "agreement"]] = Field(
+    metric: Optional[Literal["accuracy", "macro_f1", "agreement", "cosine"]] = Field(
         None, description="validation figure that picks the best epoch and stops early: `agreement` is the share "
         "of validation texts given the teacher's label (default: teacher.metric); a tie goes to the epoch whose "
-        "outputs are closer to the teacher's (smaller KL divergence)")
+        "outputs are closer to the teacher's (smaller KL divergence); task: embedding — `cosine` (the default), the "
+        "mean cosine of the student's validation vectors to the teacher's")
+    cosine_weight: float = Field(0.0, ge=0, description="task: embedding — weight of a (1 − cosine) term beside "
+                                 "the mean-squared error to the teacher's vectors (0 = off)")
     learning_rate: float = Field(1e-4, gt=0, lt=1, description="peak learning rate of AdamW")
     batch_size: int = Field(16, ge=1, description="texts per optimizer step")
     weight_decay: float = Field(0.01, ge=0, description="AdamW weight decay")
@@ -290,6 +308,10 @@ class SearchConfig(Section):
 class Recipe(Section):
     name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$",
                       description="the run's name: letters, digits, . _ - (default run folder: runs/<name>)")
+    task: Literal["classification", "embedding"] = Field(
+        "classification", description="classification: a fine-tuned classifier, judged by its labels; embedding: a "
+        "sentence encoder used as is (pooled vectors for search, deduplication, clustering), judged by how its "
+        "vectors stay in the teacher's space")
     data: DataConfig
     teacher: TeacherConfig = Field(default_factory=TeacherConfig)
     student: StudentConfig = Field(default_factory=StudentConfig)
@@ -318,6 +340,7 @@ class Recipe(Section):
         if "swap" in self.augment.transforms and not self.data.text_pair:
             raise ValueError("augment.transforms lists swap, but data.text_pair is not set — swap exchanges the two "
                              "texts of a pair")
+        check_task_keys(self)
         return self
 
     def resolve(self, path: str) -> Path:
@@ -336,9 +359,12 @@ class Recipe(Section):
 
     def sections(self, names: tuple[str, ...]) -> dict:
         """The named sections as a step's fingerprint hashes them: a key added after runs were made is left
-        out while it holds its default (ADDED_KEYS), so that those runs' finished steps are still reused."""
+        out while it holds its default (ADDED_KEYS), so that those runs' finished steps are still reused. The task
+        goes with the data: every step depends on both."""
         dump = self.model_dump(mode="json")
         parts = {name: dict(dump[name]) for name in names}
+        if "data" in parts and self.task != "classification":
+            parts["task"] = self.task
         for path, default in ADDED_KEYS.items():
             section, key = path.split(".")
             if section in parts and parts[section].get(key) == default:
@@ -347,7 +373,8 @@ class Recipe(Section):
 
 
 # Keys added after runs were made, with their defaults: see Recipe.sections.
-ADDED_KEYS = {"train.length_grouped": False, "onnx_quantize.dynamic": False}
+ADDED_KEYS = {"train.length_grouped": False, "onnx_quantize.dynamic": False, "data.score": None,
+              "teacher.pooling": None, "teacher.normalize": None, "student.cosine_weight": 0.0}
 
 
 def load_recipe(path: str | Path, overrides: list[str] = ()) -> Recipe:

@@ -1,5 +1,6 @@
-"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from an artifact
-(with "text_pair" for a model that classifies pairs of texts).
+"""`shrinkwrap predict ARTIFACT [TEXT ...]`: JSON lines {"text", "label", "scores"} from a classifier artifact
+(with "text_pair" for a model that classifies pairs of texts), {"text", "embedding"} from a sentence encoder's, or
+with --npy FILE the encoder's vectors as one float32 matrix, a row per text in input order.
 
 Scores are calibrated: the softmax of the logits divided by the temperature the manifest records.
 With --min-confidence P, a text whose top score is below P gets "label": null.
@@ -178,10 +179,45 @@ def read_inputs(texts: list[str], file: Optional[str], stdin, pairs: bool = Fals
     return from_spool()
 
 
+def write_vectors(path: Path, chunks: Iterator[list[tuple]], model, batch_size: int) -> int:
+    """path (.npy): the artifact's vectors of every text, float32, one row per text in input order. Written a chunk
+    at a time to a scratch file beside it and renamed into place once whole: memory stays flat, and a failure
+    leaves no half-written matrix. Returns the number of rows."""
+    import os
+
+    import numpy as np
+
+    width = model.task.width(model.info)
+    raw = path.with_name(f".{path.name}.rows")
+    scratch = path.with_name(f".{path.name}.partial")
+    rows = 0
+    try:
+        with open(raw, "wb") as f:
+            for chunk in chunks:
+                vectors = np.ascontiguousarray(model.outputs([t for t, _, _ in chunk], batch_size), dtype=np.float32)
+                f.write(vectors.tobytes())
+                rows += len(vectors)
+        out = np.lib.format.open_memmap(scratch, "w+", np.float32, (rows, width))
+        if rows:
+            src = np.memmap(raw, np.float32, "r", shape=(rows, width))
+            for start in range(0, rows, CHUNK):
+                out[start:start + CHUNK] = src[start:start + CHUNK]
+            del src
+        out.flush()
+        del out
+        os.replace(scratch, path)
+    except OSError as e:
+        raise UserError(f"--npy {path}: cannot write — {e.strerror or e}") from None
+    finally:
+        for leftover in (raw, scratch):
+            leftover.unlink(missing_ok=True)
+    return rows
+
+
 def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size: int, threads: int,
                 stdin: Optional[TextIO] = None, stdout: Optional[TextIO] = None, trusted_key: Optional[Path] = None,
                 min_confidence: float = 0.0, text_col: str = "text", pair_col: Optional[str] = None,
-                id_col: Optional[str] = None) -> int:
+                id_col: Optional[str] = None, npy: Optional[Path] = None) -> int:
     stdin, stdout = stdin or sys.stdin, stdout or sys.stdout  # looked up per call: a caller may have swapped them
     if trusted_key is not None:  # the signature vouches for the manifest, whose hashes vouch for the rest
         from shrinkwrap.serve.signing import check_signature
@@ -191,10 +227,25 @@ def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size
     pairs = bool((manifest.get("tokenizer") or {}).get("text_pair"))
     if pair_col is not None and not pairs:
         raise UserError(f"--text-pair {pair_col}: this model classifies single texts, not pairs")
+    if npy is not None:
+        npy = Path(npy)
+        if manifest.get("task") != "embedding":
+            raise UserError(f"--npy {npy}: this artifact is a classifier — --npy writes a sentence encoder's vectors")
+        if id_col is not None:
+            raise UserError(f"--id {id_col}: the --npy matrix has no ids — its row k is input k")
+    if min_confidence and manifest.get("task") == "embedding":
+        raise UserError("--min-confidence: this artifact is a sentence encoder — it gives vectors, no label to abstain "
+                        "from")
+        if npy.suffix != ".npy" or npy.is_dir() or not npy.parent.is_dir():
+            raise UserError(f"--npy {npy}: expected a .npy file in an existing folder")
     chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair", id_col)
     model = load(artifact, threads, verified=manifest)
     if model.batch_dependent:
         print(batch_note(artifact, list(model.batch_dependent)), file=sys.stderr, flush=True)
+    if npy is not None:
+        rows = write_vectors(npy, chunks, model, batch_size)
+        print(f"wrote {npy}: {rows} × {model.task.width(model.info)} float32", file=sys.stderr, flush=True)
+        return EXIT_OK
     for chunk in chunks:
         batch_texts = [t for t, _, _ in chunk]
         batch_pairs = [p for _, p, _ in chunk] if pairs else None

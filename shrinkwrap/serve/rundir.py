@@ -33,6 +33,7 @@ STUDENT_ONNX_INT8 = "student-onnx-int8"
 STEP_FILE = "step.json"          # a step's record: fingerprint, tokenizer fingerprint, what it did
 BENCH_FILE = "bench.json"        # a step's benchmark, keyed by what it measured
 TIMING_FILE = "timing.json"      # the batch a step's output is timed on (token ids as the model reads them)
+TEST_OUTPUTS_FILE = "test_outputs.npy"   # a step's outputs on the test texts, as its benchmark measured them
 RESULTS_FILE = "results.json"    # every figure of a run
 REPORT_FILE = "report.md"
 REPORT_HTML_FILE = "report.html"
@@ -81,6 +82,17 @@ def write_atomic(path: Path, data: bytes | Callable) -> None:
 
 def write_json_atomic(path: Path, obj) -> None:
     write_atomic(path, json.dumps(obj, indent=2).encode("utf-8"))
+
+
+def write_npy_atomic(path: Path, array) -> None:
+    """An array as a .npy file (numpy's format), written atomically."""
+    import io
+
+    import numpy as np
+
+    buffer = io.BytesIO()
+    np.save(buffer, np.asarray(array), allow_pickle=False)
+    write_atomic(path, buffer.getvalue())
 
 
 def write_text_atomic(path: Path, text: str) -> None:

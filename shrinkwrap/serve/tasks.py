@@ -12,11 +12,11 @@ from __future__ import annotations
 
 from types import ModuleType
 
-from shrinkwrap.serve import classification
+from shrinkwrap.serve import classification, embedding
 from shrinkwrap.serve.errors import UserError
 from shrinkwrap.serve.rundir import MANIFEST_FILE
 
-TASKS = {classification.NAME: classification}
+TASKS = {classification.NAME: classification, embedding.NAME: embedding}
 DEFAULT = classification.NAME
 
 

@@ -51,9 +51,10 @@ def chain(recipe: Optional[Recipe] = None) -> list[Step]:
     pruned = recipe is not None and recipe.prune.enabled
     last = last_student(recipe)
     return [
-        # A teacher used as is (teacher.trained) is those very weights: they are part of its fingerprint.
+        # A teacher used as is (teacher.trained, or a sentence encoder) is those very weights: they are part of
+        # its fingerprint, with a sentence encoder's pooling.
         Step(TEACHER, "pytorch", ("data", "teacher", "train"), (), teacher.run, trains=True,
-             extra=lambda ctx: ctx.teacher_weights),
+             extra=lambda ctx: ctx.teacher_weights if ctx.pooling is None else [ctx.teacher_weights, ctx.pooling]),
         Step(STUDENT, "pytorch", ("student", "augment", "train"), (TEACHER,), student.run,
              extra=lambda ctx: ctx.transfer_fingerprint, trains=True),
         # Recovers by distillation on the teacher's outputs: it reads the teacher too.

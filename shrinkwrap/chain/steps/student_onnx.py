@@ -21,6 +21,6 @@ def run(ctx, src: Path, out: Path) -> dict:
     info = export_checked(model, tokens.encoded["test"], tokens.pad_id, lambda path: graph_p50_ms(path, batch, threads),
                           cfg, threads, out, ctx.task)
 
-    model.config.save_pretrained(out)
+    ctx.task.save_config(model, out)
     tokens.tokenizer.save_pretrained(out)
     return info

@@ -27,7 +27,7 @@ def run(ctx, src: Path, out: Path) -> dict:
         agrees = agreement(plain, out / MODEL_FILE, tokens.encoded["test"], tokens.pad_id, ctx.recipe.bench.threads,
                            ctx.recipe.bench.eval_batch_size, ctx.task)
 
-    model.config.save_pretrained(out)
+    ctx.task.save_config(model, out)
     tokens.tokenizer.save_pretrained(out)
     return {"method": "ONNX Runtime static int8 (QDQ)", "activation_scales": "calibrated once, fixed",
             "batch_independent": True, "graph": "plain",

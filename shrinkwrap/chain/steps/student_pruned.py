@@ -30,7 +30,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     tokens = ctx.student_tokens(src)
     model = ctx.task.load(str(src))
     n = min(cfg.importance_texts, len(ctx.data.train))
-    head_scores, neuron_scores = importance(model, tokens.encoded["train"][:n], ctx.data.train.labels[:n],
+    head_scores, neuron_scores = importance(model, tokens.encoded["train"][:n], ctx.task.importance_targets(ctx, n),
                                             tokens.pad_id, st.batch_size, heads_too=cfg.heads_removed > 0, task=ctx.task)
     before = _shape(model)
     heads = least_important(head_scores, cfg.heads_removed)
@@ -40,7 +40,7 @@ def run(ctx, src: Path, out: Path) -> dict:
     info = {"importance": {"heads": "E|dL/d head mask| (Michel, Levy & Neubig 2019)",
                            "neurons": "E|sum over tokens of activation x gradient| (first-order Taylor, "
                                       "Molchanov et al. 2017)",
-                           "loss": "cross-entropy", "texts": n},
+                           "loss": ctx.task.IMPORTANCE_LOSS, "texts": n},
             "heads_removed": {str(k): v for k, v in heads.items()},
             "head_importance": [[round(float(x), 6) for x in row] for row in head_scores],
             "neurons_removed_per_layer": len(next(iter(neurons.values()), [])),

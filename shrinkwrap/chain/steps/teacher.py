@@ -2,7 +2,8 @@
 
 Never from scratch: the encoder always comes from `teacher.base`. Runs that degenerate are stopped
 early and the next seed is tried; the best run on validation is kept. With teacher.trained, `base` is
-already a fine-tuned classifier: it is copied as is (checked and matched to the data by preflight).
+already a fine-tuned classifier: it is copied as is (checked and matched to the data by preflight). A
+sentence encoder (task: embedding) is never fine-tuned: it is copied as is, with how it pools.
 """
 from __future__ import annotations
 
@@ -16,7 +17,8 @@ from shrinkwrap.serve.errors import StepFailed
 
 
 def as_is(ctx, out: Path) -> dict:
-    """The user's own fine-tuned classifier, copied byte for byte, with where it came from."""
+    """The user's own fine-tuned classifier, or a sentence encoder with its pooling, copied byte for byte, with
+    where it came from."""
     from shrinkwrap.ml.trained import copy_teacher
 
     if not distributed.is_main():  # nothing to train: the main process copies
@@ -24,13 +26,19 @@ def as_is(ctx, out: Path) -> dict:
     copied = copy_teacher(Path(ctx.base), ctx.tokenizer, out)
     if copied["weights_sha256"] != ctx.teacher_weights:
         raise StepFailed(f"teacher: the weights in {ctx.base} changed while the run was starting — run it again")
-    return {"trained": "used as is", "source": ctx.recipe.teacher.base, "source_folder": str(Path(ctx.base).resolve()),
-            **copied, "label_names": list(ctx.data.label_names)}
+    info = {"trained": "used as is", "source": ctx.recipe.teacher.base,
+            "source_folder": str(Path(ctx.base).resolve()), **copied}
+    if ctx.pooling is not None:
+        from shrinkwrap.ml.embedding import write_pooling
+
+        write_pooling(out, ctx.pooling)
+        return info | {"pooling": ctx.pooling}
+    return info | {"label_names": list(ctx.data.label_names)}
 
 
 def run(ctx, src: None, out: Path) -> dict:
     cfg = ctx.recipe.teacher
-    if cfg.trained:
+    if cfg.trained or not ctx.task.FINE_TUNES:
         return as_is(ctx, out)
     task = ctx.task
     weight = task.class_weights(ctx.data.train.labels, len(ctx.data.label_names)) if cfg.class_weights else None
