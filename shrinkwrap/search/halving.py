@@ -8,7 +8,7 @@ import math
 from typing import Callable
 
 from shrinkwrap.ml import distributed
-from shrinkwrap.outputs.results import validation_accuracy
+from shrinkwrap.outputs.results import final_row, recipe_dump, validation_accuracy, validation_of
 
 FOLDER = "halving"  # the short runs' run folders, under the search folder
 
@@ -31,14 +31,24 @@ def halving(order: list[int], short_epochs: int, full_epochs: int,
     return alive, dropped
 
 
+def short_run_score(results: dict) -> tuple[float, str]:
+    """(the figure a short run is ranked by, its name): a classifier's best validation accuracy of its student; an
+    encoder's validation neighbour recall at 10 of its shipped step (-inf when not measured)."""
+    if recipe_dump(results).get("task") == "embedding":
+        validation = validation_of(final_row(results))
+        value = validation["metrics"]["neighbour_recall_at_10"] if validation else float("-inf")
+        return value, "neighbour recall at 10"
+    return validation_accuracy(results), "accuracy"
+
+
 def better_half(alive: list[int], done: dict[int, dict], epochs: int) -> tuple[list[int], dict[int, tuple[dict, str]]]:
     """The better half of `alive` by validation accuracy after the short runs `done` (ties keep the cheaper,
     earlier one), and the rest with why they were dropped."""
     alive = [i for i in alive if i in done]  # a candidate whose run failed has its reason already
-    score = {i: validation_accuracy(done[i]) for i in alive}
-    ranked = sorted(alive, key=lambda i: -score[i])  # stable: ties keep the cheaper first
+    score = {i: short_run_score(done[i]) for i in alive}
+    ranked = sorted(alive, key=lambda i: -score[i][0])  # stable: ties keep the cheaper first
     keep = set(ranked[: math.ceil(len(alive) / 2)])
-    dropped = {i: (done[i], f"dropped by successive halving after {epochs} epoch(s): validation accuracy "
-                            f"{score[i]:.4f}, not in the better {len(keep)} of {len(alive)}")
+    dropped = {i: (done[i], f"dropped by successive halving after {epochs} epoch(s): validation {score[i][1]} "
+                            f"{score[i][0]:.4f}, not in the better {len(keep)} of {len(alive)}")
                for i in ranked[len(keep):]}
     return [i for i in alive if i in keep], dropped

@@ -14,7 +14,8 @@ meet the budget are found before any training. In order:
    another candidate already trained with the same student settings is copied in, not trained again
    (a pruned candidate starts from the unpruned student of its depth);
 4. every trained candidate and the teacher timed again together, in interleaved rounds;
-5. the winner — the most accurate candidate meeting every limit, ties to the faster — gets its artifact.
+5. the winner — the most accurate candidate meeting every limit, ties to the faster — gets its artifact (an
+   embedding search ranks by neighbour recall at 10 where a classification one ranks by accuracy).
 
 Every run goes through the chain's one door, shrinkwrap.chain.pipeline.run_recipe. Under `accelerate
 launch` / `torchrun` every process takes part in each run exactly as in `shrinkwrap run` (the main process
@@ -36,7 +37,7 @@ from shrinkwrap.outputs.results import final_row, recipe_dump, teacher_row, vali
 from shrinkwrap.search.folders import CACHE, link_copy, share_cache
 from shrinkwrap.search.halving import FOLDER as HALVING
 from shrinkwrap.search.halving import halving
-from shrinkwrap.search.ranking import miss, pareto_frontier, pick_winner, relative_miss, tied
+from shrinkwrap.search.ranking import MEASURES, Measure, miss, pareto_frontier, pick_winner, relative_miss, tied
 from shrinkwrap.search.space import Candidate, Space
 from shrinkwrap.serve.errors import EXIT_BUDGET, EXIT_OK, StepFailed
 from shrinkwrap.serve.rundir import (ARTIFACT_DIR, RESULTS_FILE, STEP_FILE, STUDENT, TEACHER, read_json_or_none,
@@ -48,15 +49,24 @@ TEACHER_RUN, CANDIDATES, UNTRAINED = "teacher-run", "candidates", "untrained"
 SCREEN_IMPORTANCE_TEXTS = 8
 
 
-def _row(c: Candidate) -> dict:
-    return {"settings": c.settings, "trained": False, "meets_budget": False, "accuracy": None,
-            "accuracy_drop": None, "validation_accuracy": None, "tied_with_winner": False, "latency_ms": None,
+def _row(c: Candidate, m: Measure) -> dict:
+    return {"settings": c.settings, "trained": False, "meets_budget": False, m.score: None,
+            m.drop: None, m.validation: None, "tied_with_winner": False, "latency_ms": None,
             "speedup": None, "size_bytes": None, "reason": None, "cautions": None}
 
 
-def _validation_accuracy(row: dict) -> Optional[float]:
+def _validation_score(row: dict, m: Measure) -> Optional[float]:
     validation = validation_of(row)
-    return validation["metrics"]["accuracy"] if validation else None
+    return validation["metrics"].get(m.score) if validation else None
+
+
+def _figures(results: dict, m: Measure) -> dict:
+    """A trained candidate's row figures: its shipped step's test figure, its drop against the teacher in points,
+    and its validation figure."""
+    final = final_row(results)
+    drop = (teacher_row(results)["metrics"][m.score] - final["metrics"][m.score]) * 100
+    return {m.score: final["metrics"][m.score], m.drop: final.get(m.drop, round(drop, 4)),
+            m.validation: _validation_score(final, m)}
 
 
 def _lat(row: dict) -> dict:
@@ -86,7 +96,8 @@ class Search:
     def __init__(self, space: Space, out: Path, quiet: bool = False):
         self.space, self.out, self.quiet = space, Path(out), quiet or not distributed.is_main()
         self.recipe, self.budget = space.recipe, space.recipe.budget
-        self.rows = [_row(c) for c in space.candidates]
+        self.measure = MEASURES[space.recipe.task]   # what candidates are ranked by: accuracy, or neighbour recall
+        self.rows = [_row(c, self.measure) for c in space.candidates]
         self.checks: dict[int, list[Check]] = {}      # candidate -> its limits, as last measured
         self.results: dict[int, dict] = {}             # trained candidate -> its run's results
 
@@ -222,21 +233,15 @@ class Search:
         full = min(self.space.candidates[i].recipe.student.epochs for i in order)
         alive, dropped = halving(order, self.recipe.search.short_epochs, full, train, self.log)
         for i, (results, reason) in dropped.items():
-            final = final_row(results)
-            self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
-                                accuracy_drop=final["accuracy_drop"], reason=reason,
-                                validation_accuracy=_validation_accuracy(final))
+            self.rows[i].update(trained=True, reason=reason, **_figures(results, self.measure))
             self.log(f"candidate {i} {self.space.candidates[i].label()}: {reason}")
         return alive
 
     def record_trained(self, i: int, results: dict) -> None:
         from shrinkwrap.outputs.findings import cautions
 
-        final = final_row(results)
-        # what the candidate's average accuracy hides (a class much worse, a drop the test split cannot settle)
-        self.rows[i].update(trained=True, accuracy=final["metrics"]["accuracy"],
-                            accuracy_drop=final["accuracy_drop"], cautions=cautions(results, self.budget),
-                            validation_accuracy=_validation_accuracy(final))
+        # what the candidate's average hides (a class much worse, a drop the test split cannot settle, a tail)
+        self.rows[i].update(trained=True, cautions=cautions(results, self.budget), **_figures(results, self.measure))
         self.results[i] = results
 
     # ---- (4) timing again, together --------------------------------------------------------------------
@@ -269,14 +274,18 @@ class Search:
             row["meets_budget"] = not failed
             if row["reason"] is None:
                 row["reason"] = "; ".join(miss(k) for k in failed) if failed else "meets every limit"
-            self.log(f"candidate {i} {self.space.candidates[i].label()}: accuracy {row['accuracy']:.4f} "
-                     f"(drop {row['accuracy_drop']:.2f} points), p95 {lat['p95']:.2f} ms, {row['speedup']:.2f}× the "
+            m = self.measure
+            self.log(f"candidate {i} {self.space.candidates[i].label()}: {m.label} {row[m.score]:.4f} "
+                     f"(drop {row[m.drop]:.2f} points), p95 {lat['p95']:.2f} ms, {row['speedup']:.2f}× the "
                      f"teacher, {size / 1e6:.2f} MB — {row['reason']}")
 
     def _validation(self) -> tuple[dict[int, list], Optional[list]]:
-        """Each trained candidate's predicted class per validation text, and the true classes."""
+        """Each trained candidate's answer per validation text (a classifier's predicted class, with the true
+        classes; an encoder's neighbour recall, with no labels)."""
         val = {i: validation_of(final_row(r))["predictions"] for i, r in self.results.items()
                if validation_of(final_row(r))}
+        if self.measure is not MEASURES["classification"]:
+            return val, None
         labels = next((validation_labels(r) for r in self.results.values()), None)
         return val, labels
 
@@ -285,12 +294,15 @@ class Search:
         from shrinkwrap.search.report import write_search_report
 
         val, labels = self._validation()
-        drop = self.budget.accuracy_drop_points
-        group = set(tied(self.rows, val, labels, drop))
+        m = self.measure
+        drop = self.budget.accuracy_drop_points if m is MEASURES["classification"] else None
+        group = set(tied(self.rows, val, labels, drop, m))
         for i, row in enumerate(self.rows):
             row["tied_with_winner"] = i in group
-        summary = {"candidates": self.rows, "frontier": pareto_frontier(self.rows),
-                   "winner": pick_winner(self.rows, val, labels, drop)}
+        summary = {"candidates": self.rows, "frontier": pareto_frontier(self.rows, m),
+                   "winner": pick_winner(self.rows, val, labels, drop, m)}
+        if m is not MEASURES["classification"]:
+            summary["ranked_by"] = m.score
         w = summary["winner"]
         if w is not None:
             src = self.out / CANDIDATES / self.space.candidates[w].folder_name / ARTIFACT_DIR
@@ -300,7 +312,7 @@ class Search:
             shutil.rmtree(self.out / ARTIFACT_DIR)
         write_json_atomic(self.out / SEARCH_FILE, summary)
         write_search_report(summary, self.budget, self.teacher_latency, self.out, self.space.candidates,
-                            teacher_row(self.teacher_results)["metrics"]["accuracy"])
+                            teacher_row(self.teacher_results)["metrics"][m.score], m)
         return summary
 
     def closest(self) -> str:
@@ -342,11 +354,11 @@ def run_search(space: Space, out: Path, quiet: bool = False) -> tuple[dict, int,
     w = summary["winner"]
     if w is None:
         return summary, EXIT_BUDGET, f"no candidate meets the budget — {s.closest()}"
-    row = s.rows[w]
-    val = row["validation_accuracy"]
+    row, m = s.rows[w], s.measure
+    val = row[m.validation]
     others = sum(r["tied_with_winner"] for r in s.rows) - 1
-    return summary, EXIT_OK, (f"winner: candidate {w} {space.candidates[w].label()} — accuracy {row['accuracy']:.4f} "
-                              f"(drop {row['accuracy_drop']:.2f} points)"
+    return summary, EXIT_OK, (f"winner: candidate {w} {space.candidates[w].label()} — {m.label} {row[m.score]:.4f} "
+                              f"(drop {row[m.drop]:.2f} points)"
                               + (f", validation {val:.4f}" if val is not None else "")
                               + (f", the fastest of {others + 1} tied on validation" if others else "")
                               + f", p95 {row['latency_ms']['p95']:.2f} ms, {row['speedup']:.2f}× the teacher, "
