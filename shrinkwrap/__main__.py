@@ -1,3 +1,4 @@
 from shrinkwrap.cli import main
 
-raise SystemExit(main())
+if __name__ == "__main__":   # not when a spawned worker process (shrinkwrap serve) imports this module again
+    raise SystemExit(main())

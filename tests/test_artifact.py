@@ -53,7 +53,7 @@ def test_run_writes_artifact_with_complete_manifest(tiny_run):
     assert manifest["tokenizer"]["max_length"] == results["recipe"]["teacher"]["max_length"]
     assert manifest["recipe_fingerprint"] == results["recipe_fingerprint"]
     assert manifest["model"]["precision"] == "int8" and manifest["model"]["embeddings_int8"] is True
-    assert manifest["model"]["graph"] == final["info"]["graph"] == "fused without attention"  # per-row int8's graph
+    assert manifest["model"]["graph"] == final["info"]["graph"] == "plain"  # per-row int8's graph
     assert json.loads((art / "labels.json").read_text()) == results["data"]["label_names"]
     m = manifest["metrics"]
     assert m["step"] == final["name"] and m["accuracy"] == final["metrics"]["accuracy"]

@@ -131,12 +131,12 @@ def test_per_row_int8_is_the_documented_arithmetic_and_rows_never_mix(per_channe
     x[3] = 0.0   # an all-zero row must not divide by zero
     y, z = sess.run(None, {"x": x})
 
-    # numpy, in float64: symmetric codes round(x / s) with s = max|row| / 127, weights likewise per column (or per
-    # tensor), the integer product rescaled by both scales
-    s = np.maximum(np.abs(x).max(1, keepdims=True), 1e-30).astype(np.float64) / 127
-    ws = (np.abs(w).max(0) if per_channel else np.abs(w).max()).astype(np.float64) / 127
+    # numpy: symmetric codes round(x / s) (half to even, as QuantizeLinear rounds) with s = max|row| / 127 in
+    # float32 as the graph computes it, weights likewise per column (or per tensor), the integer product rescaled
+    s = np.maximum(np.abs(x).max(1, keepdims=True), np.float32(1e-30)) * np.float32(1 / 127)
+    ws = (np.abs(w).max(0) if per_channel else np.abs(w).max()) / np.float32(127)
     qx, qw = np.round(x / s), np.clip(np.round(w / ws), -127, 127)
-    expected = (qx @ qw) * s * ws
+    expected = (qx.astype(np.float64) @ qw) * s * ws
     assert np.abs(y - expected).max() <= 1e-5 * max(1.0, np.abs(expected).max())
     assert np.abs(z - (expected + bias)).max() <= 1e-5 * max(1.0, np.abs(expected).max())
     assert np.all(y[3] == 0)

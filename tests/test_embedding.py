@@ -156,6 +156,47 @@ def test_report_gate_and_bad_options_on_an_embedding_run(tiny_embedding_run, tmp
     assert "accuracy_drop_points — not a limit of an embedding run" in proc.stderr
     proc = shrinkwrap("predict", run / "artifact", "a text", "--min-confidence", "0.5")
     assert proc.returncode == 2 and "sentence encoder" in proc.stderr
+    proc = shrinkwrap("predict", run / "artifact", "a text", "--npy", tmp_path / "vectors.txt")
+    assert proc.returncode == 2 and "expected a .npy file" in proc.stderr
+    assert not (tmp_path / "vectors.txt").exists()
+    proc = shrinkwrap("serve", run / "artifact", "--port", "0", "--min-confidence", "0.5")
+    assert proc.returncode == 2 and "sentence encoder" in proc.stderr
+
+
+def test_served_encoder_answers_predicts_vectors(tiny_embedding_run):
+    """POST /predict on an encoder's artifact: each text's vector, the same as predict's whatever it is batched with."""
+    import http.client
+    import io
+    from concurrent.futures import ThreadPoolExecutor
+
+    from shrinkwrap.bench.capacity import Server
+    from shrinkwrap.serve.predict import run_predict
+
+    art = tiny_embedding_run[0] / "run" / "artifact"
+    texts = [f"{t} {i}" for i, (t, _) in enumerate(keyword_rows(40, seed=9))]
+    out = io.StringIO()
+    assert run_predict(str(art), texts, None, 32, 1, stdout=out) == 0
+    want = {r["text"]: np.array(r["embedding"]) for r in map(json.loads, out.getvalue().splitlines())}
+
+    def post(batch):
+        conn = http.client.HTTPConnection("127.0.0.1", server.port, timeout=60)
+        try:
+            conn.request("POST", "/predict", body=json.dumps({"texts": batch}), headers={"Content-Type": "application/json"})
+            r = conn.getresponse()
+            return r.status, json.loads(r.read())
+        finally:
+            conn.close()
+
+    server = Server(str(art), ["--workers", "1", "--max-wait-ms", "20"])
+    try:
+        with ThreadPoolExecutor(8) as pool:   # single texts and a batch of five, concurrently: batched together
+            answers = list(pool.map(post, [[t] for t in texts] + [texts[:5]]))
+    finally:
+        assert server.stop() == 0
+    for status, body in answers:
+        assert status == 200
+        for row in body["predictions"]:
+            assert np.abs(np.array(row["embedding"]) - want[row["text"]]).max() <= 1e-5
 
 
 @pytest.fixture(scope="module")

@@ -9,7 +9,9 @@ import pytest
 from shrinkwrap.cli import build_parser, main
 
 POSITIONAL = {"run": ["r.yaml"], "gate": ["results.json"], "report": ["results.json"], "bench": ["m.onnx"],
-              "predict": ["art", "t"], "package": ["m", "--out", "o"]}
+              "predict": ["art", "t"], "package": ["m", "--out", "o"], "serve": ["art"]}
+SERVER = {"--workers": ["0", "-1", "two"], "--max-batch": ["0", "1.5"], "--max-wait-ms": ["-1", "nan", "inf", "x"],
+          "--max-queue": ["0", "-4"], "--max-body-mb": ["0", "-1", "nan", "big"]}
 BAD = {
     ("bench", "--max-length"): ["0", "-5", "x"],
     ("bench", "--batch-size"): ["0", "-1", "1.5"],
@@ -26,6 +28,14 @@ BAD = {
     ("package", "--max-length"): ["0", "-1"],
     ("package", "--opset"): ["13", "99", "-1", "x"],
     ("package", "--threads"): ["0"],
+    ("bench", "--load"): ["0", "-5", "nan", "fast"],
+    ("bench", "--load-seconds"): ["-1", "nan"],
+    ("bench", "--max-p95-ms"): ["-1", "inf", "x"],
+    ("bench", "--load-minutes"): ["-1", "nan"],
+    ("serve", "--port"): ["-1", "65536", "http"],
+    ("serve", "--threads"): ["0", "x"],
+    ("serve", "--min-confidence"): ["2", "nan"],
+    **{(command, option): values for command in ("bench", "serve") for option, values in SERVER.items()},
 }
 
 

@@ -83,3 +83,39 @@ def test_pairs_to_a_single_text_artifact_are_refused_naming_the_line(tiny_run, t
     single.write_text(json.dumps({"text": "refund please"}) + "\n")
     assert _predict(tiny_run / "artifact", "--file", single).returncode == 0
     assert _predict(tiny_run / "artifact", "--file", single, "--text-pair", "b").returncode == 2
+
+
+def test_serve_answers_pairs_as_predict_does_and_refuses_single_texts(pair_run):
+    """A pair artifact over real HTTP on 127.0.0.1: texts with text_pairs get predict's rows; texts alone a 400."""
+    import http.client
+
+    from shrinkwrap.bench.capacity import Server
+
+    run, test = pair_run
+    want = [json.loads(x) for x in _predict(run / "artifact", "--file", _jsonl(run.parent, test)).stdout.splitlines()]
+    server = Server(str(run / "artifact"), ["--workers", "1"])
+    try:
+        def post(body):
+            conn = http.client.HTTPConnection("127.0.0.1", server.port, timeout=60)
+            conn.request("POST", "/predict", body=json.dumps(body).encode())
+            r = conn.getresponse()
+            return r.status, json.loads(r.read())
+
+        got = []
+        for start in range(0, len(test.texts), 16):   # --max-batch texts per request at most
+            status, body = post({"texts": test.texts[start:start + 16], "text_pairs": test.pairs[start:start + 16]})
+            assert status == 200
+            got += body["predictions"]
+        assert [(r["text"], r["text_pair"], r["label"]) for r in got] == \
+               [(r["text"], r["text_pair"], r["label"]) for r in want]
+        assert max(abs(g["scores"][k] - w["scores"][k]) for g, w in zip(got, want) for k in w["scores"]) <= 1e-5
+        status, body = post({"texts": test.texts[:2]})
+        assert status == 400 and "text_pairs" in body["error"]
+    finally:
+        assert server.stop() == 0
+
+
+def _jsonl(folder, test):
+    path = folder / "serve-pairs.jsonl"
+    path.write_text("".join(json.dumps({"text": a, "text_pair": b}) + "\n" for a, b in zip(test.texts, test.pairs)))
+    return path

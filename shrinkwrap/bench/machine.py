@@ -5,7 +5,8 @@ import os
 import platform
 from importlib import metadata
 
-PACKAGES = ("torch", "transformers", "tokenizers", "onnx", "onnxruntime", "optimum", "optimum-onnx", "numpy")
+PACKAGES = ("torch", "transformers", "tokenizers", "onnx", "onnxruntime", "optimum", "optimum-onnx", "numpy",
+            "uvicorn")
 
 
 def cpu_model() -> str:

@@ -14,11 +14,11 @@ import warnings
 from pathlib import Path
 
 from shrinkwrap import __version__
-from shrinkwrap.cli import bench, gate, package, predict, report, run, search
+from shrinkwrap.cli import bench, gate, package, predict, report, run, search, serve
 from shrinkwrap.cli.options import Parser
 from shrinkwrap.serve.errors import EXIT_INPUT, EXIT_INTERNAL, EXIT_INTERRUPTED, StepFailed, UserError
 
-COMMANDS = (run, search, gate, report, bench, predict, package)
+COMMANDS = (run, search, gate, report, bench, predict, package, serve)
 
 
 def build_parser() -> Parser:

@@ -1,17 +1,18 @@
 """`shrinkwrap bench TARGET`: latency, size and memory of any model (accuracy too with --data)."""
 from __future__ import annotations
 
+import argparse
 import json
+import math
 from pathlib import Path
 
 from shrinkwrap.cli.options import (RENAMED_OPTIONS, Renamed, add_trusted_key, at_least, count, field_bounds, logger,
                                     positive_int, seconds)
+from shrinkwrap.cli.serve import add_server_options, milliseconds
 from shrinkwrap.serve.errors import EXIT_OK, UserError
 
 
 def add(sub) -> None:
-    import argparse
-
     from shrinkwrap.bench.grid import parse_length
     from shrinkwrap.recipe.schema import BenchConfig
 
@@ -39,8 +40,9 @@ def add(sub) -> None:
     p.add_argument("--sequence-length", type=parse_length, nargs="+", default=[default["sequence_length"]],
                    metavar="L", help=f"tokens per text to time; `real` = texts of --data padded to their batch's "
                    f"longest (default: {default['sequence_length']})")
-    p.add_argument("--threads", type=positive_int, default=default["threads"],
-                   help=f"intra-op threads of the model and of the reference workload (default: {default['threads']})")
+    p.add_argument("--threads", type=positive_int,
+                   help=f"intra-op threads of the model and of the reference workload (default: {default['threads']}; "
+                        f"with --load, of each server worker, as serve's)")
     p.add_argument("--warmup", type=count, default=default["warmup"], metavar="N",
                    help=f"untimed runs before each row (default: {default['warmup']})")
     p.add_argument("--warm-seconds", type=seconds, default=default["warm_seconds"], metavar="SECONDS",
@@ -56,10 +58,35 @@ def add(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the figures as JSON instead of the table")
     p.add_argument("--out", metavar="FILE.json", help="also write the figures as JSON to this file")
     add_trusted_key(p)
+    load = p.add_argument_group("serving under load (--load; TARGET must be an artifact)")
+    load.add_argument("--load", type=rate, nargs="*", metavar="RATE",
+                      help="serve TARGET with `shrinkwrap serve` on a loopback port and send it one-text requests at "
+                           "these rates (requests per second, Poisson arrivals, open loop); without rates, step the "
+                           "rate up until p95 passes --max-p95-ms and report capacity_rps. --data gives the texts "
+                           "(else words of the artifact's vocabulary, --sequence-length tokens)")
+    load.add_argument("--load-seconds", type=seconds, default=10.0, metavar="SECONDS",
+                      help="how long each rate is sent (default: 10)")
+    load.add_argument("--max-p95-ms", type=milliseconds, default=50.0, metavar="MS",
+                      help="the p95 latency, as the client sees it, that capacity_rps is measured at (default: 50)")
+    load.add_argument("--load-minutes", type=seconds, default=5.0, metavar="MINUTES",
+                      help="time limit of the stepped search for capacity_rps (default: 5)")
+    add_server_options(load, "server worker processes (default: the machine's cores divided by --threads)")
     p.set_defaults(func=main)
 
 
+def rate(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not math.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(f"{text!r} — requests per second, above 0")
+    return value
+
+
 def main(args) -> int:
+    if args.load is not None:
+        return main_load(args)
     from shrinkwrap.bench.grid import bench_text, grid
     from shrinkwrap.bench.machine import describe
     from shrinkwrap.bench.measure import bench_target
@@ -86,11 +113,13 @@ def main(args) -> int:
         raise UserError("--reference needs --data: the two encoders are compared on its texts")
     table = read_table(Path(args.data), args.text, args.label, args.text_pair, label_optional=True) if args.data else None
     reference = None
+    threads = args.threads or BenchConfig().threads
     if args.reference:
         from shrinkwrap.bench.testset import reference_vectors
 
-        reference = reference_vectors(Path(args.reference), table, args.max_length, args.threads)
-    cfg = BenchConfig(threads=args.threads, warmup=args.warmup, warm_seconds=args.warm_seconds, repeats=args.repeats,
+        reference = reference_vectors(Path(args.reference), table, args.max_length, threads)
+    cfg = BenchConfig(threads=threads, warmup=args.warmup,
+                      warm_seconds=args.warm_seconds, repeats=args.repeats,
                       timed_seconds=args.timed_seconds, eval_batch_size=args.eval_batch_size)
     result = bench_target(args.target, cfg, grid(args.batch_size, args.sequence_length),
                           inputs_for(table, args.max_length, reference), logger("bench", args.json))
@@ -105,4 +134,37 @@ def main(args) -> int:
     if args.out:
         write_json_atomic(Path(args.out), result)
     print(json.dumps(result, indent=2) if args.json else bench_text(result))
+    return EXIT_OK
+
+
+def main_load(args) -> int:
+    """bench --load: the served artifact's latency at each rate, and capacity_rps."""
+    from shrinkwrap.bench.capacity import load_table, measure_load, request_texts
+    from shrinkwrap.bench.grid import REAL
+    from shrinkwrap.bench.machine import describe
+    from shrinkwrap.serve.artifact import is_artifact
+    from shrinkwrap.serve.rundir import check_out_file, write_json_atomic
+
+    if not is_artifact(args.target):
+        raise UserError(f"--load: {args.target} is not an artifact folder — the server serves artifacts")
+    if args.out:
+        check_out_file(Path(args.out))
+    if args.trusted_key:
+        from shrinkwrap.serve.signing import check_signature
+
+        check_signature(Path(args.target), Path(args.trusted_key))
+    length = next((n for n in args.sequence_length if n != REAL), 128)
+    rows, about = request_texts(args.target, args.data, args.text, args.text_pair, length)
+    options = [f"--max-batch={args.max_batch}", f"--max-wait-ms={args.max_wait_ms}", f"--max-queue={args.max_queue}",
+               f"--max-body-mb={args.max_body_mb}"]
+    options += [f"--threads={args.threads}"] if args.threads else []
+    options += [f"--workers={args.workers}"] if args.workers else []
+    options += [f"--trusted-key={args.trusted_key}"] if args.trusted_key else []
+    load = measure_load(args.target, options, rows, args.load, args.load_seconds, args.max_p95_ms,
+                        args.load_minutes * 60, logger("bench", args.json))
+    load["texts"] = about
+    result = {"path": str(args.target), "load": load, "capacity_rps": load["capacity_rps"], "machine": describe()}
+    if args.out:
+        write_json_atomic(Path(args.out), result)
+    print(json.dumps(result, indent=2) if args.json else load_table(load))
     return EXIT_OK

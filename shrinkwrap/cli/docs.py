@@ -42,6 +42,8 @@ def options_block(name: str) -> str:
             metavar = "" if action.nargs == 0 else f" {action.metavar or action.dest.upper()}"
             if action.nargs == "+":
                 metavar += " ..."
+            elif action.nargs == "*":
+                metavar = f" [{metavar.strip()} ...]"
             name_cell = f"`{flags}{metavar}`"
         else:
             name_cell = f"`{action.metavar or action.dest.upper()}`"

@@ -12,7 +12,7 @@ def add(sub) -> None:
                        description="Check one step of RESULTS (the final one by default) against the limits of a "
                                    "budget; print a verdict per limit. Exit 0: every limit met; 1: a limit "
                                    "failed; 2: bad input (budget, results, options).")
-    p.add_argument("results", help="results.json of a run")
+    p.add_argument("results", nargs="?", help="results.json of a run (optional with --load)")
     p.add_argument("--budget", metavar="FILE",
                    help="budget YAML (keys of a recipe's budget: section; default: the budget of the recipe in RESULTS)")
     p.add_argument("--step", metavar="NAME", help="step to check (default: the final step in RESULTS)")
@@ -21,6 +21,8 @@ def add(sub) -> None:
     p.add_argument("--tolerance", action="append", default=[], metavar="NAME=VALUE",
                    help="regression tolerance with --baseline: p95_percent=10, accuracy_points=0.5, size_percent=5 "
                         "(repeatable; overrides the budget's regression: section)")
+    p.add_argument("--load", metavar="FILE.json", help="the JSON of `shrinkwrap bench ARTIFACT --load`: check the "
+                   "budget's min_capacity_rps against its capacity_rps")
     p.add_argument("--junit", metavar="OUT.xml", help="also write the verdicts as JUnit XML (one testcase per limit)")
     p.add_argument("--json", action="store_true", help="print the verdicts as JSON instead of the table")
     p.set_defaults(func=main)
@@ -32,8 +34,8 @@ def main(args) -> int:
 
     if args.junit:
         check_out_file(Path(args.junit), "--junit")
-    verdict = gate_results(Path(args.results), args.budget and Path(args.budget), args.step,
-                           args.baseline and Path(args.baseline), args.tolerance)
+    verdict = gate_results(args.results and Path(args.results), args.budget and Path(args.budget), args.step,
+                           args.baseline and Path(args.baseline), args.tolerance, args.load and Path(args.load))
     if args.junit:
         write_text_atomic(Path(args.junit), junit_xml(verdict))
     print(json.dumps(verdict.as_dict(), indent=2) if args.json else format_table(verdict))

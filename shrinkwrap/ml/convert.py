@@ -32,8 +32,8 @@ from shrinkwrap.serve.sessions import run_outputs, session
 GRAPH_RULE = "fused when it passes parity, never by timing"
 
 _EIGHT_BIT = (onnx.TensorProto.INT8, onnx.TensorProto.UINT8)
-_INT8_OPS = ("MatMulInteger", "QAttention", "QEmbedLayerNormalization", "QuantizeLinear", "DequantizeLinear",
-             "DynamicQuantizeLinear", "QGemm")
+_INT8_OPS = ("MatMulInteger", "MatMulIntegerToFloat", "QAttention", "QEmbedLayerNormalization", "QuantizeLinear",
+             "DequantizeLinear", "DynamicQuantizeLinear", "QGemm")
 
 
 # ---- fp32 export -----------------------------------------------------------------------------------------
@@ -85,10 +85,8 @@ def parity(path: Path, torch_outputs: np.ndarray, examples: list[dict], pad_id: 
 
 
 def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callable[[Path], Optional[float]], cfg,
-                   threads: int, out: Path, task: ModuleType = classification, what: str = STUDENT_ONNX,
-                   attention: bool = True) -> dict:
-    """Writes out/model.onnx: the fp32 export, fused (attention too unless attention=False) unless `cfg.optimize`
-    is `never`, proven to give
+                   threads: int, out: Path, task: ModuleType = classification, what: str = STUDENT_ONNX) -> dict:
+    """Writes out/model.onnx: the fp32 export, fused unless `cfg.optimize` is `never`, proven to give
     PyTorch's logits on `examples`. Raises StepFailed naming `what` when no graph passes (with `always`:
     when the fused one does not). `time_graph(path) -> ms or None` times each graph for the record (the benchmark's
     protocol, shrinkwrap.bench.latency.graph_p50_ms, given by the caller).
@@ -102,7 +100,7 @@ def export_checked(model, examples: list[dict], pad_id: int, time_graph: Callabl
         plain = export_onnx(model, tmp, cfg.opset, task, finish=False)
         candidates = {"plain": plain}
         if cfg.optimize != "never":  # the exporter's graph is fused, then finished (the optimizer knows its nodes)
-            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx", attention)
+            candidates["fused"] = fuse(plain, model.config, tmp / "fused.onnx")
         for path in candidates.values():
             task.finish_graph(path, model)
         report = {}

@@ -197,8 +197,9 @@ def steady_latency(results: dict, step: dict, with_teacher: bool, retime) -> tup
 
 def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = None, baseline: Optional[dict] = None,
              where: str = "results.json", baseline_where: str = "baseline", budget_source: str = "recipe",
-             retime=True) -> Verdict:
-    """Every limit the budget sets, checked against one step. Raises UserError when results cannot answer one.
+             retime=True, served: Optional[dict] = None, served_where: str = "--load") -> Verdict:
+    """Every limit the budget sets, checked against one step (and min_capacity_rps against bench --load's
+    figures, `served`). Raises UserError when results cannot answer one.
     A latency limit judged on an unstable timing is timed again first (`retime`: True, the run's own way;
     False, never; or a function of the folders), and fails, saying why, while the timing stays unstable."""
     step = pick_step(results, step_name, where)
@@ -247,11 +248,39 @@ def evaluate(results: dict, budget: BudgetConfig, step_name: Optional[str] = Non
     else:
         checks += [Check(f"regression.{k}", "no --baseline to compare with", v, None, "<=",
                          " points" if k.endswith("points") else " %", SKIP) for k, v in tolerances.items()]
+    checks += load_checks(served, budget, served_where)
     if all(c.verdict == SKIP for c in checks):
         keys = [k for k in BudgetConfig.model_fields if k not in ("batch_size", "sequence_length", "accuracy_drop_upper_bound")]
         raise UserError(f"{budget_source}: the budget sets no limit to check" + (" without --baseline" if checks else "")
                         + f" — set at least one of {', '.join(keys)}")
     return Verdict(where, step["name"], budget_source, checks, cautions(results, budget))
+
+
+def read_load(path: Path) -> dict:
+    """The `load` figures of a `shrinkwrap bench ARTIFACT --load --out FILE.json` (or --json) file."""
+    from shrinkwrap.serve.rundir import read_json
+
+    data = read_json(path, "bench --load figures")
+    load = data.get("load") if isinstance(data, dict) else None
+    if not isinstance(load, dict) or "capacity_rps" not in load or not isinstance(load.get("max_p95_ms"), (int, float)):
+        raise UserError(f"--load {path}: not the JSON of `shrinkwrap bench ARTIFACT --load` (no load.capacity_rps "
+                        f"and load.max_p95_ms) — write it with --out FILE.json")
+    if load["capacity_rps"] is not None and not isinstance(load["capacity_rps"], (int, float)):
+        raise UserError(f"--load {path}: load.capacity_rps = {load['capacity_rps']!r} — expected a number or null")
+    return load
+
+
+def load_checks(load: Optional[dict], budget: BudgetConfig, where: str) -> list[Check]:
+    """min_capacity_rps against bench --load's capacity (skipped without --load)."""
+    if budget.min_capacity_rps is None:
+        return []
+    if load is None:
+        return [Check("min_capacity_rps", "no --load FILE.json to check", budget.min_capacity_rps, None, ">=",
+                      " req/s", SKIP)]
+    cap = load["capacity_rps"]
+    detail = (f"{where}: the highest rate bench --load held with p95 ≤ {num(load['max_p95_ms'])} ms and no errors"
+              if cap is not None else f"{where}: no rate held p95 ≤ {num(load['max_p95_ms'])} ms without errors")
+    return [check("min_capacity_rps", detail, budget.min_capacity_rps, float(cap or 0.0), ">=", " req/s")]
 
 
 def format_table(verdict: Verdict) -> str:
@@ -293,18 +322,30 @@ def junit_xml(verdict: Verdict) -> str:
     return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
 
 
-def gate_results(results_path: Path, budget_path: Optional[Path] = None, step: Optional[str] = None,
-                 baseline_path: Optional[Path] = None, tolerances: list[str] = ()) -> Verdict:
-    """What `shrinkwrap gate` checks: all inputs are read and validated before any verdict."""
+def gate_results(results_path: Optional[Path], budget_path: Optional[Path] = None, step: Optional[str] = None,
+                 baseline_path: Optional[Path] = None, tolerances: list[str] = (),
+                 load_path: Optional[Path] = None) -> Verdict:
+    """What `shrinkwrap gate` checks: all inputs are read and validated before any verdict. With `load_path` alone
+    (no results), the budget file's min_capacity_rps against bench --load's figures."""
     from shrinkwrap.recipe.budget import load_budget
 
+    if results_path is None and load_path is None:
+        raise UserError("gate needs RESULTS (a run's results.json), --load FILE.json, or both")
     if tolerances and baseline_path is None:
         raise UserError(f"--tolerance {tolerances[0]} — tolerances are against a baseline; add --baseline OLD_RESULTS")
-    results = load(results_path)
+    served = read_load(load_path) if load_path is not None else None
+    results = load(results_path) if results_path is not None else None
     if budget_path is not None:
         budget, source = load_budget(budget_path), str(budget_path)
-    else:
+    elif results is not None:
         budget, source = budget_of_results(results, str(results_path)), f"{results_path}: recipe.budget"
+    else:
+        raise UserError(f"--load {load_path} without RESULTS: give the budget with --budget FILE (min_capacity_rps)")
+    if served is not None and budget.min_capacity_rps is None:
+        raise UserError(f"{source}: no min_capacity_rps — the limit --load {load_path} is checked against")
     budget = with_tolerances(budget, list(tolerances))
+    if results is None:
+        return Verdict(str(load_path), "served artifact", source, load_checks(served, budget, str(load_path)))
     baseline = load(baseline_path) if baseline_path is not None else None
-    return evaluate(results, budget, step, baseline, str(results_path), str(baseline_path), source)
+    return evaluate(results, budget, step, baseline, str(results_path), str(baseline_path), source, served,
+                    str(load_path))

@@ -68,6 +68,10 @@ class BudgetConfig(Section):
     max_knn_accuracy_drop_points: Optional[float] = Field(
         None, ge=0, description="task: embedding — largest loss of 5-nearest-neighbour accuracy (leave-one-out on the "
         "test split) vs the teacher, points (needs data.label)")
+    min_capacity_rps: Optional[float] = Field(
+        None, gt=0, description="smallest capacity of the served artifact: the requests per second (one text each) "
+        "it answers with p95 within the limit `shrinkwrap bench --load` measured at, checked by `shrinkwrap gate "
+        "--load FILE.json` against that command's JSON")
     regression: RegressionTolerance = Field(
         default_factory=RegressionTolerance, description="limits against a baseline results.json (shrinkwrap gate --baseline)")
 
@@ -89,7 +93,7 @@ class BudgetConfig(Section):
     def quality_keys(self) -> list[str]:
         """The limits set on a model's quality (every key but the latency, size, shape and regression ones):
         which apply depends on the run's task."""
-        general = {*self.speed_size_limits(), "batch_size", "sequence_length", "regression"}
+        general = {*self.speed_size_limits(), "batch_size", "sequence_length", "regression", "min_capacity_rps"}
         return [k for k in type(self).model_fields if k not in general and getattr(self, k) not in (None, False)]
 
     def limits_set(self) -> bool:

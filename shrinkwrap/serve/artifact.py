@@ -189,15 +189,16 @@ class Artifact:
                 for i, (t, answer) in enumerate(zip(texts, answers))]
 
 
-def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None) -> Artifact:
+def load(folder: str | Path, threads: int = 0, verified: Optional[dict] = None, spin: bool = True) -> Artifact:
     """Verifies the artifact (unless `verified` is the manifest `verify` just returned), then loads it.
-    threads = 0 lets ONNX Runtime choose."""
+    threads = 0 lets ONNX Runtime choose; spin=False keeps its idle threads from busy-waiting (a server's HTTP
+    work shares the cores)."""
     folder = Path(folder)
     manifest = verified if verified is not None else verify(folder)
-    return open_folder(folder, manifest, threads)
+    return open_folder(folder, manifest, threads, spin)
 
 
-def open_folder(folder: Path, manifest: dict, threads: int = 0) -> Artifact:
+def open_folder(folder: Path, manifest: dict, threads: int = 0, spin: bool = True) -> Artifact:
     """Loads model and tokenizer without checking hashes: for `load`, and for the packager measuring
     the artifact it is building through this very code path."""
     from tokenizers import Tokenizer
@@ -223,7 +224,7 @@ def open_folder(folder: Path, manifest: dict, threads: int = 0) -> Artifact:
     else:
         tokenizer.enable_truncation(tok_info["max_length"], direction="left" if rule == "tail" else "right")
     try:
-        sess = session(folder / MODEL_FILE, threads)
+        sess = session(folder / MODEL_FILE, threads, spin)
     except Exception as e:  # onnxruntime raises its own exception types for a graph it cannot load
         raise UserError(f"{folder / MODEL_FILE}: ONNX Runtime cannot load it — {str(e).splitlines()[0]}") from None
     task = tasks.of_manifest(manifest)
