@@ -199,6 +199,42 @@ def test_served_encoder_answers_predicts_vectors(tiny_embedding_run):
             assert np.abs(np.array(row["embedding"]) - want[row["text"]]).max() <= 1e-5
 
 
+def test_a_rerun_reuses_every_step_and_a_signed_encoder_artifact_is_trusted(tiny_embedding_run, tmp_path):
+    import shutil
+
+    from cryptography.hazmat.primitives import serialization
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+
+    from shrinkwrap.chain.runner import run_chain
+    from shrinkwrap.recipe.schema import load_recipe
+
+    folder, _ = tiny_embedding_run
+    run = tmp_path / "run"
+    shutil.copytree(folder / "run", run)
+    steps = [p.parent.name for p in run.glob("*/step.json")]
+    before = {s: (run / s / "step.json").stat().st_mtime_ns for s in steps}
+    run_chain(load_recipe(folder / "recipe.yaml"), run, quiet=True)
+    assert {s: (run / s / "step.json").stat().st_mtime_ns for s in steps} == before and len(steps) >= 6
+
+    key = Ed25519PrivateKey.generate()
+    private, public = tmp_path / "k.pem", tmp_path / "k.pub.pem"
+    private.write_bytes(key.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
+                                          serialization.NoEncryption()))
+    public.write_bytes(key.public_key().public_bytes(serialization.Encoding.PEM,
+                                                      serialization.PublicFormat.SubjectPublicKeyInfo))
+    art = tmp_path / "signed"
+    proc = shrinkwrap("package", run / "student-onnx-int8", "--out", art, "--signing-key", private)
+    assert proc.returncode == 0, proc.stderr
+    proc = shrinkwrap("predict", art, "a text", "--trusted-key", public)
+    assert proc.returncode == 0 and len(json.loads(proc.stdout)["embedding"]) > 0
+    manifest = json.loads((art / "manifest.json").read_text())
+    assert manifest["task"] == "embedding" and manifest["vector"]["pooling"] == "mean"
+    manifest["vector"]["normalize"] = not manifest["vector"]["normalize"]   # what the vectors are said to be, changed
+    (art / "manifest.json").write_text(json.dumps(manifest))
+    proc = shrinkwrap("predict", art, "a text", "--trusted-key", public)
+    assert proc.returncode == 2 and "does not match" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
 @pytest.fixture(scope="module")
 def bundled_embedding_run(tmp_path_factory) -> tuple[Path, dict]:
     """The bundled MiniLM sentence encoder (its own modules.json and pooling config) on a BBC News slice
