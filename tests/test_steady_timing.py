@@ -45,6 +45,52 @@ def test_a_sub_millisecond_model_s_own_jitter_is_not_the_machine():
     assert not _figures(fast)["unstable"]
 
 
+def test_a_steady_timing_on_a_machine_taken_by_other_work_is_not_trusted():
+    """Rounds that agree at a slow pace — both cores busy with other work the whole time — pass the two rules on
+    the samples; the machine's share used by other processes does not."""
+    rng = np.random.default_rng(2)
+    slow_alike = [list(500 + rng.normal(0, 5, 40)) for _ in range(5)]
+    flat = np.concatenate(slow_alike)
+    p50, p95 = float(np.percentile(flat, 50)), float(np.percentile(flat, 95))
+    assert not steadiness(slow_alike, p50, p95, others=0.02)["unstable"]
+    s = steadiness(slow_alike, p50, p95, others=0.9)
+    assert s["unstable"] and "other processes used 90% of the machine's CPU" in s["unstable_why"]
+    assert not steadiness(slow_alike, p50, p95, others=None)["unstable"]   # unknown (not Linux): not judged
+
+
+def test_the_share_other_processes_take_is_measured_from_the_machine(tmp_path):
+    """/proc/stat as the Linux kernel documents it (Documentation/filesystems/proc.rst: user nice system idle
+    iowait irq softirq steal, in clock ticks): a hand-made pair of snapshots, then the live machine with one busy
+    process of our own making (bounded: it stops by itself after 3 s)."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    from shrinkwrap.bench import contention
+
+    tick = os.sysconf("SC_CLK_TCK")
+    stat = tmp_path / "stat"
+    stat.write_text(f"cpu  {100 * tick} 0 {50 * tick} 900 5 0 0 0 0 0\ncpu0 1 0 0 0\ncpu1 1 0 0 0\nintr 0\n")
+    before = contention.snapshot(str(stat))
+    assert before.busy == pytest.approx(150) and before.cores == 2
+    # 10 s of wall on 2 cores: the machine 8 busy seconds more, this process 2 of them -> others 6 / 20 = 30 %
+    after = contention.Snapshot(wall=before.wall + 10, own=before.own + 2, busy=before.busy + 8, cores=2)
+    assert contention.others_share(before, after) == pytest.approx(0.30)
+    assert contention.others_share(contention.snapshot(str(tmp_path / "none")), after) is None
+
+    burn = subprocess.Popen([sys.executable, "-c", "import time\nend = time.time() + 3\nwhile time.time() < end: pass"])
+    try:
+        time.sleep(0.3)
+        start = contention.snapshot()
+        time.sleep(1.5)
+        share = contention.others_share(start, contention.snapshot())
+    finally:
+        burn.kill()
+        burn.wait()
+    assert share is not None and share >= 1 / (os.cpu_count() or 1) * 0.6   # one core's worth, less the scheduler's due
+
+
 def _results(tiny_run, unstable: bool) -> dict:
     data = json.loads((tiny_run / "results.json").read_text())
     for step in data["steps"]:

@@ -6,7 +6,8 @@ cannot trust.
 
 Each model's figures say how steady they were (STEADY_RULE): the spread of its per-round medians, and its
 p95 against its p50. A model's work on a fixed batch is fixed, so a steady machine gives rounds that agree
-and a p95 close to the p50; a busy one shows in either.
+and a p95 close to the p50; a busy one shows in either — or, when the other work never lets go, in neither,
+hence the third rule: the share of the machine other processes used while the rounds ran (bench.contention).
 
 Every ONNX session is opened with spinning off: idle ONNX Runtime threads otherwise busy-wait after
 a call and take the cores from the next model timed (measured here: 32 ms p50 with spinning on
@@ -17,10 +18,11 @@ from __future__ import annotations
 import gc
 import math
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Optional
 
 import numpy as np
 
+from shrinkwrap.bench import contention
 from shrinkwrap.bench.latency import summarize, time_calls
 from shrinkwrap.bench.reference import Reference, normalise
 from shrinkwrap.bench.targets import load_target
@@ -35,12 +37,14 @@ MAX_TAIL = 1.5
 MIN_GAP_MS = 0.5
 STEADY_RULE = (f"a timing is unstable when its rounds' medians spread over more than {MAX_SPREAD:.0%} of their "
                f"median, or its p95 is more than {MAX_TAIL:g}× its p50 (the model's work is fixed), each by more "
-               f"than {MIN_GAP_MS:g} ms")
+               f"than {MIN_GAP_MS:g} ms, or when other processes used more than "
+               f"{contention.MAX_OTHERS_SHARE:.0%} of the machine's CPU while it was timed")
 
 
-def steadiness(round_samples: list[list[float]], p50: float, p95: float) -> dict:
+def steadiness(round_samples: list[list[float]], p50: float, p95: float, others: Optional[float] = None) -> dict:
     """How steady one model's timing was: each round's median, their spread (max − min over their median),
-    p95 / p50, and whether STEADY_RULE calls it unstable (with why)."""
+    p95 / p50, the share of the machine other processes used meanwhile (`others`, None when unknown), and
+    whether STEADY_RULE calls it unstable (with why)."""
     medians = [float(np.median(s)) for s in round_samples if len(s)]
     mid = float(np.median(medians)) if medians else float("nan")
     spread = (max(medians) - min(medians)) / mid if len(medians) > 1 and mid > 0 else 0.0
@@ -50,7 +54,11 @@ def steadiness(round_samples: list[list[float]], p50: float, p95: float) -> dict
         why.append(f"its rounds' medians spread over {spread:.0%} of their median (limit {MAX_SPREAD:.0%})")
     if tail > MAX_TAIL and p95 - p50 > MIN_GAP_MS:
         why.append(f"its p95 is {tail:.1f}× its p50 (limit {MAX_TAIL:g}×)")
+    busy = contention.verdict(others)
+    if busy:
+        why.append(busy)
     return {"round_p50": [round(m, 4) for m in medians], "spread": round(spread, 4), "p95_over_p50": round(tail, 4),
+            "others_cpu_share": None if others is None else round(others, 4),
             "unstable": bool(why), **({"unstable_why": "; ".join(why)} if why else {})}
 
 
@@ -64,6 +72,7 @@ def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
     targets = [load_target(path, cfg.threads, spin=False) for path, _ in models]
     samples: list[list[list[float]]] = [[] for _ in models]   # model -> round -> ms
     repeats = max(3, math.ceil(cfg.repeats / rounds))
+    before = contention.snapshot()
     try:
         for r in range(rounds):
             log(f"timing round {r + 1} of {rounds}: {len(models)} models")
@@ -73,6 +82,7 @@ def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
                 samples[i].append(time_calls(lambda: target.outputs(batch), max(1, cfg.warmup), repeats,
                                              cfg.timed_seconds / rounds, warmup_s=cfg.warm_seconds).tolist())
             reference.burst()
+        others = contention.others_share(before, contention.snapshot())
     finally:
         for t in targets:
             t.release()
@@ -83,7 +93,7 @@ def time_in_rounds(models: list[tuple[Path, dict]], cfg, rounds: int,
     for (path, batch), per_round in zip(models, samples):
         row = summarize(np.concatenate([np.asarray(s) for s in per_round]))
         row.update(batch_size=int(batch["input_ids"].shape[0]), tokens_read=int(batch["input_ids"].shape[1]),
-                   threads=cfg.threads, rounds=rounds, **steadiness(per_round, row["p50"], row["p95"]))
+                   threads=cfg.threads, rounds=rounds, **steadiness(per_round, row["p50"], row["p95"], others))
         rows.append(normalise(row, ref_ms))
     return rows
 

@@ -90,6 +90,8 @@ def _latency_shape(step: dict, budget: BudgetConfig, where: str) -> str:
         if want is not None and want != have:
             raise UserError(f"{where}: step {step['name']} latency was measured at {key} {have} — the budget's "
                             f"{key} is {want}; benchmark at {want} (recipe bench.{key}) or change the budget")
+    if length is None:   # bench.sequence_length unset: each model read its own length, recorded as tokens_read
+        return f"batch {batch} × {lat.get('tokens_read', 'its max_length')} tokens"
     return f"batch {batch} × {length} tokens"
 
 

@@ -8,7 +8,7 @@ row per step), and every other module reads and adds to it through the functions
     (the recipe budget's verdict, when it sets limits)
 
 A step's row: name, format, path, metrics {accuracy, macro_f1, per_class, ...}, latency_ms {p50, p95, ..., the
-teacher and every step timed together in interleaved rounds: round_p50, spread, p95_over_p50, unstable},
+teacher and every step timed together in interleaved rounds: round_p50, spread, p95_over_p50, others_cpu_share, unstable},
 latency_ms_alone (timed right after the step), size_bytes, load_seconds, memory, seconds, tokenizer_fingerprint,
 info (what the step did: its step.json's), predictions, accuracy_drop, agreement_with_teacher, and against the
 teacher accuracy_drop_ci95, mcnemar, bootstrap; agreement_with_fp32 for an int8 step; calibration and
