@@ -29,8 +29,6 @@ import threading
 import time
 from pathlib import Path
 
-import numpy as np
-
 ROOT = Path(__file__).resolve().parents[1]
 OUT = ROOT / "benchmarks" / "out" / "serving.json"
 MALFORMED = [b'{"texts": [', b'["not an object"]', b'{"texts": "a string"}', b'{"texts": [], "other": 1}']
