@@ -87,6 +87,34 @@ def test_two_processes_distil_from_a_transfer_file_built_once(tmp_path, tiny_bas
     assert trimmed["info"]["texts"] == 117 + 300
 
 
+def test_two_processes_distil_a_sentence_encoder_with_the_teacher_s_vectors_computed_sharded(tmp_path, tiny_base,
+                                                                                              keyword_csv):
+    """task: embedding under the launcher: the teacher's vectors over the training and transfer texts computed by
+    both processes, each its shard, merged into one cache; the student trained on them by both."""
+    import numpy as np
+    from conftest import keyword_rows
+    from test_embedding import embedding_recipe
+
+    transfer = tmp_path / "more.txt"
+    transfer.write_text("\n".join(t for t, _ in keyword_rows(300, seed=5)) + "\n", encoding="utf-8")
+    recipe = embedding_recipe(tiny_base, keyword_csv, student={"transfer_path": str(transfer)})
+    path, out = write_recipe(tmp_path / "r.yaml", recipe), tmp_path / "run"
+    proc = subprocess.run(
+        [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", "2", "--master_addr", "127.0.0.1",
+         "--master_port", str(_free_port()), "-m", "shrinkwrap", "run", str(path), "--out", str(out),
+         "--until", "student"],
+        capture_output=True, text=True, env=dict(os.environ, MASTER_ADDR="127.0.0.1"), timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    teacher, student = json.loads((out / "results.json").read_text())["steps"]
+    assert student["info"]["transfer_texts"] == 300
+    assert not list((out / "cache").rglob("*.rank*"))                              # shards merged
+    # the student's recorded vectors are the ones its metrics were computed from: its cosine to the teacher's
+    mine, theirs = np.load(out / "student" / "test_outputs.npy"), np.load(out / "teacher" / "test_outputs.npy")
+    cos = (mine * theirs).sum(1) / np.linalg.norm(mine, axis=1) / np.linalg.norm(theirs, axis=1)
+    assert abs(float(cos.mean()) - student["metrics"]["cosine_to_teacher"]) <= 1e-5
+    assert teacher["metrics"]["neighbour_recall_at_10"] == 1.0
+
+
 def test_two_processes_search_trains_every_candidate_together(tmp_path, tiny_base, keyword_csv):
     """`search` under the launcher: the teacher and every candidate (the short halving runs too) train on
     both processes; the screen, the choices and the files are the main process's alone."""
