@@ -57,6 +57,9 @@ class SentenceEncoder(nn.Module):
     def __init__(self, encoder: nn.Module, pooling: str, normalize: bool):
         super().__init__()
         self.encoder, self.pooling, self.normalize = encoder, pooling, bool(normalize)
+        pooler = getattr(encoder, "pooler", None)
+        if pooler is not None:  # the encoder's own pooler (a layer on the first token) plays no part in the vector:
+            pooler.requires_grad_(False)  # frozen, so that data-parallel training waits for no gradient of it
 
     @property
     def config(self):
