@@ -209,6 +209,19 @@ def test_a_modified_artifact_or_a_busy_port_stops_serve_before_it_listens(tiny_r
     assert proc.returncode == 2 and proc.stderr.count("\n") == 1 and "--port" in proc.stderr
 
 
+def test_load_texts_come_from_data_or_from_the_artifact_s_vocabulary(tiny_run, keyword_csv):
+    import csv
+
+    from shrinkwrap.bench.capacity import request_texts
+
+    rows, about = request_texts(str(tiny_run / "artifact"), str(keyword_csv), "text", None, 16)
+    with open(keyword_csv, newline="") as f:
+        first = [r["text"] for r in csv.DictReader(f)][:len(rows)]
+    assert rows == [(t, None) for t in first] and about.startswith(f"the first {len(rows)} texts")
+    drawn, about = request_texts(str(tiny_run / "artifact"), None, "text", None, 16)
+    assert drawn and all(isinstance(t, str) and t and p is None for t, p in drawn) and "vocabulary" in about
+
+
 def test_bench_load_reports_each_rate_and_gate_checks_min_capacity_rps(tiny_run, tmp_path, capsys):
     from shrinkwrap.cli import main
 

@@ -81,7 +81,7 @@ def request_texts(artifact: str, data: Optional[str], text_col: str, pair_col: O
     pairs = bool((manifest.get("tokenizer") or {}).get("text_pair"))
     if data:
         chunks = read_inputs([], data, None, pairs, text_col, pair_col or "text_pair")
-        rows = [row for chunk in chunks for row in chunk][:TEXTS]
+        rows = [(text, pair) for chunk in chunks for text, pair, _ in chunk][:TEXTS]   # the ids play no part
         return rows, f"the first {len(rows)} texts of {data}"
     from tokenizers import Tokenizer
 
