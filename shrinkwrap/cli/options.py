@@ -38,15 +38,28 @@ def at_least(low: int, high: Optional[int] = None):
     return parse
 
 
-def seconds(text: str) -> float:
-    """A finite number of seconds, 0 or more (float() alone takes 'nan', 'inf' and '-1')."""
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not math.isfinite(value) or value < 0:
-        raise argparse.ArgumentTypeError(f"{text!r} — a finite number of seconds, 0 or more")
-    return value
+def finite(what: str, above_zero: bool = False):
+    """A finite number, 0 or more (above 0 with `above_zero`); float() alone takes 'nan', 'inf' and '-1'. `what`
+    completes the error: "'-1' — <what>"."""
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            value = math.nan
+        if not math.isfinite(value) or value < 0 or (above_zero and value == 0):
+            raise argparse.ArgumentTypeError(f"{text!r} — {what}")
+        return value
+    return parse
+
+
+seconds = finite("a finite number of seconds, 0 or more")
+
+
+def add_min_confidence(p, still: str) -> None:
+    """--min-confidence, as predict and serve take it; `still` ends the help ("printed ...", "given ...")."""
+    p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
+                   help=f"abstain below this calibrated top score: such a text gets \"label\": null, its scores "
+                        f"still {still}")
 
 
 def probability(text: str) -> float:

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from shrinkwrap.cli.options import add_trusted_key, count, positive_int, probability
+from shrinkwrap.cli.options import add_min_confidence, add_trusted_key, count, positive_int
 
 
 def add(sub) -> None:
@@ -36,9 +36,7 @@ def add(sub) -> None:
                    help="a sentence encoder's artifact: write its vectors to FILE (.npy) as one float32 matrix, row k "
                         "for input k, instead of JSON lines")
     add_trusted_key(p)
-    p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
-                   help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
-                        "still printed (default: 0, always answer; the report plots accuracy against coverage)")
+    add_min_confidence(p, "printed (default: 0, always answer; the report plots accuracy against coverage)")
     p.set_defaults(func=main)
 
 

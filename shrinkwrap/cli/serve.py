@@ -2,9 +2,8 @@
 from __future__ import annotations
 
 import argparse
-import math
 
-from shrinkwrap.cli.options import add_trusted_key, positive_int, probability
+from shrinkwrap.cli.options import add_min_confidence, add_trusted_key, finite, positive_int
 from shrinkwrap.serve.errors import UserError
 
 # Defaults under which 16 concurrent clients of one text each never see a 503 (tests/test_serve.py: they cannot
@@ -14,24 +13,8 @@ from shrinkwrap.serve.errors import UserError
 MAX_BATCH, MAX_WAIT_MS, MAX_QUEUE, MAX_BODY_MB = 16, 5.0, 64, 1.0
 
 
-def milliseconds(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not math.isfinite(value) or value < 0:
-        raise argparse.ArgumentTypeError(f"{text!r} — a finite number of milliseconds, 0 or more")
-    return value
-
-
-def megabytes(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not math.isfinite(value) or value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r} — a number of megabytes above 0")
-    return value
+milliseconds = finite("a finite number of milliseconds, 0 or more")
+megabytes = finite("a number of megabytes above 0", above_zero=True)
 
 
 def port(text: str) -> int:
@@ -73,9 +56,7 @@ def add(sub) -> None:
     add_server_options(p, "worker processes behind the one port, each with its own model session (default: the "
                           "machine's cores divided by --threads, printed at start)")
     add_trusted_key(p)
-    p.add_argument("--min-confidence", type=probability, default=0.0, metavar="P",
-                   help="abstain below this calibrated top score: such a text gets \"label\": null, its scores "
-                        "still given (default: 0, always answer)")
+    add_min_confidence(p, "given (default: 0, always answer)")
     p.set_defaults(func=main)
 
 

@@ -134,16 +134,7 @@ def encoder_card(manifest: dict, results: dict) -> str:
         f"kind, another language or longer than {manifest['tokenizer']['max_length']} tokens (cut to their "
         f"{_KEPT[manifest['tokenizer'].get('truncation', 'head')]}) are outside what was measured.",
         "",
-        "## Data",
-        "",
-        f"- `{Path(data['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
-        f"texts; data fingerprint `{data['fingerprint'][:16]}`",
-        *(f"- note: {n}" for n in data_notes(results)),
-        "",
-        "## Metrics (test split, every step of the chain)",
-        "",
-        step_table(results),
-        "",
+        *_data_and_metrics(results, data),
         *([*agreement, ""] if agreement else []),
         f"**Caution.** A mean cosine can hide a tail of texts whose vectors left the teacher's space. On the test "
         f"texts the shipped step's cosine to the teacher is {m['cosine_to_teacher']:.4f} on average and "
@@ -164,6 +155,16 @@ def encoder_card(manifest: dict, results: dict) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+def _data_and_metrics(results: dict, data: dict) -> list[str]:
+    """The card's Data section and its table of every step's metrics, the same for every task."""
+    sizes = data["sizes"]
+    return ["## Data", "",
+            f"- `{Path(data['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test "
+            f"{sizes['test']} texts; data fingerprint `{data['fingerprint'][:16]}`",
+            *(f"- note: {n}" for n in data_notes(results)),
+            "", "## Metrics (test split, every step of the chain)", "", step_table(results), ""]
 
 
 def run_card(manifest: dict, results: dict) -> str:
@@ -196,16 +197,7 @@ def run_card(manifest: dict, results: dict) -> str:
         f"{_KEPT[manifest['tokenizer'].get('truncation', 'head')]}) are outside what was measured. "
         f"Not for decisions about people without human review.",
         "",
-        "## Data",
-        "",
-        f"- `{Path(data['path']).name}` — train {sizes['train']}, validation {sizes['validation']}, test {sizes['test']} "
-        f"texts; data fingerprint `{data['fingerprint'][:16]}`",
-        *(f"- note: {n}" for n in data_notes(results)),
-        "",
-        "## Metrics (test split, every step of the chain)",
-        "",
-        step_table(results),
-        "",
+        *_data_and_metrics(results, data),
     ]
     agreement = int8_agreement_lines(results)
     if agreement:

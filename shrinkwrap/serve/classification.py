@@ -17,6 +17,7 @@ from shrinkwrap.serve.rundir import LABELS_FILE, MANIFEST_FILE, read_json
 
 NAME = "classification"
 FILES = (LABELS_FILE,)   # what the artifact carries for this task, beside the graph and the tokenizer
+LABELLED = True          # predict gives each text a label, so it can abstain below --min-confidence
 
 
 def read(folder: Path, manifest: dict) -> dict:

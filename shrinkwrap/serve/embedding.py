@@ -16,6 +16,7 @@ from shrinkwrap.serve.rundir import MANIFEST_FILE, read_json
 
 NAME = "embedding"
 FILES: tuple[str, ...] = ()   # the graph and the tokenizer are all it needs
+LABELLED = False              # vectors, no label to abstain from
 POOLING_FILE = "pooling.json"  # beside a step's weights or graph: {"pooling": "mean", "normalize": true}
 SENTENCE_OUTPUT = "sentence_embedding"   # the graph's output: one pooled vector per text
 POOLINGS = ("mean", "cls", "max")   # the token vectors' mean, the first token's, the largest of each dimension

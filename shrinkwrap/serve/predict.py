@@ -19,6 +19,7 @@ import tempfile
 from pathlib import Path
 from typing import BinaryIO, Iterator, Optional, TextIO
 
+from shrinkwrap.serve import tasks
 from shrinkwrap.serve.artifact import load, verify
 from shrinkwrap.serve.errors import EXIT_OK, UserError
 from shrinkwrap.serve.quantization import batch_note
@@ -235,9 +236,7 @@ def run_predict(artifact: str, texts: list[str], file: Optional[str], batch_size
             raise UserError(f"--id {id_col}: the --npy matrix has no ids — its row k is input k")
         if npy.suffix != ".npy" or npy.is_dir() or not npy.parent.is_dir():
             raise UserError(f"--npy {npy}: expected a .npy file in an existing folder")
-    if min_confidence and manifest.get("task") == "embedding":
-        raise UserError("--min-confidence: this artifact is a sentence encoder — it gives vectors, no label to abstain "
-                        "from")
+    tasks.check_min_confidence(manifest, min_confidence, artifact)
     chunks = read_inputs(texts, file, stdin, pairs, text_col, pair_col or "text_pair", id_col)
     model = load(artifact, threads, verified=manifest)
     if model.batch_dependent:

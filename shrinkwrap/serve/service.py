@@ -23,6 +23,7 @@ from dataclasses import asdict, replace
 from pathlib import Path
 from typing import Callable
 
+from shrinkwrap.serve import tasks
 from shrinkwrap.serve.app import SETTINGS_ENV, Settings
 from shrinkwrap.serve.errors import EXIT_OK, UserError
 from shrinkwrap.serve.metrics import summary
@@ -96,9 +97,7 @@ def serve(settings: Settings, host: str, port: int, workers: int,
         check_signature(Path(settings.artifact), Path(settings.trusted_key))
     model = load(settings.artifact, 1)   # hashes, then a session: a graph ONNX Runtime refuses fails here
     dependent = model.batch_dependent
-    if settings.min_confidence and model.manifest.get("task") == "embedding":
-        raise UserError(f"--min-confidence: {settings.artifact} is a sentence encoder — it gives vectors, no label "
-                        f"to abstain from")
+    tasks.check_min_confidence(model.manifest, settings.min_confidence, settings.artifact)
     del model
     sock = bind(host, port)
     settings = replace(settings, metrics_dir=tempfile.mkdtemp(prefix="shrinkwrap-serve-"))
